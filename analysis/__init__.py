@@ -1,0 +1,1 @@
+"""Analysis: per-station figures, findings, the HTML dashboard, the evidence report and exports."""

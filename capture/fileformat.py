@@ -1,0 +1,616 @@
+"""The capture file: raw bytes with host timestamps, append-only, readable after a crash.
+
+Layout (all integers little-endian; full description in ``docs/capture-format.md``)::
+
+    file   := MAGIC(8) version:u16 header_len:u32 header_json header_crc:u32 block*
+    block  := SYNC(4) n:u32 payload_len:u32 head_crc:u32 index[n] payload block_crc:u32
+    index  := t_ns:i64 length:u16 port:u8 flags:u8           (12 bytes a record)
+
+A record is what one ``read()`` returned: the port, the monotonic time in nanoseconds when
+the call returned, flags, and the bytes. The writer gathers records and writes them as one
+block per flush (at least once a second), so a reader handles whole blocks as numpy
+columns. A block cut off by a crash still yields every record whose bytes are in the file;
+a damaged block is skipped and the reader resynchronises on the next block's SYNC.
+
+Format version changelog:
+    1  first version.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import socket
+import struct
+import time
+import uuid
+import zlib
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import BinaryIO, Iterable, Iterator, Sequence
+
+import numpy as np
+
+from buswitness import __version__
+from buswitness.decode.timing import SerialFormat
+from buswitness.errors import InputFileError, NotACaptureError, OutputError, UnsupportedVersionError
+
+MAGIC = b"\x9bBWCAP\r\n"
+FORMAT_VERSION = 1
+SUFFIX = ".bwcap"
+BLOCK_SYNC = b"\xf0BWB"
+
+_FILE_HEAD = struct.Struct("<8sHI")
+_BLOCK_HEAD = struct.Struct("<4sIII")
+_U32 = struct.Struct("<I")
+INDEX_DTYPE = np.dtype([("t_ns", "<i8"), ("length", "<u2"), ("port", "u1"), ("flags", "u1")])
+
+#: Sanity limits: a block claiming more than this is damage, not data.
+MAX_BLOCK_RECORDS = 1 << 20
+MAX_BLOCK_PAYLOAD = 64 << 20
+MAX_HEADER_BYTES = 1 << 20
+
+# Record flags. A record may carry flags and no bytes (a marker).
+FLAG_LINE_ERROR = 0x01   #: the bytes arrived marked bad by the UART (parity or framing error)
+FLAG_BREAK = 0x02        #: a break condition (line held low) was received here
+FLAG_LOST = 0x04         #: bytes were lost before this record (overrun, queue overflow)
+FLAG_REOPENED = 0x08     #: the port was reopened after a disconnect; there is a gap before this record
+FLAG_PAUSED = 0x10       #: capture was paused before this record
+FLAG_DISCONNECTED = 0x20  #: the port went away at this time
+FLAG_UNTIMED = 0x40      #: the timestamp is synthetic (imported raw bytes); only byte order is real
+
+FLAG_NAMES = {
+    FLAG_LINE_ERROR: "line-error",
+    FLAG_BREAK: "break",
+    FLAG_LOST: "bytes-lost",
+    FLAG_REOPENED: "reopened",
+    FLAG_PAUSED: "paused",
+    FLAG_DISCONNECTED: "disconnected",
+    FLAG_UNTIMED: "untimed",
+}
+
+
+def flag_names(flags: int) -> list[str]:
+    """Human names of the bits set in ``flags``."""
+    return [name for bit, name in FLAG_NAMES.items() if flags & bit]
+
+
+@dataclass
+class PortInfo:
+    """One serial port of a capture."""
+
+    id: int
+    name: str
+    latency_ms: float | None = None
+    latency_source: str = "unknown"  # "sysfs", "user", "estimated", "simulated", "unknown"
+    serial_number: str | None = None
+    line_errors: bool = False  # True when the port was set to mark parity/framing errors
+
+
+@dataclass
+class CaptureHeader:
+    """Everything a capture knows about itself besides the records."""
+
+    serial: SerialFormat = field(default_factory=SerialFormat)
+    ports: list[PortInfo] = field(default_factory=lambda: [PortInfo(0, "unknown")])
+    start_utc: str = ""
+    start_monotonic_ns: int = 0
+    host: str = ""
+    tool_version: str = __version__
+    notes: str = ""
+    source: str = "record"  # "record", "simulate", "import-hex", "import-raw"
+    timing: str = "host"  # "host": monotonic read-return times; "none": synthetic times
+    capture_id: str = ""
+    part: int = 0
+    extra: dict = field(default_factory=dict)
+    format_version: int = FORMAT_VERSION
+
+    @classmethod
+    def new(cls, serial: SerialFormat, ports: Sequence[PortInfo], notes: str = "", source: str = "record",
+            **kw) -> "CaptureHeader":
+        """A header for a capture starting now: UTC wall clock and monotonic clock read together."""
+        mono = time.monotonic_ns()
+        utc = datetime.now(timezone.utc)
+        return cls(serial=serial, ports=list(ports), start_utc=utc.isoformat(timespec="microseconds"),
+                   start_monotonic_ns=mono, host=socket.gethostname(), notes=notes, source=source,
+                   capture_id=uuid.uuid4().hex, **kw)
+
+    def to_json(self) -> bytes:
+        data = asdict(self)
+        data["serial"] = self.serial.to_dict()
+        return json.dumps(data, sort_keys=True).encode("utf-8")
+
+    @classmethod
+    def from_json(cls, raw: bytes, path: object = "?") -> "CaptureHeader":
+        try:
+            data = json.loads(raw.decode("utf-8"))
+            ports = [PortInfo(**p) for p in data.pop("ports")]
+            serial = SerialFormat.from_dict(data.pop("serial"))
+            known = {f for f in cls.__dataclass_fields__}
+            extra = {k: v for k, v in data.items() if k not in known}
+            data = {k: v for k, v in data.items() if k in known}
+            header = cls(serial=serial, ports=ports, **data)
+            header.extra.update(extra)
+            return header
+        except Exception as exc:  # any malformed header is one kind of damage
+            raise InputFileError(path, f"the capture header is damaged ({exc})",
+                                 "the file cannot be used; check the copy against the original") from None
+
+    def port_name(self, port_id: int) -> str:
+        for p in self.ports:
+            if p.id == port_id:
+                return p.name
+        return f"port {port_id}"
+
+    def start_datetime(self) -> datetime | None:
+        try:
+            return datetime.fromisoformat(self.start_utc)
+        except (TypeError, ValueError):
+            return None
+
+
+@dataclass(frozen=True)
+class Record:
+    """One read: which port, when the read returned (monotonic ns), flags, and the bytes."""
+
+    port: int
+    t_ns: int
+    data: bytes
+    flags: int = 0
+
+
+@dataclass
+class RecordBatch:
+    """Records as columns: the form the decoder's bulk path consumes."""
+
+    t_ns: np.ndarray      # int64, monotonic ns at read return
+    length: np.ndarray    # int64, bytes per record
+    port: np.ndarray      # uint8
+    flags: np.ndarray     # uint8
+    payload: np.ndarray   # uint8, all records' bytes back to back
+
+    def __len__(self) -> int:
+        return int(self.t_ns.shape[0])
+
+    @property
+    def offsets(self) -> np.ndarray:
+        """Start of each record's bytes in ``payload``."""
+        ends = np.cumsum(self.length)
+        return ends - self.length
+
+    def records(self) -> Iterator[Record]:
+        payload = self.payload.tobytes()
+        pos = 0
+        for t, n, p, f in zip(self.t_ns.tolist(), self.length.tolist(), self.port.tolist(), self.flags.tolist()):
+            yield Record(p, t, payload[pos:pos + n], f)
+            pos += n
+
+    @classmethod
+    def from_records(cls, records: Iterable[Record]) -> "RecordBatch":
+        recs = list(records)
+        return cls(
+            t_ns=np.fromiter((r.t_ns for r in recs), dtype=np.int64, count=len(recs)),
+            length=np.fromiter((len(r.data) for r in recs), dtype=np.int64, count=len(recs)),
+            port=np.fromiter((r.port for r in recs), dtype=np.uint8, count=len(recs)),
+            flags=np.fromiter((r.flags for r in recs), dtype=np.uint8, count=len(recs)),
+            payload=np.frombuffer(b"".join(r.data for r in recs), dtype=np.uint8).copy(),
+        )
+
+    @classmethod
+    def empty(cls) -> "RecordBatch":
+        return cls(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.uint8), np.zeros(0, np.uint8),
+                   np.zeros(0, np.uint8))
+
+
+def part_path(base: Path, part: int) -> Path:
+    """Name of part ``part`` of a rotated capture: ``night.bwcap``, ``night.0001.bwcap``, ..."""
+    base = Path(base)
+    if part == 0:
+        return base
+    return base.with_name(f"{base.stem}.{part:04d}{base.suffix}")
+
+
+_PART_RE = re.compile(r"^(?P<stem>.*)\.(?P<part>\d{4})$")
+
+
+def _encode_block(index: np.ndarray, payload: bytes) -> bytes:
+    body = index.tobytes() + payload
+    head_fields = struct.pack("<II", len(index), len(payload))
+    head_crc = zlib.crc32(BLOCK_SYNC + head_fields)
+    return BLOCK_SYNC + head_fields + _U32.pack(head_crc) + body + _U32.pack(zlib.crc32(body))
+
+
+def _encode_file_header(header: CaptureHeader) -> bytes:
+    raw = header.to_json()
+    return _FILE_HEAD.pack(MAGIC, FORMAT_VERSION, len(raw)) + raw + _U32.pack(zlib.crc32(raw))
+
+
+class CaptureWriter:
+    """Append records to a capture file, flushing blocks so a crash loses at most ~1 s.
+
+    ``append`` only buffers; ``tick`` (call it often, e.g. from the writer thread's loop)
+    writes a block when ``flush_interval_s`` has passed and fsyncs every ``fsync_interval_s``.
+    Rotation starts a new numbered part when the current one passes ``rotate_bytes`` or its
+    records span ``rotate_ns`` of capture time; the parts read back as one capture.
+    """
+
+    def __init__(self, path: str | os.PathLike, header: CaptureHeader, *, rotate_bytes: int | None = None,
+                 rotate_ns: int | None = None, flush_interval_s: float = 1.0, fsync_interval_s: float = 1.0,
+                 max_block_records: int = 16384, max_block_bytes: int = 1 << 20, overwrite: bool = False,
+                 mode: int = 0o600) -> None:
+        self.base = Path(path)
+        self.header = header
+        if not header.capture_id:
+            header.capture_id = uuid.uuid4().hex
+        self.rotate_bytes = rotate_bytes
+        self.rotate_ns = rotate_ns
+        self.flush_interval_s = flush_interval_s
+        self.fsync_interval_s = fsync_interval_s
+        self.max_block_records = max_block_records
+        self.max_block_bytes = max_block_bytes
+        self.overwrite = overwrite
+        self.mode = mode
+        self.parts: list[Path] = []
+        self.records_written = 0
+        self.bytes_written = 0  # data bytes (not file bytes)
+        self.last_t_ns: int | None = None
+        self._index: list[tuple[int, int, int, int]] = []
+        self._payload = bytearray()
+        self._fd: int | None = None
+        self._part_size = 0
+        self._part_first_t: int | None = None
+        self._last_flush = time.monotonic()
+        self._last_fsync = self._last_flush
+        self._closed = False
+        self._open_part(0)
+
+    # -- file handling -------------------------------------------------------------------
+    def _open_part(self, part: int) -> None:
+        path = part_path(self.base, part)
+        flags = os.O_WRONLY | os.O_CREAT | (os.O_TRUNC if self.overwrite else os.O_EXCL)
+        try:
+            fd = os.open(path, flags, self.mode)
+        except FileExistsError:
+            raise OutputError(f"{path}: already exists; choose another output name (nothing was overwritten)") from None
+        except OSError as exc:
+            raise OutputError(f"{path}: cannot create the capture file ({exc.strerror})") from None
+        self.header.part = part
+        head = _encode_file_header(self.header)
+        self._fd = fd
+        self._write_all(head)
+        self._part_size = len(head)
+        self._part_first_t = None
+        self.parts.append(path)
+
+    def _write_all(self, data: bytes) -> None:
+        assert self._fd is not None
+        view = memoryview(data)
+        try:
+            while view:
+                n = os.write(self._fd, view)
+                view = view[n:]
+        except OSError as exc:
+            where = self.parts[-1] if self.parts else self.base
+            raise OutputError(
+                f"{where}: cannot write the capture ({exc.strerror}); everything recorded before this "
+                f"moment is in the file and reads back"
+            ) from None
+
+    # -- appending -----------------------------------------------------------------------
+    def append(self, port: int, t_ns: int, data: bytes = b"", flags: int = 0) -> None:
+        """Buffer one record. Long reads are split so a record never exceeds 65535 bytes."""
+        if self._closed:
+            raise ValueError("capture writer is closed")
+        for start in range(0, max(len(data), 1), 65535):
+            chunk = data[start:start + 65535]
+            self._index.append((int(t_ns), len(chunk), int(port), int(flags)))
+            self._payload += chunk
+            flags &= ~(FLAG_REOPENED | FLAG_PAUSED | FLAG_LOST | FLAG_DISCONNECTED)
+        self.last_t_ns = int(t_ns)
+        if len(self._index) >= self.max_block_records or len(self._payload) >= self.max_block_bytes:
+            self.flush()
+
+    def tick(self) -> None:
+        """Flush and fsync when their intervals have passed (call at least a few times a second)."""
+        now = time.monotonic()
+        if now - self._last_flush >= self.flush_interval_s:
+            self.flush()
+        if now - self._last_fsync >= self.fsync_interval_s:
+            self.sync()
+
+    def flush(self) -> None:
+        """Write the buffered records as one block (rotating first if the part is full)."""
+        self._last_flush = time.monotonic()
+        if not self._index:
+            return
+        first_t = self._index[0][0]
+        if self._part_first_t is not None and self._rotation_due(first_t):
+            self.sync()
+            os.close(self._fd)  # type: ignore[arg-type]
+            self._fd = None
+            self._open_part(len(self.parts))
+        if self._part_first_t is None:
+            self._part_first_t = first_t
+        index = np.array(self._index, dtype=INDEX_DTYPE)
+        block = _encode_block(index, bytes(self._payload))
+        self._write_all(block)
+        self._part_size += len(block)
+        self.records_written += len(self._index)
+        self.bytes_written += len(self._payload)
+        self._index.clear()
+        self._payload.clear()
+
+    def _rotation_due(self, next_t: int) -> bool:
+        if self.rotate_bytes is not None and self._part_size >= self.rotate_bytes:
+            return True
+        if self.rotate_ns is not None and self._part_first_t is not None:
+            return next_t - self._part_first_t >= self.rotate_ns
+        return False
+
+    def sync(self) -> None:
+        """Push written blocks to the disk (fsync)."""
+        self._last_fsync = time.monotonic()
+        if self._fd is not None:
+            try:
+                os.fsync(self._fd)
+            except OSError:
+                pass  # e.g. a pipe or a file system without fsync: nothing more we can do
+
+    def close(self) -> None:
+        """Flush, fsync and close. Safe to call twice."""
+        if self._closed:
+            return
+        try:
+            self.flush()
+            self.sync()
+        finally:
+            self._closed = True
+            if self._fd is not None:
+                os.close(self._fd)
+                self._fd = None
+
+    def __enter__(self) -> "CaptureWriter":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+@dataclass
+class ReadReport:
+    """What the reader found besides the records: damage, cut-off tails, missing parts."""
+
+    files: list[str] = field(default_factory=list)
+    records: int = 0
+    data_bytes: int = 0
+    blocks: int = 0
+    truncated_tail: bool = False          #: the last block of some part was cut off (crash, copy cut short)
+    truncated_records_kept: int = 0       #: records recovered from cut-off blocks
+    bad_blocks: int = 0                   #: damaged blocks skipped
+    bad_block_records: int = 0            #: records in damaged blocks (lost), where the count was readable
+    bytes_skipped: int = 0                #: file bytes passed over while resynchronising
+    missing_parts: list[int] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def clean(self) -> bool:
+        return not (self.truncated_tail or self.bad_blocks or self.bytes_skipped or self.missing_parts)
+
+    def summary(self) -> str:
+        lines = [f"{self.records} records, {self.data_bytes} bytes in {self.blocks} blocks, {len(self.files)} file(s)"]
+        lines.extend(self.warnings)
+        return "\n".join(lines)
+
+
+def read_header(path: str | os.PathLike) -> CaptureHeader:
+    """Read and check only the file header of one capture file."""
+    with _open_for_read(path) as f:
+        return _read_file_header(f, path)
+
+
+def _open_for_read(path: str | os.PathLike) -> BinaryIO:
+    p = Path(path)
+    if p.is_dir():
+        raise InputFileError(p, "is a directory, not a capture file", "give the path of a .bwcap file")
+    try:
+        return open(p, "rb")
+    except FileNotFoundError:
+        raise InputFileError(p, "no such file") from None
+    except OSError as exc:
+        raise InputFileError(p, f"cannot be opened ({exc.strerror})") from None
+
+
+def _read_file_header(f: BinaryIO, path: object) -> CaptureHeader:
+    head = f.read(_FILE_HEAD.size)
+    if len(head) < _FILE_HEAD.size or not head.startswith(MAGIC):
+        if head[: len(MAGIC)] == MAGIC[: len(head)] and head:
+            raise InputFileError(path, "the capture file is cut off inside its header", "nothing usable remains")
+        kind = "empty" if not head else "not a buswitness capture file"
+        raise NotACaptureError(path, f"is {kind}",
+                               "for hex text or raw bytes, use the import options of 'analyze' "
+                               "(--input-kind hex or raw)" if head else "")
+    _, version, header_len = _FILE_HEAD.unpack(head)
+    if version > FORMAT_VERSION or version == 0:
+        raise UnsupportedVersionError(
+            path, f"is a capture of format version {version}; this buswitness {__version__} reads versions "
+                  f"1 to {FORMAT_VERSION}", "update buswitness to read it")
+    if header_len > MAX_HEADER_BYTES:
+        raise InputFileError(path, "the capture header is damaged (impossible length)")
+    raw = f.read(header_len)
+    crc = f.read(4)
+    if len(raw) < header_len or len(crc) < 4:
+        raise InputFileError(path, "the capture file is cut off inside its header", "nothing usable remains")
+    if zlib.crc32(raw) != _U32.unpack(crc)[0]:
+        raise InputFileError(path, "the capture header is damaged (checksum mismatch)")
+    return CaptureHeader.from_json(raw, path)
+
+
+def find_parts(path: str | os.PathLike) -> tuple[list[Path], list[int]]:
+    """All parts of the rotated capture that ``path`` belongs to, in order, and any missing part numbers."""
+    p = Path(path)
+    m = _PART_RE.match(p.stem)
+    base = p.with_name(f"{m.group('stem')}{p.suffix}") if m else p
+    found: dict[int, Path] = {}
+    if base.exists():
+        found[0] = base
+    pattern = re.compile(re.escape(base.stem) + r"\.(\d{4})" + re.escape(base.suffix) + "$")
+    if base.parent.exists():
+        for sib in base.parent.iterdir():
+            mm = pattern.match(sib.name)
+            if mm:
+                found[int(mm.group(1))] = sib
+    if not found:
+        return [p], []
+    if p not in found.values():
+        found[-1] = p
+    numbers = sorted(found)
+    highest = numbers[-1]
+    missing = [k for k in range(0, highest + 1) if k not in found]
+    return [found[k] for k in numbers], missing
+
+
+class CaptureReader:
+    """Stream a capture (one file or a rotated set) block by block, never loading it whole.
+
+    ``CaptureReader("night.bwcap")`` finds the set's other parts by name and checks that
+    they belong to the same capture. ``iter_batches`` yields :class:`RecordBatch` columns;
+    ``iter_records`` yields :class:`Record` objects. Damage is skipped and counted in
+    ``report``; only a file with no readable header raises.
+    """
+
+    def __init__(self, path: str | os.PathLike | Sequence[str | os.PathLike], *, single_file: bool = False,
+                 read_size: int = 4 << 20) -> None:
+        self.report = ReadReport()
+        if isinstance(path, (str, os.PathLike)):
+            if single_file:
+                paths, missing = [Path(path)], []
+            else:
+                paths, missing = find_parts(path)
+        else:
+            paths, missing = [Path(p) for p in path], []
+        self.read_size = read_size
+        self.header = read_header(paths[0])
+        self.paths: list[Path] = []
+        for p in paths:
+            h = self.header if p == paths[0] else read_header(p)
+            if h.capture_id != self.header.capture_id:
+                self.report.warnings.append(f"{p}: belongs to another capture; left out")
+                continue
+            self.paths.append(p)
+        self.report.files = [str(p) for p in self.paths]
+        if missing:
+            self.report.missing_parts = missing
+            self.report.warnings.append(
+                f"part(s) {', '.join(str(m) for m in missing)} of this capture are missing; "
+                f"the time they covered is a gap in every figure")
+
+    def iter_batches(self) -> Iterator[RecordBatch]:
+        for p in self.paths:
+            yield from self._iter_file(p)
+
+    def iter_records(self) -> Iterator[Record]:
+        for batch in self.iter_batches():
+            yield from batch.records()
+
+    def _iter_file(self, path: Path) -> Iterator[RecordBatch]:
+        rep = self.report
+        with _open_for_read(path) as f:
+            _read_file_header(f, path)
+            while True:
+                pos = f.tell()
+                head = f.read(_BLOCK_HEAD.size)
+                if not head:
+                    return
+                if len(head) < _BLOCK_HEAD.size:
+                    if BLOCK_SYNC.startswith(head[:4]) or head.startswith(BLOCK_SYNC):
+                        self._note_truncated(path)
+                    else:
+                        rep.bytes_skipped += len(head)
+                    return
+                sync, n, plen, hcrc = _BLOCK_HEAD.unpack(head)
+                if (sync != BLOCK_SYNC or zlib.crc32(head[:12]) != hcrc or n > MAX_BLOCK_RECORDS
+                        or plen > MAX_BLOCK_PAYLOAD):
+                    if not self._resync(f, pos + 1, path):
+                        return
+                    continue
+                body_len = n * INDEX_DTYPE.itemsize + plen
+                body = f.read(body_len)
+                crc = f.read(4)
+                if len(body) < body_len or len(crc) < 4:
+                    batch = self._salvage(body, n, plen)
+                    self._note_truncated(path, len(batch))
+                    if len(batch):
+                        rep.records += len(batch)
+                        rep.data_bytes += int(batch.length.sum())
+                        yield batch
+                    return
+                if zlib.crc32(body) != _U32.unpack(crc)[0]:
+                    rep.bad_blocks += 1
+                    rep.bad_block_records += n
+                    rep.warnings.append(f"{path}: a damaged block of {n} records at byte {pos} was skipped")
+                    continue
+                index = np.frombuffer(body, dtype=INDEX_DTYPE, count=n)
+                lengths = index["length"].astype(np.int64)
+                if int(lengths.sum()) != plen:
+                    rep.bad_blocks += 1
+                    rep.bad_block_records += n
+                    rep.warnings.append(f"{path}: an inconsistent block at byte {pos} was skipped")
+                    continue
+                rep.blocks += 1
+                rep.records += n
+                rep.data_bytes += plen
+                yield RecordBatch(
+                    t_ns=index["t_ns"].astype(np.int64),
+                    length=lengths,
+                    port=index["port"].copy(),
+                    flags=index["flags"].copy(),
+                    payload=np.frombuffer(body, dtype=np.uint8, offset=n * INDEX_DTYPE.itemsize).copy(),
+                )
+
+    def _note_truncated(self, path: Path, kept: int = 0) -> None:
+        self.report.truncated_tail = True
+        self.report.truncated_records_kept += kept
+        self.report.warnings.append(
+            f"{path}: the file ends inside its last block (the recording was cut off); "
+            f"{kept} record(s) of that block were recovered")
+
+    def _salvage(self, body: bytes, n: int, plen: int) -> RecordBatch:
+        """Records of a cut-off block whose bytes are all in the file."""
+        isz = INDEX_DTYPE.itemsize
+        if len(body) < n * isz:
+            return RecordBatch.empty()
+        index = np.frombuffer(body, dtype=INDEX_DTYPE, count=n)
+        lengths = index["length"].astype(np.int64)
+        available = len(body) - n * isz
+        ends = np.cumsum(lengths)
+        keep = int(np.searchsorted(ends, available, side="right"))
+        payload = np.frombuffer(body, dtype=np.uint8, offset=n * isz, count=int(ends[keep - 1]) if keep else 0)
+        return RecordBatch(index["t_ns"][:keep].astype(np.int64), lengths[:keep], index["port"][:keep].copy(),
+                           index["flags"][:keep].copy(), payload.copy())
+
+    def _resync(self, f: BinaryIO, start: int, path: Path) -> bool:
+        """Move to the next block SYNC at or after ``start``; False at end of file."""
+        f.seek(start)
+        base = start  # file offset of buf[0]
+        carry = b""
+        keep = len(BLOCK_SYNC) - 1
+        while True:
+            chunk = f.read(self.read_size)
+            buf = carry + chunk
+            i = buf.find(BLOCK_SYNC)
+            if i >= 0:
+                found = base + i
+                skipped = found - (start - 1)
+                self.report.bytes_skipped += skipped
+                self.report.warnings.append(f"{path}: {skipped} damaged byte(s) skipped at byte {start - 1}")
+                f.seek(found)
+                return True
+            if not chunk:
+                skipped = base + len(buf) - (start - 1)
+                self.report.bytes_skipped += skipped
+                self.report.warnings.append(f"{path}: {skipped} damaged byte(s) at the end skipped")
+                return False
+            carry = buf[-keep:]
+            base += len(buf) - len(carry)

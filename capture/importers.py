@@ -1,0 +1,255 @@
+"""Importers for plain inputs a user may already have: timestamped hex text and raw bytes.
+
+Both yield the same :class:`RecordBatch` columns as a capture file, so everything after
+this point does not care where the bytes came from.
+
+Hex text::
+
+    # comment lines start with '#'; optional settings:
+    # baud: 19200
+    # format: 8E1
+    # latency_ms: 16
+    12.004311 01 03 00 6B 00 03 74 17
+
+Each line is one chunk: the time its *last* byte arrived, in seconds (relative to the
+capture start, or UNIX epoch seconds), then its bytes in hex. Raw binary has no
+timestamps at all; the baud rate and format come from the command line and frames are
+later found by CRC alone.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from buswitness.capture.fileformat import FLAG_UNTIMED, CaptureHeader, PortInfo, ReadReport, RecordBatch
+from buswitness.decode.timing import SerialFormat, parse_baud
+from buswitness.errors import InputFileError, UsageError
+
+#: Timestamps above this are taken as UNIX epoch seconds (1973-03-03), below as relative.
+EPOCH_THRESHOLD_S = 1e8
+BATCH_RECORDS = 65536
+RAW_RECORD_BYTES = 256
+_SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$", re.IGNORECASE)
+_HEX_TOKEN = re.compile(r"^(?:0x)?([0-9A-Fa-f]{2})+$")
+
+ON_BAD_LINE = ("stop", "skip")
+
+
+@dataclass
+class HexTextSource:
+    """A timestamped hex-text file, read line by line."""
+
+    path: Path
+    serial: SerialFormat | None = None  # overrides the file's own '# baud:' / '# format:' lines
+    on_bad_line: str = "stop"
+    report: ReadReport = field(default_factory=ReadReport)
+
+    def __post_init__(self) -> None:
+        if self.on_bad_line not in ON_BAD_LINE:
+            raise UsageError(f"--on-bad-line must be one of {', '.join(ON_BAD_LINE)}, not {self.on_bad_line!r}")
+        self.path = Path(self.path)
+        self.header = self._read_settings()
+        self.paths = [self.path]
+        self.report.files = [str(self.path)]
+
+    def _open(self):
+        if self.path.is_dir():
+            raise InputFileError(self.path, "is a directory, not a hex text file")
+        try:
+            return open(self.path, "r", encoding="utf-8", errors="replace", newline=None)
+        except FileNotFoundError:
+            raise InputFileError(self.path, "no such file") from None
+        except OSError as exc:
+            raise InputFileError(self.path, f"cannot be opened ({exc.strerror})") from None
+
+    def _read_settings(self) -> CaptureHeader:
+        baud, fmt, latency, port, notes = 19200, "8E1", None, str(self.path), ""
+        first_t: float | None = None
+        with self._open() as f:
+            for lineno, line in enumerate(f, 1):
+                s = line.strip()
+                if not s:
+                    continue
+                if s.startswith("#"):
+                    m = _SETTING.match(s)
+                    if m:
+                        key, value = m.group(1).lower(), m.group(2)
+                        try:
+                            if key == "baud":
+                                baud = parse_baud(value)
+                            elif key == "format":
+                                fmt = SerialFormat.parse(value).short_form
+                            elif key == "latency_ms":
+                                latency = float(value)
+                            elif key == "port":
+                                port = value
+                            else:
+                                notes = value
+                        except (UsageError, ValueError) as exc:
+                            raise InputFileError(self.path, f"line {lineno}: bad setting ({exc})") from None
+                    continue
+                try:
+                    first_t = float(s.split()[0])
+                except ValueError:
+                    pass
+                break
+        serial = self.serial or SerialFormat.parse(fmt, baud)
+        start_utc = ""
+        self._epoch = first_t is not None and first_t > EPOCH_THRESHOLD_S
+        self._t0 = first_t if self._epoch else 0.0
+        if self._epoch and first_t is not None:
+            start_utc = datetime.fromtimestamp(first_t, timezone.utc).isoformat(timespec="microseconds")
+        return CaptureHeader(serial=serial, ports=[PortInfo(0, port, latency, "user" if latency else "unknown")],
+                             start_utc=start_utc, start_monotonic_ns=0, source="import-hex", notes=notes,
+                             capture_id=f"hex:{self.path.name}")
+
+    def iter_batches(self) -> Iterator[RecordBatch]:
+        t_list: list[int] = []
+        lengths: list[int] = []
+        payload = bytearray()
+        last_t = -1
+        with self._open() as f:
+            for lineno, line in enumerate(f, 1):
+                s = line.strip()
+                if not s or s.startswith("#"):
+                    continue
+                parsed = self._parse_line(s, lineno, last_t)
+                if parsed is None:
+                    continue
+                t_ns, data = parsed
+                last_t = t_ns
+                t_list.append(t_ns)
+                lengths.append(len(data))
+                payload += data
+                if len(t_list) >= BATCH_RECORDS:
+                    yield self._batch(t_list, lengths, payload)
+                    t_list, lengths, payload = [], [], bytearray()
+        if t_list:
+            yield self._batch(t_list, lengths, payload)
+
+    def _parse_line(self, s: str, lineno: int, last_t: int) -> tuple[int, bytes] | None:
+        parts = s.split()
+        problem = ""
+        try:
+            seconds = float(parts[0])
+            if not np.isfinite(seconds):
+                raise ValueError
+        except ValueError:
+            problem = f"the time {parts[0][:20]!r} is not a number of seconds"
+        else:
+            t_ns = int(round((seconds - self._t0) * 1e9))
+            if t_ns < last_t:
+                problem = "the time goes backwards"
+            elif len(parts) < 2:
+                problem = "no bytes after the time"
+            else:
+                data = bytearray()
+                for tok in parts[1:]:
+                    if not _HEX_TOKEN.match(tok):
+                        problem = f"{tok[:20]!r} is not hex bytes"
+                        break
+                    data += bytes.fromhex(tok[2:] if tok[:2] in ("0x", "0X") else tok)
+                if not problem:
+                    if len(data) > 65535:
+                        problem = "more than 65535 bytes on one line"
+                    else:
+                        return t_ns, bytes(data)
+        message = f"line {lineno}: {problem}"
+        if self.on_bad_line == "stop":
+            raise InputFileError(self.path, message, "fix the line, or pass --on-bad-line skip to skip bad lines")
+        self.report.warnings.append(f"{self.path}: {message}; line skipped")
+        self.report.bytes_skipped += len(s)
+        return None
+
+    def _batch(self, t_list: list[int], lengths: list[int], payload: bytearray) -> RecordBatch:
+        n = len(t_list)
+        self.report.records += n
+        self.report.data_bytes += len(payload)
+        self.report.blocks += 1
+        return RecordBatch(np.array(t_list, dtype=np.int64), np.array(lengths, dtype=np.int64),
+                           np.zeros(n, np.uint8), np.zeros(n, np.uint8),
+                           np.frombuffer(bytes(payload), dtype=np.uint8).copy())
+
+
+@dataclass
+class RawBinarySource:
+    """Raw bytes with no timestamps. Times are synthetic (bytes back to back) and flagged so."""
+
+    path: Path
+    serial: SerialFormat | None = None
+    report: ReadReport = field(default_factory=ReadReport)
+
+    def __post_init__(self) -> None:
+        self.path = Path(self.path)
+        if self.path.is_dir():
+            raise InputFileError(self.path, "is a directory, not a raw capture")
+        if not self.path.exists():
+            raise InputFileError(self.path, "no such file")
+        if self.serial is None:
+            raise UsageError(f"{self.path}: raw bytes carry no settings; give --baud and --format (e.g. 19200 8E1)")
+        self.header = CaptureHeader(serial=self.serial, ports=[PortInfo(0, str(self.path))], source="import-raw",
+                                    timing="none", capture_id=f"raw:{self.path.name}")
+        self.paths = [self.path]
+        self.report.files = [str(self.path)]
+
+    def iter_batches(self) -> Iterator[RecordBatch]:
+        char_ns = self.serial.char_time_s * 1e9  # type: ignore[union-attr]
+        done = 0
+        try:
+            f = open(self.path, "rb")
+        except OSError as exc:
+            raise InputFileError(self.path, f"cannot be opened ({exc.strerror})") from None
+        with f:
+            while True:
+                block = f.read(RAW_RECORD_BYTES * 4096)
+                if not block:
+                    return
+                n = len(block)
+                lengths = np.full((n + RAW_RECORD_BYTES - 1) // RAW_RECORD_BYTES, RAW_RECORD_BYTES, dtype=np.int64)
+                lengths[-1] = n - RAW_RECORD_BYTES * (len(lengths) - 1)
+                ends = done + np.cumsum(lengths)
+                t_ns = np.round(ends * char_ns).astype(np.int64)
+                done += n
+                self.report.records += len(lengths)
+                self.report.data_bytes += n
+                self.report.blocks += 1
+                yield RecordBatch(t_ns, lengths, np.zeros(len(lengths), np.uint8),
+                                  np.full(len(lengths), FLAG_UNTIMED, np.uint8),
+                                  np.frombuffer(block, dtype=np.uint8).copy())
+
+
+def looks_like_hex_text(path: str | os.PathLike) -> bool:
+    """True when the file's first non-blank, non-comment line reads as '<seconds> <hex>...'."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(4096)
+    except OSError:
+        return False
+    if b"\x00" in head:
+        return False
+    try:
+        text = head.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    saw_setting = False
+    for line in text.splitlines():
+        s = line.strip()
+        if not s:
+            continue
+        if s.startswith("#"):
+            saw_setting = saw_setting or bool(_SETTING.match(s))
+            continue
+        parts = s.split()
+        try:
+            float(parts[0])
+        except ValueError:
+            return False
+        return len(parts) > 1 and all(_HEX_TOKEN.match(t) for t in parts[1:])
+    return saw_setting

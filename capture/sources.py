@@ -1,0 +1,66 @@
+"""Open any input buswitness accepts, by content: a capture file (or rotated set), hex text, raw bytes."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Iterator, Protocol
+
+from buswitness.capture.fileformat import MAGIC, CaptureHeader, CaptureReader, ReadReport, RecordBatch
+from buswitness.capture.importers import HexTextSource, RawBinarySource, looks_like_hex_text
+from buswitness.decode.timing import SerialFormat
+from buswitness.errors import InputFileError, NotACaptureError, UsageError
+
+INPUT_KINDS = ("auto", "capture", "hex", "raw")
+
+
+class CaptureSource(Protocol):
+    """What every input offers: a header, record batches in time order, and a damage report."""
+
+    header: CaptureHeader
+    report: ReadReport
+    paths: list[Path]
+
+    def iter_batches(self) -> Iterator[RecordBatch]: ...
+
+
+def open_capture(path: str | os.PathLike, kind: str = "auto", serial: SerialFormat | None = None,
+                 on_bad_line: str = "stop") -> CaptureSource:
+    """Open ``path`` read-only as the given kind, or guess it from the first bytes.
+
+    ``serial`` overrides the settings the file carries (needed for raw bytes).
+    """
+    if kind not in INPUT_KINDS:
+        raise UsageError(f"input kind {kind!r} is not one of {', '.join(INPUT_KINDS)}")
+    p = Path(path)
+    if p.is_dir():
+        raise InputFileError(p, "is a directory, not a capture file", "give the path of a capture file")
+    if not p.exists():
+        raise InputFileError(p, "no such file")
+    if kind == "auto":
+        kind = _guess_kind(p)
+    if kind == "capture":
+        reader = CaptureReader(p)
+        if serial is not None:
+            reader.header.serial = serial
+        return reader
+    if kind == "hex":
+        return HexTextSource(p, serial=serial, on_bad_line=on_bad_line)
+    return RawBinarySource(p, serial=serial)
+
+
+def _guess_kind(p: Path) -> str:
+    try:
+        with open(p, "rb") as f:
+            head = f.read(len(MAGIC))
+    except OSError as exc:
+        raise InputFileError(p, f"cannot be opened ({exc.strerror})") from None
+    if not head:
+        raise NotACaptureError(p, "is empty", "nothing was recorded into it")
+    if head.startswith(MAGIC[:4]):
+        return "capture"
+    if looks_like_hex_text(p):
+        return "hex"
+    raise NotACaptureError(
+        p, "is neither a buswitness capture nor timestamped hex text",
+        "if it holds raw bytes from the bus, pass --input-kind raw with --baud and --format")

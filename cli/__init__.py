@@ -1,0 +1,1 @@
+"""The ``buswitness`` command line: argument parsing and orchestration only."""

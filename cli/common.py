@@ -1,0 +1,85 @@
+"""Argument types and option groups shared by several verbs."""
+
+from __future__ import annotations
+
+import argparse
+import re
+
+from buswitness.decode.timing import SerialFormat, parse_baud
+from buswitness.errors import UsageError
+
+_DURATION = re.compile(r"(\d+(?:\.\d+)?)\s*(ms|s|m|h|d)", re.IGNORECASE)
+_UNITS_S = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|KiB|MiB|GiB)?\s*$", re.IGNORECASE)
+_SIZE_UNITS = {"b": 1, "kb": 1000, "mb": 1000**2, "gb": 1000**3, "kib": 1024, "mib": 1024**2, "gib": 1024**3}
+
+
+def duration_s(text: str) -> float:
+    """``"8h"``, ``"90s"``, ``"1h30m"``, ``"200ms"`` or a bare number of seconds, as seconds."""
+    s = str(text).strip()
+    try:
+        value = float(s)
+    except ValueError:
+        pos, value = 0, 0.0
+        for m in _DURATION.finditer(s):
+            if m.start() != pos:
+                break
+            value += float(m.group(1)) * _UNITS_S[m.group(2).lower()]
+            pos = m.end()
+        if pos != len(s) or not s:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a duration (e.g. 8h, 90m, 30s, 200ms)") from None
+    if value <= 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: a duration must be more than zero")
+    return value
+
+
+def size_bytes(text: str) -> int:
+    """``"200MB"``, ``"1GiB"`` or a bare byte count."""
+    m = _SIZE.match(str(text))
+    if not m:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a size (e.g. 200MB or 1GiB)")
+    value = int(float(m.group(1)) * _SIZE_UNITS[(m.group(2) or "b").lower()])
+    if value <= 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: a size must be more than zero")
+    return value
+
+
+def baud_arg(text: str) -> int:
+    try:
+        return parse_baud(text)
+    except UsageError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def format_arg(text: str) -> str:
+    try:
+        return SerialFormat.parse(text).short_form
+    except UsageError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def add_serial_options(parser: argparse.ArgumentParser, required: bool = False) -> None:
+    """``--baud`` and ``--format``: the bus's own character format (not necessarily the port's)."""
+    parser.add_argument("--baud", type=baud_arg, default=None, required=required,
+                        help="bus baud rate, e.g. 9600 or 19200")
+    parser.add_argument("--format", dest="char_format", type=format_arg, default=None,
+                        help="bus character format: data bits, parity, stop bits (8E1, 8N2, 8N1, 7E1)")
+
+
+def serial_from_args(args: argparse.Namespace, default: SerialFormat | None = None) -> SerialFormat | None:
+    """The SerialFormat the options name, filling the missing half from ``default``."""
+    baud = getattr(args, "baud", None)
+    fmt = getattr(args, "char_format", None)
+    if baud is None and fmt is None:
+        return default
+    base = default or SerialFormat()
+    return SerialFormat.parse(fmt or base.short_form, baud or base.baud)
+
+
+def add_input_options(parser: argparse.ArgumentParser) -> None:
+    """How to read an input file that may be a capture, hex text or raw bytes."""
+    parser.add_argument("--input-kind", choices=("auto", "capture", "hex", "raw"), default="auto",
+                        help="what the input file is (default: recognised from its first bytes)")
+    parser.add_argument("--on-bad-line", choices=("stop", "skip"), default="stop",
+                        help="hex text only: stop at a malformed line (default) or skip it with a warning")
+    add_serial_options(parser)

@@ -1,0 +1,1 @@
+"""Simulate: a Modbus RTU bus with faults, written as captures together with their ground truth."""

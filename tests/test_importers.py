@@ -1,0 +1,87 @@
+"""Importers for timestamped hex text and raw bytes, and recognising an input by its content."""
+
+from pathlib import Path
+
+import pytest
+
+from buswitness.capture.fileformat import FLAG_UNTIMED
+from buswitness.capture.sources import open_capture
+from buswitness.decode.crc import crc_ok
+from buswitness.decode.timing import SerialFormat
+from buswitness.errors import InputFileError, NotACaptureError, UsageError
+
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_captures"
+
+
+def test_sample_hex_text_reads_settings_and_chunks():
+    src = open_capture(SAMPLES / "tiny-poll.hex")
+    assert src.header.serial == SerialFormat.parse("8E1", 19200)
+    assert src.header.ports[0].latency_ms == 16
+    recs = [r for b in src.iter_batches() for r in b.records()]
+    assert len(recs) == 6
+    assert recs[0].t_ns == 4_000_000
+    assert recs[0].data == bytes.fromhex("0103000A0002E409")
+    assert all(crc_ok(r.data) for r in recs)  # the sample holds only whole frames
+
+
+def test_epoch_seconds_set_the_start_time(tmp_path):
+    p = tmp_path / "e.hex"
+    p.write_text("1767225600.5 01 02\n1767225600.75 03\n")
+    src = open_capture(p)
+    assert src.header.start_utc.startswith("2026-01-01T00:00:00.5")
+    recs = [r for b in src.iter_batches() for r in b.records()]
+    assert [r.t_ns for r in recs] == [0, 250_000_000]
+
+
+def test_contiguous_hex_and_0x_prefix_are_accepted(tmp_path):
+    p = tmp_path / "c.hex"
+    p.write_text("0.1 0103 0x00\n")
+    recs = [r for b in open_capture(p, kind="hex").iter_batches() for r in b.records()]
+    assert recs[0].data == b"\x01\x03\x00"
+
+
+def test_bad_line_stops_with_its_line_number(tmp_path):
+    p = tmp_path / "bad.hex"
+    p.write_text("# baud: 9600\n0.1 01 02\n0.2 zz 01\n0.3 05\n")
+    src = open_capture(p)
+    with pytest.raises(InputFileError, match="line 3: 'zz' is not hex"):
+        list(src.iter_batches())
+
+
+def test_bad_line_can_be_skipped_keeping_the_rest(tmp_path):
+    p = tmp_path / "bad.hex"
+    p.write_text("0.1 01 02\n0.2 zz 01\nnot a time 01\n0.05 07\n0.3 05\n")
+    src = open_capture(p, kind="hex", on_bad_line="skip")
+    recs = [r for b in src.iter_batches() for r in b.records()]
+    assert [r.data for r in recs] == [b"\x01\x02", b"\x05"]
+    assert len(src.report.warnings) == 3
+    assert "goes backwards" in src.report.warnings[2]
+
+
+def test_raw_binary_needs_settings(tmp_path):
+    with pytest.raises(UsageError, match="--baud and --format"):
+        open_capture(SAMPLES / "tiny-poll.bin", kind="raw")
+
+
+def test_raw_binary_gets_synthetic_back_to_back_times():
+    fmt = SerialFormat.parse("8E1", 19200)
+    src = open_capture(SAMPLES / "tiny-poll.bin", kind="raw", serial=fmt)
+    batches = list(src.iter_batches())
+    data = b"".join(b.payload.tobytes() for b in batches)
+    assert data == (SAMPLES / "tiny-poll.bin").read_bytes()
+    assert all((b.flags == FLAG_UNTIMED).all() for b in batches)
+    assert src.header.timing == "none"
+    # last byte of n bytes back to back ends at n character times
+    assert batches[-1].t_ns[-1] == pytest.approx(len(data) * fmt.char_time_s * 1e9, abs=1)
+
+
+def test_unknown_binary_is_refused_with_a_hint(tmp_path):
+    p = tmp_path / "x.dat"
+    p.write_bytes(bytes(range(256)))
+    with pytest.raises(NotACaptureError, match="--input-kind raw"):
+        open_capture(p)
+
+
+def test_missing_file_is_named(tmp_path):
+    with pytest.raises(InputFileError, match="nope.bwcap: no such file"):
+        open_capture(tmp_path / "nope.bwcap")
