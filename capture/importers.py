@@ -93,7 +93,10 @@ class HexTextSource:
                             else:
                                 notes = value
                         except (UsageError, ValueError) as exc:
-                            raise InputFileError(self.path, f"line {lineno}: bad setting ({exc})") from None
+                            if self.on_bad_line == "stop":
+                                raise InputFileError(self.path, f"line {lineno}: bad setting ({exc})",
+                                                     "fix the line, or pass --on-bad-line skip") from None
+                            self.report.warnings.append(f"{self.path}: line {lineno}: bad setting ignored ({exc})")
                     continue
                 try:
                     first_t = float(s.split()[0])

@@ -85,3 +85,13 @@ def test_unknown_binary_is_refused_with_a_hint(tmp_path):
 def test_missing_file_is_named(tmp_path):
     with pytest.raises(InputFileError, match="nope.bwcap: no such file"):
         open_capture(tmp_path / "nope.bwcap")
+
+
+def test_bad_setting_line_stops_or_is_ignored_as_chosen(tmp_path):
+    p = tmp_path / "s.hex"
+    p.write_text("# baud: fast\n0.1 01 02\n")
+    with pytest.raises(InputFileError, match="line 1: bad setting"):
+        open_capture(p, kind="hex")
+    src = open_capture(p, kind="hex", on_bad_line="skip")
+    assert src.header.serial.baud == 19200
+    assert "bad setting ignored" in src.report.warnings[0]
