@@ -3,17 +3,244 @@
 from __future__ import annotations
 
 import argparse
+import re
+import signal
+import sys
+import time
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Callable
 
-from buswitness.errors import NotBuiltYet
+from buswitness.capture.recorder import Recorder, RecorderConfig
+from buswitness.cli.common import add_serial_options, duration_s, serial_from_args, size_bytes
+from buswitness.decode.timing import SerialFormat
+from buswitness.errors import UsageError
 
 HELP = "record a bus to a capture file through a serial adapter (listen-only)"
 
+DESCRIPTION = """Record everything one or two serial adapters receive into one capture file,
+with a host timestamp for every read, until --duration or --until, or Ctrl-C.
+
+Listen-only: buswitness never writes to the port, and asks the driver to leave RTS and DTR
+deasserted so a transceiver wired to them is not keyed (some drivers raise DTR/RTS when any
+program opens the port; wire the adapter's receiver only if that matters).
+
+The capture is written in blocks at least once a second and synced to disk, so a power
+loss costs at most the last second. If an adapter disappears the gap is marked and the
+port is reopened (by path, or by USB serial number) when it comes back."""
+
+_UNTIL = re.compile(r"^\s*(\d{1,2}):(\d{2})(?::(\d{2}))?\s*$")
+
+
+def until_arg(text: str) -> str:
+    if not _UNTIL.match(text):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a time of day (e.g. 07:00 or 06:30:00)")
+    h, m, s = (int(x or 0) for x in _UNTIL.match(text).groups())  # type: ignore[union-attr]
+    if h > 23 or m > 59 or s > 59:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a time of day (00:00 to 23:59)")
+    return text
+
+
+def seconds_until(text: str, now: datetime | None = None) -> float:
+    """Seconds from ``now`` (local time) to the next time the clock shows ``text``."""
+    h, m, s = (int(x or 0) for x in _UNTIL.match(text).groups())  # type: ignore[union-attr]
+    now = now or datetime.now()
+    target = now.replace(hour=h, minute=m, second=s, microsecond=0)
+    if target <= now:
+        target += timedelta(days=1)
+    return (target - now).total_seconds()
+
+
+def rotate_arg(text: str) -> tuple[str, int]:
+    """``--rotate 1h`` (capture time) or ``--rotate 200MB`` (file size)."""
+    try:
+        return "bytes", size_bytes(text)
+    except argparse.ArgumentTypeError:
+        pass
+    try:
+        return "time", int(duration_s(text) * 1e9)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"{text!r} is neither a duration (1h) nor a size (200MB)") from None
+
+
+def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:
+    """Options shared by ``record`` and ``watch``."""
+    add_serial_options(p)
+    p.add_argument("-o", "--output", type=Path, required=output_required, default=None,
+                   help="capture file to write (e.g. night.bwcap); never overwritten")
+    p.add_argument("--rotate", type=rotate_arg, default=None,
+                   help="start a new numbered part every so much capture time (1h) or file size (200MB)")
+    p.add_argument("--note", default="", help="free text kept in the capture header, e.g. 'pump station bus 2'")
+    p.add_argument("--low-latency", action="store_true",
+                   help="set the USB adapter's latency timer to 1 ms (Linux; needs root or a udev rule)")
+
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("record", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("record", help=HELP, description=DESCRIPTION,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("ports", nargs="+", metavar="PORT",
+                   help="serial device (/dev/ttyUSB0, /dev/serial/by-id/...) or pyserial URL; two for a "
+                        "four-wire bus or one adapter per direction")
+    add_recording_options(p, output_required=True)
+    stop = p.add_mutually_exclusive_group()
+    stop.add_argument("--duration", type=duration_s, default=None, help="stop after this long (e.g. 12h)")
+    stop.add_argument("--until", type=until_arg, default=None, help="stop at this local time of day (e.g. 07:00)")
+    p.add_argument("--quiet", action="store_true", help="no status line, only errors and the summary")
     p.set_defaults(run=run)
 
 
+def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConfig:
+    if len(ports) > 2:
+        raise UsageError("record takes one or two ports (one per wire pair or direction)")
+    if len(set(ports)) != len(ports):
+        raise UsageError("the same port was given twice")
+    bus = serial_from_args(args, SerialFormat())
+    assert bus is not None
+    cfg = RecorderConfig(devices=list(ports), bus=bus, output=args.output, notes=args.note,
+                         low_latency=args.low_latency)
+    if args.rotate is not None:
+        kind, value = args.rotate
+        if kind == "bytes":
+            cfg.rotate_bytes = value
+        else:
+            cfg.rotate_ns = value
+    return cfg
+
+
+def stop_after(args: argparse.Namespace) -> float | None:
+    """Seconds to record, from --duration or --until (None: until stopped)."""
+    if getattr(args, "duration", None):
+        return float(args.duration)
+    if getattr(args, "until", None):
+        return seconds_until(args.until)
+    return None
+
+
+def run_recorder(rec: Recorder, seconds: float | None, refresh: Callable[[], None] | None = None,
+                 period_s: float = 0.5) -> None:
+    """Start ``rec``, run until the time is up, a signal arrives or the file fails; then close cleanly."""
+    previous = {}
+
+    def _stop(signum: int, frame: object) -> None:
+        rec.stop()
+
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        previous[sig] = signal.signal(sig, _stop)
+    if hasattr(signal, "SIGXFSZ"):
+        # Past a file-size limit, write() must fail with EFBIG (handled) rather than kill us.
+        previous[signal.SIGXFSZ] = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    try:
+        rec.start()
+        deadline = None if seconds is None else time.monotonic() + seconds
+        while not rec.stopping.is_set():
+            wait = period_s if deadline is None else max(0.0, min(period_s, deadline - time.monotonic()))
+            rec.stopping.wait(wait)
+            if refresh is not None:
+                refresh()
+            if deadline is not None and time.monotonic() >= deadline:
+                break
+        rec.join()
+    finally:
+        rec.stop()
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+
+
+def summary(rec: Recorder) -> str:
+    """What was recorded, per port, for the last lines printed."""
+    w = rec.writer
+    elapsed = (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
+    lines = []
+    if w is not None:
+        parts = ", ".join(str(p) for p in w.parts)
+        lines.append(f"recorded {w.bytes_written} bytes in {w.records_written} records over "
+                     f"{_hms(elapsed)} into {parts}")
+    for s in rec.stats:
+        extra = []
+        if s.line_errors:
+            extra.append(f"{s.line_errors} marked bytes")
+        if s.breaks:
+            extra.append(f"{s.breaks} breaks")
+        if s.disconnects:
+            extra.append(f"{s.disconnects} disconnects, {s.reopens} reopened")
+        if s.lost_reads:
+            extra.append(f"{s.lost_reads} reads LOST (writer fell behind)")
+        tail = f" ({'; '.join(extra)})" if extra else ""
+        lines.append(f"  {s.name}: {s.bytes} bytes, {s.reads} reads{tail}")
+    return "\n".join(lines)
+
+
+def _hms(seconds: float) -> str:
+    s = int(seconds)
+    return f"{s // 3600:d}:{s // 60 % 60:02d}:{s % 60:02d}"
+
+
+def status_renderable(rec: Recorder, live_decoder: object | None = None) -> object:
+    """The status line: elapsed, per-port bytes/records/rate, current part, last error, station counts."""
+    from rich.table import Table
+    from rich.text import Text
+
+    elapsed = max(1e-9, (time.monotonic_ns() - rec.start_ns) / 1e9)
+    grid = Table.grid(padding=(0, 2))
+    part = rec.current_part
+    grid.add_row(Text(f"recording {_hms(elapsed)}", style="bold"), Text(f"file {part.name if part else '-'}"))
+    for s in rec.stats:
+        state = "" if s.connected else "  [gone, retrying]"
+        err = f"  last: {s.last_error}" if s.last_error else ""
+        grid.add_row(Text(s.name), Text(f"{s.bytes} B  {s.records} rec  {s.bytes / elapsed:.0f} B/s{state}{err}"))
+    figures = getattr(live_decoder, "figures", None)
+    if figures is not None:
+        for st in figures.rows():
+            grid.add_row(Text(f"  station {st.station}"),
+                         Text(f"{st.frames} frames  {st.crc_errors} CRC failures  {st.timeouts} timeouts"))
+    reason = getattr(live_decoder, "disabled_reason", None)
+    if reason:
+        grid.add_row(Text(""), Text(reason))
+    return grid
+
+
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness record' is not built yet in this version; nothing was done")
+    from rich.console import Console
+    from rich.live import Live
+
+    from buswitness.analysis.rolling import LiveDecoder
+
+    cfg = config_from_args(args, args.ports)
+    console = Console(stderr=True)
+    show_status = not args.quiet and sys.stderr.isatty()
+    live_holder: dict[str, LiveDecoder | None] = {"dec": None}
+
+    def message(text: str) -> None:
+        console.print(text, markup=False, highlight=False, soft_wrap=True)
+
+    def tap(port: int, t_ns: int, data: bytes, flags: int) -> None:
+        dec = live_holder["dec"]
+        if dec is not None:
+            dec.add(port, t_ns, data, flags)
+
+    rec = Recorder(cfg, on_message=message, tap=tap if show_status else None)
+    seconds = stop_after(args)
+    if show_status:
+        live = Live(console=console, refresh_per_second=2, transient=True)
+
+        def refresh() -> None:
+            if live_holder["dec"] is None and rec.writer is not None and "tried" not in live_holder:
+                live_holder["tried"] = None  # type: ignore[assignment]
+                live_holder["dec"] = LiveDecoder.create(rec.writer.header)
+            dec = live_holder["dec"]
+            if dec is not None:
+                dec.update()
+            live.update(status_renderable(rec, dec))
+
+        with live:
+            try:
+                run_recorder(rec, seconds, refresh)
+            finally:
+                message(summary(rec))
+    else:
+        try:
+            run_recorder(rec, seconds)
+        finally:
+            if rec.writer is not None:
+                message(summary(rec))
+    return 0
