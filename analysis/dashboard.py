@@ -1,0 +1,160 @@
+"""The dashboard: one self-contained HTML file answering "which station fails, when, how badly".
+
+Built in two steps: plain data objects from the AnalysisResult, then an autoescaping template.
+Chart data travel as JSON in a ``<script type="application/json">`` element (escaped against
+``</script>``); plotly's JavaScript is inlined once; nothing is fetched from anywhere.
+"""
+
+from __future__ import annotations
+
+import html
+from pathlib import Path
+
+from markupsafe import Markup
+
+from buswitness.analysis.render import environment, finite, script_json, stylesheet
+from buswitness.analysis.result import AnalysisResult
+from buswitness.fsutil import atomic_write
+
+#: Rows in the frame browser (the slowest answers and first failures of each station).
+BROWSER_ROWS_PER_STATION = 12
+#: Traces drawn per chart before the rest start hidden (toggle them in the legend).
+VISIBLE_STATIONS = 8
+#: Our palette: calm, readable on a laptop in a plant room; one colour per station cycles.
+STATION_COLOURS = ("#2f6f8f", "#b5651d", "#5b8a3a", "#8a4f7d", "#c29b2f", "#3d7f7a", "#9c4a3c", "#55607a",
+                   "#7a8f2f", "#a0587a")
+FAULT_COLOURS = {"timeout": "#b0413e", "late": "#d08a2c", "corrupt": "#7b5ea7", "crc_errors": "#4a7fa8",
+                 "collisions": "#2e8b74"}
+
+
+def _plotly_js() -> str:
+    from plotly.offline import get_plotlyjs
+    return get_plotlyjs()
+
+
+def _minute_axis(result: AnalysisResult, n: int) -> list:
+    if result.utc_at(0.0):
+        return [result.utc_at(60.0 * i)[:19] for i in range(n)]
+    return [round(i / 60.0, 4) for i in range(n)]
+
+
+def _label(text: str) -> str:
+    """Plotly reads a few HTML-like tags in trace names; entities keep a name plain text."""
+    return html.escape(text, quote=True)
+
+
+def charts(result: AnalysisResult) -> dict:
+    """Plotly figure specs (data + layout) for every chart of the dashboard."""
+    n = result.minutes()
+    x = _minute_axis(result, n)
+    x_title = "time (UTC)" if result.utc_at(0.0) else "hours since capture start"
+    base_layout = {"margin": {"l": 60, "r": 20, "t": 10, "b": 45}, "paper_bgcolor": "rgba(0,0,0,0)",
+                   "plot_bgcolor": "#fbfaf7", "font": {"family": "system-ui, sans-serif", "size": 12,
+                                                       "color": "#27323a"},
+                   "legend": {"orientation": "h", "y": -0.25}, "hovermode": "closest"}
+    rt_traces, dist_traces, heat_z, heat_y = [], [], [], []
+    for i, s in enumerate(result.stations):
+        colour = STATION_COLOURS[i % len(STATION_COLOURS)]
+        visible = True if i < VISIBLE_STATIONS else "legendonly"
+        series = result.station_series(s.address)
+        name = _label(s.label)
+        if any(v == v for v in series["rt_p95"]):
+            rt_traces.append({"type": "scattergl", "mode": "lines", "name": f"{name} p50", "x": x,
+                              "y": finite(series["rt_p50"]), "line": {"color": colour, "width": 1},
+                              "legendgroup": name, "visible": visible})
+            rt_traces.append({"type": "scattergl", "mode": "lines", "name": f"{name} p95", "x": x,
+                              "y": finite(series["rt_p95"]), "line": {"color": colour, "width": 2, "dash": "dot"},
+                              "legendgroup": name, "visible": visible})
+            rt_traces.append({"type": "scattergl", "mode": "markers", "name": f"{name} max", "x": x,
+                              "y": finite(series["rt_max"]), "marker": {"color": colour, "size": 4, "symbol": "x"},
+                              "legendgroup": name, "visible": visible})
+        edges, counts = result.response_histogram(s.address)
+        if counts:
+            centres = [(a * b) ** 0.5 for a, b in zip(edges[:-1], edges[1:])]
+            widths = [b - a for a, b in zip(edges[:-1], edges[1:])]
+            dist_traces.append({"type": "bar", "name": name, "x": centres, "y": counts, "width": widths,
+                                "marker": {"color": colour}, "opacity": 0.75, "visible": visible})
+        heat_y.append(name)
+        heat_z.append([a + b + c + d + e for a, b, c, d, e in zip(series["timeout"], series["late"],
+                                                                  series["corrupt"], series["crc_errors"],
+                                                                  series["collisions"])])
+    timeout = result.timeout.timeout_ms
+    shapes = []
+    if timeout is not None and rt_traces:
+        shapes.append({"type": "line", "xref": "paper", "x0": 0, "x1": 1, "y0": timeout, "y1": timeout,
+                       "line": {"color": "#b0413e", "width": 1.5, "dash": "dash"}})
+    bus = result.bus_series()
+    event_traces = [{"type": "bar", "name": kind.replace("event_", "").replace("_", " "), "x": x, "y": values}
+                    for kind, values in bus.items() if kind.startswith("event_")]
+    return {
+        "rt": {"data": rt_traces, "layout": {**base_layout, "yaxis": {"title": {"text": "response time (ms)"},
+                                                                        "rangemode": "tozero"},
+                                             "xaxis": {"title": {"text": x_title}}, "shapes": shapes}},
+        "dist": {"data": dist_traces, "layout": {**base_layout, "barmode": "overlay",
+                                                 "xaxis": {"type": "log", "title": {"text": "response time (ms)"}},
+                                                 "yaxis": {"title": {"text": "answers"}},
+                                                 "shapes": [dict(s, xref="x", yref="paper", x0=timeout, x1=timeout,
+                                                                 y0=0, y1=1) for s in shapes]}},
+        "timeline": {"data": [{"type": "heatmap", "x": x, "y": heat_y, "z": heat_z,
+                               "colorscale": [[0, "#f4f1ea"], [0.001, "#f1d9a6"], [0.3, "#d08a2c"],
+                                              [1, "#8c2f2b"]],
+                               "colorbar": {"title": {"text": "per minute"}}, "hoverongaps": False}],
+                     "layout": {**base_layout, "margin": {"l": 160, "r": 20, "t": 10, "b": 45},
+                                "xaxis": {"title": {"text": x_title}}}},
+        "events": {"data": event_traces, "layout": {**base_layout, "barmode": "stack",
+                                                    "yaxis": {"title": {"text": "events per minute"}},
+                                                    "xaxis": {"title": {"text": x_title}}}},
+        "util": {"data": [{"type": "scatter", "mode": "lines", "name": "line busy", "x": x,
+                           "y": [round(100 * u, 3) for u in bus["utilisation"]], "fill": "tozeroy",
+                           "line": {"color": "#2f6f8f"}}],
+                 "layout": {**base_layout, "yaxis": {"title": {"text": "line busy (%)"}, "rangemode": "tozero"},
+                            "xaxis": {"title": {"text": x_title}}}},
+    }
+
+
+def finding_views(result: AnalysisResult) -> list[dict]:
+    return [{"severity": f.severity, "statement": f.statement, "station_label": f.station_label,
+             "evidence": f.evidence, "causes": f.causes, "caution": f.caution,
+             "when": "" if f.t_start_s is None else f"{_clock(result, f.t_start_s)} to {_clock(result, f.t_end_s)}"}
+            for f in result.findings]
+
+
+def _clock(result: AnalysisResult, t_s: float | None) -> str:
+    if t_s is None:
+        return "end"
+    utc = result.utc_at(t_s)
+    return utc[11:19] + " UTC" if utc else f"{t_s / 3600:.2f} h"
+
+
+def dashboard_data(result: AnalysisResult) -> dict:
+    """Everything the template shows, as plain data."""
+    rows = []
+    for s in result.stations:
+        rows.append({"s": s, "fail_pct": None if not s.requests else 100.0 * (s.timeouts + s.late + s.corrupt)
+                     / s.requests})
+    browser = []
+    for r in result.worst_transactions(BROWSER_ROWS_PER_STATION):
+        r = dict(r)
+        r["clock"] = r["utc"][11:23] if r.get("utc") else f"{r['t_s']:.3f} s"
+        browser.append(r)
+    damage = result.damage
+    return {"result": result, "bus": result.bus, "timeout": result.timeout, "rows": rows, "browser": browser,
+            "findings": finding_views(result), "damage": None if damage is None or damage.clean else damage,
+            "start": result.header.start_utc, "duration_h": result.bus.duration_s / 3600.0,
+            "files": [Path(p).name for p in result.paths]}
+
+
+def render_dashboard(result: AnalysisResult) -> str:
+    """The dashboard page as one string."""
+    env = environment()
+    return env.get_template("dashboard.html").render(
+        d=dashboard_data(result), css=Markup(stylesheet("dashboard.css")), plotly_js=Markup(_plotly_js()),
+        chart_json=Markup(script_json(charts(result))))
+
+
+def write_dashboard(result: AnalysisResult, path: str | Path) -> Path:
+    """Write the dashboard atomically."""
+    text = render_dashboard(result)
+    with atomic_write(path) as f:
+        f.write(text)
+    return Path(path)

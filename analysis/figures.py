@@ -1,0 +1,439 @@
+"""Per-station and bus accumulators: fed table blocks from the decoder, merged, then finalised.
+
+Streaming by design: every block of frames, transactions and events updates fixed-size
+arrays (counts are exact; response-time quantiles come from log-spaced histograms of the
+midpoints *and* of both ends of each interval, so a quantile is reported with the interval
+the timestamps allow). Memory grows only with the number of minutes (the time series) and is
+capped for the example lists (worst transactions, late answers: the counts stay exact).
+"""
+
+from __future__ import annotations
+
+import heapq
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from buswitness.analysis.devid import device_id_text
+from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, quantile, quantiles_rows
+
+OUTCOMES = ("ok", "exception", "timeout", "late", "corrupt", "broadcast")
+EVENT_KINDS = ("crc_error", "truncated", "gap_in_frame", "turnaround_short", "line_error", "break",
+               "stray_bytes", "collision", "bytes_lost", "port_gap", "unexpected_responder", "orphan_response",
+               "other")
+#: Columns of the per-station per-minute series.
+MINUTE_COLUMNS = ("requests", "ok", "exception", "timeout", "late", "corrupt", "retries", "crc_errors",
+                  "collisions")
+#: Columns of the bus per-minute series (besides the event kinds).
+BUS_MINUTE_COLUMNS = ("busy_ms", "frames", "bytes")
+
+N_ADDR = 256
+NS_PER_MIN = 60_000_000_000
+WORST_PER_STATION = 25      #: slowest answers kept per station for the frame browser
+FAILURES_PER_STATION = 25   #: first timeouts/corrupt answers kept per station as examples
+LATE_CAP = 5000             #: late answers listed per station (the count is exact beyond it)
+LARGEST_GAPS = 20           #: longest silences between frames kept
+DEVICE_IDS_PER_STATION = 4  #: distinct identification strings kept per station
+
+_OUTCOME_INDEX = {name: i for i, name in enumerate(OUTCOMES)}
+_KIND_INDEX = {name: i for i, name in enumerate(EVENT_KINDS)}
+_DAMAGE_KINDS = ("crc_error", "truncated", "stray_bytes", "collision", "line_error")
+
+
+def _codes(values: pd.Series, vocabulary: tuple[str, ...], fallback: int) -> np.ndarray:
+    codes = pd.Categorical(values.astype(str), categories=list(vocabulary)).codes.astype(np.int64)
+    codes[codes < 0] = fallback
+    return codes
+
+
+class _Growing:
+    """A 2-D array indexed by minute that grows as later minutes arrive."""
+
+    def __init__(self, width: int, dtype: type = np.int64, fill: float = 0) -> None:
+        self.fill = fill
+        self.data = np.full((64, width), fill, dtype=dtype)
+        self.minutes = 0
+
+    def ensure(self, n_minutes: int) -> np.ndarray:
+        if n_minutes > self.data.shape[0]:
+            rows = max(n_minutes, 2 * self.data.shape[0])
+            grown = np.full((rows, self.data.shape[1]), self.fill, dtype=self.data.dtype)
+            grown[: self.data.shape[0]] = self.data
+            self.data = grown
+        self.minutes = max(self.minutes, n_minutes)
+        return self.data
+
+    def view(self) -> np.ndarray:
+        return self.data[: self.minutes]
+
+    def merge(self, other: "_Growing", how: str = "add") -> None:
+        data = self.ensure(other.minutes)
+        if how == "max":
+            np.fmax(data[: other.minutes], other.view(), out=data[: other.minutes])
+        else:
+            data[: other.minutes] += other.view()
+
+
+def tx_row(t0_ns: int, t_req_ns: int, station: int, function: int, outcome: str, response_ms: float,
+           lo: float, hi: float, exception_code: int, retry: bool, request: bytes, response: bytes) -> dict:
+    """One transaction as the plain dict every report lists."""
+    return {"t_s": (t_req_ns - t0_ns) / 1e9, "station": int(station), "function": int(function),
+            "outcome": str(outcome), "response_ms": None if math.isnan(response_ms) else float(response_ms),
+            "response_ms_low": None if math.isnan(lo) else float(lo),
+            "response_ms_high": None if math.isnan(hi) else float(hi),
+            "exception_code": int(exception_code), "retry": bool(retry),
+            "request_hex": bytes(request).hex(" "), "response_hex": bytes(response).hex(" ")}
+
+
+@dataclass
+class Accumulator:
+    """Everything the analysis keeps while the capture streams past; ``merge`` adds two together."""
+
+    t0_ns: int
+    char_ns: float
+    outcomes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, len(OUTCOMES)), np.int64))
+    retries: np.ndarray = field(default_factory=lambda: np.zeros(N_ADDR, np.int64))
+    exception_codes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, 256), np.int64))
+    functions: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, 256), np.int64))
+    rt_mid: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    rt_low: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    rt_high: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    halfwidth: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    rt_min: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, np.inf))
+    rt_max: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))
+    poll: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    last_request_ns: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -1, np.int64))
+    move_on: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
+    move_on_sum_ms: np.ndarray = field(default_factory=lambda: np.zeros(N_ADDR))
+    events: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR + 1, len(EVENT_KINDS)), np.int64))
+    gaps: np.ndarray = field(default_factory=lambda: np.zeros(FINE.count, np.int64))
+    frames: int = 0
+    frame_bytes: int = 0
+    response_frames: int = 0
+    busy_ns: float = 0.0
+    first_ns: int | None = None
+    last_ns: int | None = None
+    unknown_outcomes: int = 0
+    largest_gaps: list = field(default_factory=list)     # heap of (gap_ms, t_ns)
+    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, row)
+    failures: dict = field(default_factory=dict)         # station -> list of rows
+    late_rows: dict = field(default_factory=dict)        # station -> list of rows
+    device_ids: dict = field(default_factory=dict)       # station -> list of str
+    station_minutes: dict = field(default_factory=dict)  # station -> _Growing(len(MINUTE_COLUMNS))
+    station_minute_rt: dict = field(default_factory=dict)   # station -> _Growing(COARSE.count)
+    station_minute_max: dict = field(default_factory=dict)  # station -> _Growing(1, float, nan)
+    bus_minutes: _Growing = field(default_factory=lambda: _Growing(len(BUS_MINUTE_COLUMNS) + len(EVENT_KINDS),
+                                                                    np.float64))
+    _last_frame_end_ns: int | None = None
+    _pending_timeout: tuple | None = None  # (station, t_request_end_ns) awaiting the next request
+    _seq: int = 0
+
+    # -- feeding ---------------------------------------------------------------------------------
+
+    def _minute(self, t_ns: np.ndarray) -> np.ndarray:
+        return np.maximum((np.asarray(t_ns, np.int64) - self.t0_ns) // NS_PER_MIN, 0)
+
+    def _span(self, t_ns: np.ndarray) -> None:
+        if len(t_ns):
+            lo, hi = int(t_ns.min()), int(t_ns.max())
+            self.first_ns = lo if self.first_ns is None else min(self.first_ns, lo)
+            self.last_ns = hi if self.last_ns is None else max(self.last_ns, hi)
+
+    def add_frames(self, frames: pd.DataFrame) -> None:
+        """Bus traffic: frames, bytes, line busy time, silences between frames."""
+        if frames.empty:
+            return
+        t_start = frames["t_start_ns"].to_numpy(np.int64)
+        t_end = frames["t_end_ns"].to_numpy(np.int64)
+        length = frames["length"].to_numpy(np.int64)
+        self._span(t_start)
+        self._span(t_end)
+        self.frames += len(frames)
+        self.frame_bytes += int(length.sum())
+        self.response_frames += int((frames["direction"].astype(str) == "response").sum())
+        busy = length * self.char_ns
+        self.busy_ns += float(busy.sum())
+        minute = self._minute(t_start)
+        data = self.bus_minutes.ensure(int(minute.max()) + 1)
+        np.add.at(data[:, 0], minute, busy / 1e6)
+        np.add.at(data[:, 1], minute, 1)
+        np.add.at(data[:, 2], minute, length)
+        order = np.argsort(t_start, kind="stable")
+        starts, ends = t_start[order], t_end[order]
+        prev_end = np.concatenate(([self._last_frame_end_ns if self._last_frame_end_ns is not None else starts[0]],
+                                   ends[:-1]))
+        gap_ms = (starts - prev_end) / 1e6
+        if self._last_frame_end_ns is None:
+            gap_ms, starts_g = gap_ms[1:], starts[1:]
+        else:
+            starts_g = starts
+        gap_ms = np.maximum(gap_ms, 0.0)
+        self._last_frame_end_ns = int(max(ends.max(), self._last_frame_end_ns or ends.max()))
+        if len(gap_ms):
+            self.gaps += np.bincount(FINE.index(gap_ms), minlength=FINE.count)
+            top = np.lexsort((starts_g, gap_ms))[-LARGEST_GAPS:]
+            for i in top:
+                item = (float(gap_ms[i]), int(starts_g[i]))
+                if len(self.largest_gaps) < LARGEST_GAPS:
+                    heapq.heappush(self.largest_gaps, item)
+                elif item > self.largest_gaps[0]:
+                    heapq.heapreplace(self.largest_gaps, item)
+
+    def add_transactions(self, tx: pd.DataFrame) -> None:
+        """Outcomes, response times, poll cycle, master move-on gaps, example lists."""
+        if tx.empty:
+            return
+        tx = tx.sort_values("t_request_end_ns", kind="stable")
+        t_req = tx["t_request_end_ns"].to_numpy(np.int64)
+        self._span(t_req)
+        station = tx["station"].to_numpy(np.int64)
+        function = tx["function"].to_numpy(np.int64)
+        outcome = _codes(tx["outcome"], OUTCOMES, -1)
+        self.unknown_outcomes += int((outcome < 0).sum())
+        known = outcome >= 0
+        self.outcomes += np.bincount(station[known] * len(OUTCOMES) + outcome[known],
+                                     minlength=N_ADDR * len(OUTCOMES)).reshape(N_ADDR, len(OUTCOMES))
+        retry = tx["retry"].to_numpy(bool)
+        self.retries += np.bincount(station[retry], minlength=N_ADDR)
+        exc = outcome == _OUTCOME_INDEX["exception"]
+        if exc.any():
+            codes = tx["exception_code"].to_numpy(np.int64)[exc]
+            self.exception_codes += np.bincount(station[exc] * 256 + codes, minlength=N_ADDR * 256).reshape(N_ADDR, 256)
+        self.functions += np.bincount(station * 256 + function, minlength=N_ADDR * 256).reshape(N_ADDR, 256)
+
+        rt = tx["response_ms"].to_numpy(np.float64)
+        lo = tx["response_ms_low"].to_numpy(np.float64)
+        hi = tx["response_ms_high"].to_numpy(np.float64)
+        timed = np.isfinite(rt) & np.isin(outcome, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late")])
+        if timed.any():
+            s = station[timed]
+            for hist, values in ((self.rt_mid, rt), (self.rt_low, np.where(np.isfinite(lo), lo, rt)),
+                                 (self.rt_high, np.where(np.isfinite(hi), hi, rt))):
+                hist += np.bincount(s * FINE.count + FINE.index(values[timed]),
+                                    minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+            half = np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed]
+            self.halfwidth += np.bincount(s * FINE.count + FINE.index(half),
+                                          minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+            np.fmin.at(self.rt_min, s, rt[timed])
+            np.fmax.at(self.rt_max, s, rt[timed])
+
+        self._poll_cycle(station, t_req)
+        self._move_on(tx, station, outcome, t_req)
+        self._station_minutes(station, outcome, retry, rt, timed, t_req)
+        self._examples(tx, station, outcome, rt, timed, t_req)
+
+    def _poll_cycle(self, station: np.ndarray, t_req: np.ndarray) -> None:
+        order = np.lexsort((t_req, station))
+        s, t = station[order], t_req[order]
+        same = np.concatenate(([False], s[1:] == s[:-1]))
+        prev = np.where(same, np.concatenate(([0], t[:-1])), self.last_request_ns[s])
+        valid = prev >= 0
+        valid &= s != 0
+        if valid.any():
+            d_ms = (t[valid] - prev[valid]) / 1e6
+            self.poll += np.bincount(s[valid] * FINE.count + FINE.index(np.maximum(d_ms, 0)),
+                                     minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+        last = np.concatenate((s[1:] != s[:-1], [True]))
+        self.last_request_ns[s[last]] = t[last]
+
+    def _move_on(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, t_req: np.ndarray) -> None:
+        """Silence after an unanswered request until the master's next request: its timeout at work."""
+        req_len = tx["request_raw"].map(len).to_numpy(np.int64)
+        next_start = t_req - (req_len * self.char_ns).astype(np.int64)
+        timeout = outcome == _OUTCOME_INDEX["timeout"]
+        if self._pending_timeout is not None:
+            st, t_end = self._pending_timeout
+            self._add_move_on(np.array([st]), np.array([(next_start[0] - t_end) / 1e6]))
+            self._pending_timeout = None
+        idx = np.flatnonzero(timeout[:-1])
+        if len(idx):
+            self._add_move_on(station[idx], (next_start[idx + 1] - t_req[idx]) / 1e6)
+        if timeout[-1]:
+            self._pending_timeout = (int(station[-1]), int(t_req[-1]))
+
+    def _add_move_on(self, station: np.ndarray, gap_ms: np.ndarray) -> None:
+        gap_ms = np.maximum(gap_ms, 0.0)
+        self.move_on += np.bincount(station * FINE.count + FINE.index(gap_ms),
+                                    minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+        np.add.at(self.move_on_sum_ms, station, gap_ms)
+
+    def _station_minutes(self, station: np.ndarray, outcome: np.ndarray, retry: np.ndarray, rt: np.ndarray,
+                         timed: np.ndarray, t_req: np.ndarray) -> None:
+        minute = self._minute(t_req)
+        n_min = int(minute.max()) + 1
+        for st in np.unique(station):
+            sel = station == st
+            m = minute[sel]
+            series = self.station_minutes.setdefault(int(st), _Growing(len(MINUTE_COLUMNS)))
+            data = series.ensure(n_min)
+            np.add.at(data[:, 0], m, 1)
+            for col, name in enumerate(("ok", "exception", "timeout", "late", "corrupt"), start=1):
+                np.add.at(data[:, col], m[outcome[sel] == _OUTCOME_INDEX[name]], 1)
+            np.add.at(data[:, 6], m[retry[sel]], 1)
+            tsel = sel & timed
+            if tsel.any():
+                hist = self.station_minute_rt.setdefault(int(st), _Growing(COARSE.count)).ensure(n_min)
+                np.add.at(hist, (minute[tsel], COARSE.index(rt[tsel])), 1)
+                mx = self.station_minute_max.setdefault(int(st), _Growing(1, np.float64, np.nan)).ensure(n_min)
+                np.fmax.at(mx[:, 0], minute[tsel], rt[tsel])
+
+    def _examples(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, rt: np.ndarray,
+                  timed: np.ndarray, t_req: np.ndarray) -> None:
+        cols = ("t_request_end_ns", "station", "function", "outcome", "response_ms", "response_ms_low",
+                "response_ms_high", "exception_code", "retry", "request_raw", "response_raw")
+
+        def row(i: int) -> dict:
+            return tx_row(self.t0_ns, *(tx[c].iat[i] for c in cols))
+
+        for st in np.unique(station[timed]):
+            idx = np.flatnonzero(timed & (station == st))
+            top = idx[np.argsort(rt[idx])[-WORST_PER_STATION:]]
+            heap = self.worst.setdefault(int(st), [])
+            for i in top:
+                self._seq += 1
+                item = (float(rt[i]), self._seq, row(int(i)))
+                if len(heap) < WORST_PER_STATION:
+                    heapq.heappush(heap, item)
+                elif item[0] > heap[0][0]:
+                    heapq.heapreplace(heap, item)
+        failed = np.isin(outcome, [_OUTCOME_INDEX["timeout"], _OUTCOME_INDEX["corrupt"]])
+        for st in np.unique(station[failed]):
+            kept = self.failures.setdefault(int(st), [])
+            room = FAILURES_PER_STATION - len(kept)
+            if room > 0:
+                kept.extend(row(int(i)) for i in np.flatnonzero(failed & (station == st))[:room])
+        late = outcome == _OUTCOME_INDEX["late"]
+        for st in np.unique(station[late]):
+            kept = self.late_rows.setdefault(int(st), [])
+            room = LATE_CAP - len(kept)
+            if room > 0:
+                kept.extend(row(int(i)) for i in np.flatnonzero(late & (station == st))[:room])
+        ident = np.isin(tx["function"].to_numpy(np.int64), [0x11, 0x2B]) & np.isin(
+            outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["late"]])
+        for i in np.flatnonzero(ident):
+            st = int(station[i])
+            known = self.device_ids.setdefault(st, [])
+            if len(known) >= DEVICE_IDS_PER_STATION:
+                continue
+            text = device_id_text(bytes(tx["response_raw"].iat[i]))
+            if text and text not in known:
+                known.append(text)
+
+    def add_events(self, events: pd.DataFrame) -> None:
+        """Damage and notable traffic, counted per station and kind and per minute."""
+        if events.empty:
+            return
+        t = events["t_ns"].to_numpy(np.int64)
+        self._span(t)
+        kind = _codes(events["kind"], EVENT_KINDS, _KIND_INDEX["other"])
+        station = events["station"].to_numpy(np.int64)
+        row = np.where((station >= 0) & (station < N_ADDR), station + 1, 0)
+        self.events += np.bincount(row * len(EVENT_KINDS) + kind,
+                                   minlength=(N_ADDR + 1) * len(EVENT_KINDS)).reshape(N_ADDR + 1, len(EVENT_KINDS))
+        raw_len = events["raw"].map(len).to_numpy(np.int64)
+        damage = np.isin(kind, [_KIND_INDEX[k] for k in _DAMAGE_KINDS])
+        busy = raw_len * self.char_ns * damage
+        self.busy_ns += float(busy.sum())
+        minute = self._minute(t)
+        data = self.bus_minutes.ensure(int(minute.max()) + 1)
+        np.add.at(data[:, 0], minute, busy / 1e6)
+        np.add.at(data, (minute, len(BUS_MINUTE_COLUMNS) + kind), 1)
+        for name, col in (("crc_error", 7), ("collision", 8)):
+            sel = (kind == _KIND_INDEX[name]) & (row > 0)
+            for st in np.unique(station[sel]):
+                m = minute[sel & (station == st)]
+                series = self.station_minutes.setdefault(int(st), _Growing(len(MINUTE_COLUMNS)))
+                np.add.at(series.ensure(int(m.max()) + 1)[:, col], m, 1)
+
+    # -- merging ---------------------------------------------------------------------------------
+
+    def merge(self, other: "Accumulator") -> None:
+        """Add ``other`` (a later or parallel part of the same capture) into this one."""
+        if other.t0_ns != self.t0_ns:
+            raise ValueError("accumulators of different capture starts cannot be merged")
+        for name in ("outcomes", "retries", "exception_codes", "functions", "rt_mid", "rt_low", "rt_high",
+                     "halfwidth", "poll", "move_on", "move_on_sum_ms", "events", "gaps"):
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+        self.rt_min = np.fmin(self.rt_min, other.rt_min)
+        self.rt_max = np.fmax(self.rt_max, other.rt_max)
+        for name in ("frames", "frame_bytes", "response_frames", "busy_ns", "unknown_outcomes"):
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+        spans = [x for x in (self.first_ns, other.first_ns) if x is not None]
+        self.first_ns = min(spans) if spans else None
+        spans = [x for x in (self.last_ns, other.last_ns) if x is not None]
+        self.last_ns = max(spans) if spans else None
+        self.largest_gaps = heapq.nlargest(LARGEST_GAPS, self.largest_gaps + other.largest_gaps)
+        heapq.heapify(self.largest_gaps)
+        for st, heap in other.worst.items():
+            mine = heapq.nlargest(WORST_PER_STATION, self.worst.get(st, []) + heap, key=lambda x: (x[0], x[1]))
+            heapq.heapify(mine)
+            self.worst[st] = mine
+        for target, source, cap in ((self.failures, other.failures, FAILURES_PER_STATION),
+                                    (self.late_rows, other.late_rows, LATE_CAP)):
+            for st, rows in source.items():
+                merged = sorted(target.get(st, []) + rows, key=lambda r: r["t_s"])
+                target[st] = merged[:cap]
+        for st, ids in other.device_ids.items():
+            mine = self.device_ids.setdefault(st, [])
+            mine.extend(i for i in ids if i not in mine)
+            del mine[DEVICE_IDS_PER_STATION:]
+        for target, source, how in ((self.station_minutes, other.station_minutes, "add"),
+                                    (self.station_minute_rt, other.station_minute_rt, "add"),
+                                    (self.station_minute_max, other.station_minute_max, "max")):
+            for st, series in source.items():
+                if st in target:
+                    target[st].merge(series, how)
+                else:
+                    target[st] = series
+        self.bus_minutes.merge(other.bus_minutes)
+
+    # -- reading out -----------------------------------------------------------------------------
+
+    def stations_seen(self) -> list[int]:
+        """Every address the master polled or a station answered from (broadcast address 0 excluded)."""
+        polled = np.flatnonzero(self.outcomes.sum(axis=1) + self.events[1:].sum(axis=1))
+        return [int(a) for a in polled if a != 0]
+
+
+def _q(counts: np.ndarray, q: float, bins: LogBins = FINE, vmin: float | None = None,
+       vmax: float | None = None) -> float | None:
+    value = quantile(counts, q, bins, vmin, vmax)
+    return None if value is None else round(value, 3)
+
+
+QUANTILES = (("p50", 0.50), ("p95", 0.95), ("p99", 0.99))
+
+
+def response_figures(acc: Accumulator, address: int) -> dict:
+    """min/p50/p95/p99/max of one station's response times, each quantile with its interval."""
+    mid, low, high = acc.rt_mid[address], acc.rt_low[address], acc.rt_high[address]
+    vmin = float(acc.rt_min[address]) if np.isfinite(acc.rt_min[address]) else None
+    vmax = float(acc.rt_max[address]) if np.isfinite(acc.rt_max[address]) else None
+    out: dict = {"min": None if vmin is None else round(vmin, 3)}
+    intervals: dict = {}
+    for name, q in QUANTILES:
+        out[name] = _q(mid, q, vmin=vmin, vmax=vmax)
+        lo, hi = _q(low, q), _q(high, q)
+        intervals[name] = None if lo is None else [round(lo / (1 + FINE.relative_resolution), 3),
+                                                   round(hi * (1 + FINE.relative_resolution), 3)]
+    out["max"] = None if vmax is None else round(vmax, 3)
+    return {"response_ms": out, "response_ms_interval": intervals,
+            "timing_halfwidth_ms": _q(acc.halfwidth[address], 0.5)}
+
+
+def minute_bands(acc: Accumulator, address: int) -> dict:
+    """Per-minute p50, p95 and max response time of one station (NaN where it did not answer)."""
+    hist = acc.station_minute_rt.get(address)
+    mx = acc.station_minute_max.get(address)
+    if hist is None or mx is None:
+        return {"p50": [], "p95": [], "max": []}
+    counts = hist.view()
+    return {"p50": quantiles_rows(counts, 0.5, COARSE).tolist(), "p95": quantiles_rows(counts, 0.95, COARSE).tolist(),
+            "max": mx.view()[:, 0].tolist()}
+
+
+def above(acc: Accumulator, address: int, threshold_ms: float) -> int:
+    """Answers whose response time lies wholly above ``threshold_ms`` (from the histogram)."""
+    return count_above(acc.rt_mid[address], threshold_ms, FINE)

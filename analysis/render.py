@@ -1,0 +1,70 @@
+"""Shared rendering helpers: the autoescaping template environment and safe inline JSON."""
+
+from __future__ import annotations
+
+import json
+import math
+from importlib import resources
+
+import jinja2
+
+from buswitness.analysis.result import EXCEPTION_NAMES
+
+FUNCTION_NAMES = {1: "read coils", 2: "read discrete inputs", 3: "read holding registers",
+                  4: "read input registers", 5: "write single coil", 6: "write single register",
+                  7: "read exception status", 8: "diagnostics", 11: "get comm event counter",
+                  12: "get comm event log", 15: "write multiple coils", 16: "write multiple registers",
+                  17: "report server ID", 20: "read file record", 21: "write file record",
+                  22: "mask write register", 23: "read/write multiple registers", 24: "read FIFO queue",
+                  43: "encapsulated interface (device identification)"}
+
+
+def function_name(code: int) -> str:
+    """``3 (read holding registers)``; names from the MB Application Protocol V1.1b3 function table."""
+    base = code & 0x7F
+    name = FUNCTION_NAMES.get(base, "function")
+    return f"{code} ({name}{', exception' if code & 0x80 else ''})"
+
+
+def exception_name(code: int) -> str:
+    return EXCEPTION_NAMES.get(int(code), "non-standard code")
+
+
+def fmt_ms(value: float | None, digits: int = 1) -> str:
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return "–"
+    return f"{value:.{digits}f}"
+
+
+def fmt_interval(pair: list | None) -> str:
+    if not pair:
+        return ""
+    return f"{pair[0]:.1f}–{pair[1]:.1f}"
+
+
+def script_json(data: object) -> str:
+    """JSON that is safe inside ``<script>``: ``<``, ``>`` and ``&`` as unicode escapes, no NaN."""
+    text = json.dumps(data, allow_nan=False, separators=(",", ":"))
+    return (text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026")
+            .replace("\u2028", "\\u2028").replace("\u2029", "\\u2029"))
+
+
+def finite(values: list) -> list:
+    """Floats with NaN turned into None (JSON null: a gap in a chart)."""
+    return [None if isinstance(v, float) and not math.isfinite(v) else v for v in values]
+
+
+def environment() -> jinja2.Environment:
+    """Templates from the package, autoescaped whatever their name."""
+    env = jinja2.Environment(loader=jinja2.FunctionLoader(_load), autoescape=True, undefined=jinja2.StrictUndefined,
+                             trim_blocks=True, lstrip_blocks=True)
+    env.filters.update(ms=fmt_ms, interval=fmt_interval, fname=function_name, exname=exception_name)
+    return env
+
+
+def _load(name: str) -> str:
+    return resources.files("buswitness.analysis.templates").joinpath(name).read_text(encoding="utf-8")
+
+
+def stylesheet(name: str) -> str:
+    return _load(name)

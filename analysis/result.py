@@ -1,0 +1,249 @@
+"""The analysis result: per-station and bus figures read out of the accumulator, plus context.
+
+Everything a report shows comes from one ``AnalysisResult``, so the dashboard, the evidence
+report, ``summary.json`` and the text summary of ``analyze`` always agree.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+
+from buswitness import __version__
+from buswitness.analysis.figures import (EVENT_KINDS, FAILURES_PER_STATION, LATE_CAP, MINUTE_COLUMNS, OUTCOMES,
+                                         Accumulator, above, minute_bands, response_figures)
+from buswitness.analysis.finding import Finding
+from buswitness.analysis.histogram import FINE, quantile
+from buswitness.analysis.stationmap import StationMap
+from buswitness.analysis.timeout import TimeoutEstimate
+from buswitness.capture.fileformat import CaptureHeader, ReadReport
+
+_O = {name: i for i, name in enumerate(OUTCOMES)}
+_K = {name: i for i, name in enumerate(EVENT_KINDS)}
+
+#: Exception codes and their meaning (MB Application Protocol V1.1b3 p48-49).
+EXCEPTION_NAMES = {1: "illegal function", 2: "illegal data address", 3: "illegal data value",
+                   4: "server device failure", 5: "acknowledge", 6: "server device busy",
+                   8: "memory parity error", 10: "gateway path unavailable",
+                   11: "gateway target device failed to respond"}
+
+
+@dataclass
+class StationFigures:
+    """One station's figures over the whole capture (counts exact, times in ms)."""
+
+    address: int
+    name: str
+    label: str
+    position_m: float | None
+    notes: str
+    requests: int          #: requests addressed to it
+    answered: int          #: valid answers in time (ok + exception)
+    ok: int
+    timeouts: int
+    late: int
+    exceptions: int
+    exceptions_by_code: dict
+    corrupt: int
+    crc_errors: int        #: crc_error events attributed to it
+    collisions: int
+    retries: int
+    response_ms: dict      #: min, p50, p95, p99, max (midpoints)
+    response_ms_interval: dict  #: p50/p95/p99 -> [low, high] the timestamps allow
+    timing_halfwidth_ms: float | None  #: median half-width of its response-time intervals
+    answers_over_timeout: int | None   #: answers (ok, exception or late) taking longer than the timeout
+    poll_cycle_ms: dict    #: p50, p95 of the interval between requests to it
+    waiting_s: float       #: bus time the master spent waiting on its unanswered requests
+    availability: float | None  #: answered / requests
+    events: dict           #: event kind -> count
+    functions: dict        #: request function code -> count
+    device_ids: list
+    late_listed: int       #: late answers listed (all of them up to the cap)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class BusFigures:
+    """The line as a whole."""
+
+    duration_s: float
+    frames: int
+    bytes: int
+    busy_s: float
+    utilisation: float | None    #: share of time the line carried bytes (0..1)
+    requests: int
+    broadcasts: int
+    events: dict                 #: kind -> count, every station and none
+    unattributed_events: dict    #: kind -> count of events tied to no station
+    functions: dict              #: function code -> requests
+    gap_ms: dict                 #: p50, p95, max of the silences between frames
+    largest_gaps: list           #: [{"t_s", "gap_ms"}], longest first
+    unknown_outcomes: int
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class AnalysisResult:
+    """What ``analyze`` found in one capture."""
+
+    header: CaptureHeader
+    paths: list
+    damage: ReadReport | None
+    acc: Accumulator
+    station_map: StationMap
+    timeout: TimeoutEstimate
+    stations: list[StationFigures]
+    bus: BusFigures
+    findings: list[Finding] = field(default_factory=list)
+    tool_version: str = __version__
+    analysed_utc: str = ""
+
+    @property
+    def t0_ns(self) -> int:
+        return self.acc.t0_ns
+
+    def station(self, address: int) -> StationFigures | None:
+        for s in self.stations:
+            if s.address == address:
+                return s
+        return None
+
+    def utc_at(self, t_s: float) -> str:
+        """Wall-clock UTC of a time since the capture start, when the header anchors it."""
+        start = self.header.start_datetime()
+        if start is None or self.acc.t0_ns != self.header.start_monotonic_ns:
+            return ""
+        if start.tzinfo is None:
+            start = start.replace(tzinfo=timezone.utc)
+        return (start + timedelta(seconds=t_s)).astimezone(timezone.utc).isoformat(timespec="milliseconds")
+
+    def minutes(self) -> int:
+        return int(max(self.acc.bus_minutes.minutes,
+                       max((s.minutes for s in self.acc.station_minutes.values()), default=0)))
+
+    def station_series(self, address: int) -> dict:
+        """Per-minute counts and response-time bands of one station."""
+        n = self.minutes()
+        series = self.acc.station_minutes.get(address)
+        data = np.zeros((n, len(MINUTE_COLUMNS)), np.int64)
+        if series is not None:
+            data[: series.minutes] = series.view()
+        out = {name: data[:, i].tolist() for i, name in enumerate(MINUTE_COLUMNS)}
+        bands = minute_bands(self.acc, address)
+        for key, values in bands.items():
+            padded = list(values) + [float("nan")] * (n - len(values))
+            out["rt_" + key] = padded
+        return out
+
+    def bus_series(self) -> dict:
+        """Per-minute bus utilisation, frames and events by kind."""
+        view = self.acc.bus_minutes.view()
+        n = self.minutes()
+        data = np.zeros((n, view.shape[1]))
+        data[: view.shape[0]] = view
+        out = {"utilisation": (data[:, 0] / 60_000.0).tolist(), "frames": data[:, 1].astype(int).tolist(),
+               "bytes": data[:, 2].astype(int).tolist()}
+        for i, kind in enumerate(EVENT_KINDS):
+            col = data[:, 3 + i]
+            if col.any():
+                out["event_" + kind] = col.astype(int).tolist()
+        return out
+
+    def worst_transactions(self, per_station: int | None = None) -> list[dict]:
+        """Slowest answers and first failures of every station, in time order."""
+        rows: list[dict] = []
+        for st in sorted(set(self.acc.worst) | set(self.acc.failures)):
+            slow = sorted(self.acc.worst.get(st, []), key=lambda x: -x[0])[:per_station]
+            rows.extend(r for _, _, r in slow)
+            rows.extend(self.acc.failures.get(st, [])[:per_station])
+        for r in rows:
+            r.setdefault("utc", self.utc_at(r["t_s"]))
+            r["label"] = self.station_map.label(r["station"])
+        return sorted(rows, key=lambda r: r["t_s"])
+
+    def late_answers(self, address: int) -> list[dict]:
+        rows = self.acc.late_rows.get(address, [])
+        for r in rows:
+            r.setdefault("utc", self.utc_at(r["t_s"]))
+        return rows
+
+    def response_histogram(self, address: int) -> tuple[list[float], list[int]]:
+        """The station's response-time histogram merged to at most ~80 bars: (lower edges ms, counts)."""
+        counts = self.acc.rt_mid[address]
+        nz = np.flatnonzero(counts)
+        if not len(nz):
+            return [], []
+        lo, hi = int(nz[0]), int(nz[-1]) + 1
+        step = max(1, int(np.ceil((hi - lo) / 80)))
+        edges, values = [], []
+        for k in range(lo, hi, step):
+            edges.append(round(float(FINE.lower_edge(k)), 3))
+            values.append(int(counts[k:k + step].sum()))
+        edges.append(round(float(FINE.lower_edge(min(hi, lo + step * len(values)))), 3))
+        return edges, values
+
+
+def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: TimeoutEstimate) -> StationFigures:
+    o = acc.outcomes[address]
+    requests = int(o.sum())
+    answered = int(o[_O["ok"]] + o[_O["exception"]])
+    codes = {int(c): int(n) for c, n in enumerate(acc.exception_codes[address]) if n}
+    ev = acc.events[address + 1]
+    info = smap.get(address)
+    resp = response_figures(acc, address)
+    poll = acc.poll[address]
+    p50, p95 = quantile(poll, 0.5, FINE), quantile(poll, 0.95, FINE)
+    return StationFigures(
+        address=address, name=smap.name(address), label=smap.label(address),
+        position_m=info.position_m if info else None, notes=info.notes if info else "",
+        requests=requests, answered=answered, ok=int(o[_O["ok"]]), timeouts=int(o[_O["timeout"]]),
+        late=int(o[_O["late"]]), exceptions=int(o[_O["exception"]]), exceptions_by_code=codes,
+        corrupt=int(o[_O["corrupt"]]), crc_errors=int(ev[_K["crc_error"]]), collisions=int(ev[_K["collision"]]),
+        retries=int(acc.retries[address]), response_ms=resp["response_ms"],
+        response_ms_interval=resp["response_ms_interval"], timing_halfwidth_ms=resp["timing_halfwidth_ms"],
+        answers_over_timeout=None if timeout.timeout_ms is None else above(acc, address, timeout.timeout_ms),
+        poll_cycle_ms={"p50": None if p50 is None else round(p50, 2), "p95": None if p95 is None else round(p95, 2)},
+        waiting_s=round(float(acc.move_on_sum_ms[address]) / 1000.0, 3),
+        availability=None if requests == 0 else round(answered / requests, 6),
+        events={k: int(n) for k, n in zip(EVENT_KINDS, ev) if n},
+        functions={int(f): int(n) for f, n in enumerate(acc.functions[address]) if n},
+        device_ids=list(acc.device_ids.get(address, [])),
+        late_listed=min(int(o[_O["late"]]), LATE_CAP))
+
+
+def _bus_figures(acc: Accumulator) -> BusFigures:
+    duration = 0.0 if acc.last_ns is None else max(0.0, (acc.last_ns - min(acc.t0_ns, acc.first_ns or acc.t0_ns)) / 1e9)
+    ev = acc.events.sum(axis=0)
+    gaps = sorted(acc.largest_gaps, reverse=True)
+    g50, g95 = quantile(acc.gaps, 0.5, FINE), quantile(acc.gaps, 0.95, FINE)
+    return BusFigures(
+        duration_s=round(duration, 3), frames=acc.frames, bytes=acc.frame_bytes, busy_s=round(acc.busy_ns / 1e9, 3),
+        utilisation=None if duration <= 0 else round(min(1.0, acc.busy_ns / 1e9 / duration), 6),
+        requests=int(acc.outcomes.sum()), broadcasts=int(acc.outcomes[:, _O["broadcast"]].sum()),
+        events={k: int(n) for k, n in zip(EVENT_KINDS, ev) if n},
+        unattributed_events={k: int(n) for k, n in zip(EVENT_KINDS, acc.events[0]) if n},
+        functions={int(f): int(n) for f, n in enumerate(acc.functions.sum(axis=0)) if n},
+        gap_ms={"p50": None if g50 is None else round(g50, 3), "p95": None if g95 is None else round(g95, 3),
+                "max": round(gaps[0][0], 3) if gaps else None},
+        largest_gaps=[{"t_s": round((t - acc.t0_ns) / 1e9, 3), "gap_ms": round(g, 3)} for g, t in gaps],
+        unknown_outcomes=acc.unknown_outcomes)
+
+
+def build_result(header: CaptureHeader, paths: list, damage: ReadReport | None, acc: Accumulator,
+                 station_map: StationMap, timeout: TimeoutEstimate) -> AnalysisResult:
+    """Read the figures out of a finished accumulator."""
+    addresses = sorted(set(acc.stations_seen()) | set(station_map.stations))
+    stations = [_station_figures(acc, a, station_map, timeout) for a in addresses]
+    return AnalysisResult(header=header, paths=[str(p) for p in paths], damage=damage, acc=acc,
+                          station_map=station_map, timeout=timeout, stations=stations, bus=_bus_figures(acc),
+                          analysed_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"))
+
+
+__all__ = ["AnalysisResult", "BusFigures", "StationFigures", "EXCEPTION_NAMES", "FAILURES_PER_STATION",
+           "build_result"]

@@ -1,0 +1,46 @@
+"""The dashboard file: self-contained, escaped, built from the analysis result."""
+
+from __future__ import annotations
+
+import json
+import re
+
+from buswitness.analysis.dashboard import render_dashboard
+from buswitness.analysis.pipeline import analyze_tables
+from buswitness.analysis.render import script_json
+
+from test_analysis_support import Tx, header, night, report_id_response, tables
+
+HOSTILE = b"</script><script>alert(1)</script><img src=x onerror=alert(2)>"
+
+
+def _page() -> str:
+    outs = night(minutes=3)
+    outs.append(tables([Tx(200.0, 9, "ok", 20.0, function=0x11, response=report_id_response(9, HOSTILE))]))
+    return render_dashboard(analyze_tables(header(), outs))
+
+
+def test_device_id_text_is_escaped_in_the_page():
+    page = _page()
+    assert "&lt;/script&gt;&lt;script&gt;alert(1)&lt;/script&gt;&lt;img src=x onerror=alert(2)&gt;" in page
+    assert "<img src=x" not in page and "alert(1)</script>" not in page
+
+
+def test_script_json_cannot_close_its_script_element():
+    text = script_json({"name": "</script><b>&"})
+    assert "<" not in text and ">" not in text and "&" not in text
+    assert json.loads(text) == {"name": "</script><b>&"}
+
+
+def test_page_refers_to_no_remote_resource():
+    page = _page()
+    # every src/href attribute is local (none at all in our own markup); plotly's own strings may name URLs
+    assert not re.search(r"""<(script|link|img|iframe)[^>]+(src|href)\s*=\s*["']?(https?:)?//""", page)
+    assert "Content-Security-Policy" in page and "default-src 'none'" in page
+
+
+def test_station_table_has_a_row_per_station_and_the_timeout_line():
+    page = _page()
+    rows = re.findall(r'<tr data-address="(\d+)">', page)
+    assert rows == ["1", "2", "7", "9"]
+    assert "master timeout 200 ms (inferred)" in page
