@@ -189,3 +189,15 @@ def test_a_million_records_stream_in_bounded_memory(tmp_path):
     tracemalloc.stop()
     assert count == 1_000_000 and total == 8_000_000
     assert peak < 8_000_000  # a few blocks at most, never the 20 MB file
+
+
+def test_append_batch_reads_back_like_appending_each_record(tmp_path):
+    from buswitness.capture.fileformat import RecordBatch
+    batch = RecordBatch.from_records(RECORDS * 50)
+    path = tmp_path / "bulk.bwcap"
+    with CaptureWriter(path, make_header(), max_block_records=100) as w:
+        w.append(0, 1, b"\x01")
+        w.append_batch(batch)
+    back = list(CaptureReader(path).iter_records())
+    assert back == [Record(0, 1, b"\x01")] + RECORDS * 50
+    assert w.records_written == 1 + len(batch)
