@@ -86,8 +86,8 @@ class OfflinePage:
         self._pw.stop()
 
 
-def screenshot(page, name: str) -> Path:
+def screenshot(page, name: str, full_page: bool = True) -> Path:
     ARTIFACTS.mkdir(exist_ok=True)
     path = ARTIFACTS / name
-    page.screenshot(path=str(path), full_page=True)
+    page.screenshot(path=str(path), full_page=full_page)
     return path

@@ -1,0 +1,131 @@
+"""The evidence report: the case on one station, for its vendor, that stands up to scrutiny.
+
+Its figures come from the same AnalysisResult as the dashboard and summary.json, so they are
+identical to ``analyze``'s for the same capture. The page has no script at all, prints cleanly,
+and says what the capture cannot show.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+from markupsafe import Markup
+
+from buswitness.analysis.histogram import FINE, count_above
+from buswitness.analysis.render import environment, stylesheet
+from buswitness.analysis.result import AnalysisResult, StationFigures
+from buswitness.errors import UsageError
+from buswitness.fsutil import atomic_write
+
+#: Multiples of the master's timeout at which the tail is tabulated.
+TAIL_FACTORS = (0.5, 0.75, 0.9, 1.0, 1.25, 1.5, 2.0)
+
+
+@dataclass
+class PartIdentity:
+    name: str
+    path: str
+    size: int
+    sha256: str
+
+
+def file_identity(paths: list) -> list[PartIdentity]:
+    """Name, size and SHA-256 of each capture part, read in chunks."""
+    out = []
+    for p in paths:
+        digest = hashlib.sha256()
+        try:
+            with open(p, "rb") as f:
+                for chunk in iter(lambda: f.read(1 << 20), b""):
+                    digest.update(chunk)
+            out.append(PartIdentity(Path(p).name, str(p), os.path.getsize(p), digest.hexdigest()))
+        except OSError as exc:
+            out.append(PartIdentity(Path(p).name, str(p), -1, f"unreadable ({exc.strerror})"))
+    return out
+
+
+def _histogram_svg(result: AnalysisResult, address: int, width: int = 760, height: int = 220) -> dict:
+    """Bars of the response-time histogram on a log axis, with the timeout marked: SVG geometry."""
+    edges, counts = result.response_histogram(address)
+    if not counts:
+        return {"bars": [], "ticks": [], "timeout_x": None, "width": width, "height": height}
+    pad_l, pad_r, pad_t, pad_b = 50, 10, 10, 30
+    lo, hi = math.log10(edges[0]), math.log10(edges[-1])
+    timeout = result.timeout.timeout_ms
+    if timeout:
+        lo, hi = min(lo, math.log10(timeout) - 0.05), max(hi, math.log10(timeout) + 0.05)
+    span = max(hi - lo, 1e-6)
+    peak = max(counts)
+
+    def x(v: float) -> float:
+        return pad_l + (math.log10(v) - lo) / span * (width - pad_l - pad_r)
+
+    bars = []
+    for a, b, n in zip(edges[:-1], edges[1:], counts):
+        h = (height - pad_t - pad_b) * n / peak
+        over = timeout is not None and a >= timeout
+        bars.append({"x": round(x(a), 2), "w": round(max(x(b) - x(a) - 0.5, 0.8), 2),
+                     "y": round(height - pad_b - h, 2), "h": round(h, 2), "n": n, "over": over,
+                     "a": a, "b": b})
+    ticks = []
+    for decade in range(int(math.floor(lo)), int(math.ceil(hi)) + 1):
+        for m in ((1, 2, 5) if span > 1 else (1, 1.5, 2, 3, 4, 5, 6, 7, 8, 9)):
+            v = m * 10 ** decade
+            if lo <= math.log10(v) <= hi:
+                ticks.append({"x": round(x(v), 2), "label": f"{v:g}"})
+    return {"bars": bars, "ticks": ticks, "peak": peak, "width": width, "height": height, "base": height - pad_b,
+            "left": pad_l, "timeout_x": None if not timeout else round(x(timeout), 2)}
+
+
+def _tail(result: AnalysisResult, s: StationFigures) -> list[dict]:
+    timeout = result.timeout.timeout_ms
+    answered = int(result.acc.rt_mid[s.address].sum())
+    if not timeout or not answered:
+        return []
+    rows = []
+    for f in TAIL_FACTORS:
+        n = count_above(result.acc.rt_mid[s.address], timeout * f, FINE)
+        rows.append({"threshold_ms": timeout * f, "factor": f, "count": n, "share": n / answered})
+    return rows
+
+
+def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdentity] | None = None) -> dict:
+    """Everything the evidence template shows, as plain data."""
+    s = result.station(address)
+    if s is None or s.requests == 0 and not s.events:
+        seen = ", ".join(str(x.address) for x in result.stations if x.requests) or "none"
+        raise UsageError(f"station {address} does not appear in this capture (stations polled: {seen})")
+    findings = [f for f in result.findings if f.station == address]
+    ports = result.header.ports
+    latency = [{"name": p.name, "latency_ms": p.latency_ms, "source": p.latency_source} for p in ports]
+    latency_ms = max((p.latency_ms for p in ports if p.latency_ms is not None), default=None)
+    return {
+        "s": s, "result": result, "timeout": result.timeout, "findings": findings,
+        "caution": next((f.caution for f in findings if f.caution), ""),
+        "identity": identity if identity is not None else file_identity(result.paths),
+        "header": result.header, "latency": latency, "latency_ms": latency_ms,
+        "late": result.late_answers(address), "hist": _histogram_svg(result, address), "tail": _tail(result, s),
+        "failures": [r for r in result.acc.failures.get(address, [])],
+        "damage": result.damage, "char_ms": result.header.serial.char_time_s * 1000.0,
+        "t35_ms": result.header.serial.t35_s * 1000.0, "resolution_pct": 100 * FINE.relative_resolution,
+        "span": {"start": result.utc_at(0.0), "end": result.utc_at(result.bus.duration_s),
+                 "hours": result.bus.duration_s / 3600.0},
+    }
+
+
+def render_evidence(result: AnalysisResult, address: int, identity: list[PartIdentity] | None = None) -> str:
+    env = environment()
+    return env.get_template("evidence.html").render(e=evidence_data(result, address, identity),
+                                                    css=Markup(stylesheet("evidence.css")))
+
+
+def write_evidence(result: AnalysisResult, address: int, path: str | Path) -> Path:
+    """Write the evidence report on ``address`` atomically."""
+    text = render_evidence(result, address)
+    with atomic_write(path) as f:
+        f.write(text)
+    return Path(path)
