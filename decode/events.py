@@ -31,6 +31,7 @@ class Frame:
     t_end_hi_ns: int
     char_ns: float
     direction: str = "unknown"
+    wire_chars: int = 0  # characters on the wire when they differ from len(raw) (Modbus ASCII)
 
     def __post_init__(self) -> None:
         if len(self.raw) < 3:
@@ -53,6 +54,11 @@ class Frame:
         return len(self.raw)
 
     @property
+    def wire_length(self) -> int:
+        """Characters the frame took on the wire."""
+        return self.wire_chars or len(self.raw)
+
+    @property
     def t_end_ns(self) -> int:
         """Midpoint of the end-time interval."""
         return (self.t_end_lo_ns + self.t_end_hi_ns) // 2
@@ -60,7 +66,7 @@ class Frame:
     @property
     def t_start_ns(self) -> int:
         """Start of the first bit: the bytes of one frame are back to back."""
-        return self.t_end_ns - int(round(len(self.raw) * self.char_ns))
+        return self.t_end_ns - int(round(self.wire_length * self.char_ns))
 
 
 @dataclass(frozen=True)

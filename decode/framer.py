@@ -15,6 +15,7 @@ frame or by a certain silence. That keeps random noise from inventing stations.
 
 from __future__ import annotations
 
+from bisect import bisect_left
 from dataclasses import dataclass
 
 from buswitness.decode.crc import crc16_modbus
@@ -34,6 +35,7 @@ class Span:
     end: int
     shape: int
     at_boundary: bool = False  # damaged run that ends at a certain silence (or the end of input)
+    crosses: bool = False  # frame with a certain silence inside it
 
 
 def _valid(buf: bytes, p: int, n: int) -> bool:
@@ -54,31 +56,48 @@ class RegionScanner:
         self.junk_start: int | None = None
         self.anchored = True
         self.known_addresses: set[int] = set()
+        self.boundaries: list[int] = []
 
     def shift(self, n: int) -> None:
         self.pos -= n
         if self.junk_start is not None:
             self.junk_start -= n
+        self.boundaries = [b - n for b in self.boundaries if b - n > 0]
 
     @property
     def settled(self) -> int:
         """Bytes before this index are decided and may be dropped by the caller."""
         return self.pos if self.junk_start is None else self.junk_start
 
-    def boundary(self) -> None:
-        """A certain silence (or a discontinuity) lies at ``pos``: the next byte starts afresh."""
-        self.anchored = True
+    def add_boundary(self, at: int) -> None:
+        """A certain silence (or a discontinuity) lies before ``buf[at]``.
+
+        Damage runs never cross it and the byte after it starts afresh; a frame may cross it
+        only when its CRC proves the bytes on both sides belong together (a slow sender's
+        pause inside a frame).
+        """
+        if not self.boundaries or at > self.boundaries[-1]:
+            self.boundaries.append(at)
 
     def scan(self, buf: bytes, end: int, final: bool, out: list[Span]) -> None:
-        """Examine ``buf[pos:end]``; ``final`` says no byte will join this region after ``end``."""
+        """Examine ``buf[pos:end]``; ``final`` says no byte will follow ``end`` (end of input)."""
+        bounds = self.boundaries
+        bi = bisect_left(bounds, self.pos)
         while self.pos < end:
+            while bi < len(bounds) and bounds[bi] < self.pos:
+                bi += 1
+            if bi < len(bounds) and bounds[bi] == self.pos:
+                self._close_junk(out, True)
+                self.anchored = True
+                bi += 1
             res = self._match(buf, self.pos, end, final)
             if res == _NEED:
                 return
             if res > 0:
                 length, shape = res >> 2, res & 3
                 self._close_junk(out, False)
-                out.append(Span(self.pos, self.pos + length, shape))
+                crosses = bi < len(bounds) and bounds[bi] < self.pos + length
+                out.append(Span(self.pos, self.pos + length, shape, crosses=crosses))
                 self.known_addresses.add(buf[self.pos])
                 self.pos += length
                 self.anchored = True
@@ -158,6 +177,9 @@ class RegionScanner:
         """Does a valid frame (by rule) or a certain silence follow at ``q``? None: not known yet."""
         if q >= end:
             return True if final else None
+        i = bisect_left(self.boundaries, q)
+        if i < len(self.boundaries) and self.boundaries[i] == q:
+            return True
         if end - q < 2:
             return None if not final else False
         undecided = False

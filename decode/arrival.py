@@ -1,0 +1,86 @@
+"""When did each byte arrive? Bounds on byte end times from read-return times (TIMING.md).
+
+A record's bytes came in USB packets the adapter sent when its latency timer ``L`` expired
+or its buffer (``P`` data bytes) filled; the read returned at ``T``, at most the host delay
+``d`` after the packet. So every byte of a one-packet record ended in ``[T - L - d, T]``, and
+after the previous record's packet left (``> T_prev - d``). A byte followed by ``m`` more
+bytes in its record ended no later than ``T - m·c``. Bytes of one frame are back to back,
+so each constraint on any byte of a frame bounds the frame's end; intersecting them all
+gives the frame's end interval. A frame that straddles two records is pinned to within
+about ``d + c`` — the sharper estimate of TIMING.md, at no extra cost.
+
+Records that hold more than one packet's worth of bytes (the host read late) relax the
+lower bound for their older bytes by one character time per byte beyond ``P``.
+"""
+
+from __future__ import annotations
+
+from bisect import bisect_right
+from dataclasses import dataclass, field
+
+
+@dataclass
+class Timeline:
+    """Byte positions of one port's stream mapped to the records that carried them.
+
+    Positions are absolute (counted from the start of the port's stream); records no longer
+    needed are dropped with :meth:`drop_before`.
+    """
+
+    char_ns: float
+    latency_ns: float
+    host_delay_ns: float
+    packet_bytes: int = 62
+    untimed: bool = False
+    starts: list[int] = field(default_factory=list)
+    lasts: list[int] = field(default_factory=list)
+    times: list[int] = field(default_factory=list)
+    floors: list[float] = field(default_factory=list)
+    _last_t: int | None = None
+    _next_pos: int = 0
+
+    def add(self, t_ns: int, n: int) -> float:
+        """Register a record of ``n`` bytes read at ``t_ns``; return the least silence before it (ns).
+
+        The silence bound is ``-inf`` for the first record and for untimed captures.
+        """
+        prev = self._last_t
+        start = self._next_pos
+        self._next_pos += n
+        self._last_t = t_ns
+        floor = t_ns - self.latency_ns - self.host_delay_ns
+        if prev is not None and n <= self.packet_bytes:
+            floor = max(floor, prev - self.host_delay_ns)
+        self.starts.append(start)
+        self.lasts.append(start + n - 1)
+        self.times.append(t_ns)
+        self.floors.append(floor)
+        if prev is None or self.untimed:
+            return float("-inf")
+        # TIMING.md: silence >= T_{i+1} - L - d - n·c - T_i
+        return t_ns - self.latency_ns - self.host_delay_ns - n * self.char_ns - prev
+
+    def end_bounds(self, first: int, last: int) -> tuple[int, int]:
+        """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``."""
+        c = self.char_ns
+        i = max(0, bisect_right(self.starts, first) - 1)
+        lo = float("-inf")
+        hi = float("inf")
+        while i < len(self.starts) and self.starts[i] <= last:
+            k0 = max(first, self.starts[i], self.lasts[i] - self.packet_bytes + 1)
+            if k0 <= last:
+                lo = max(lo, self.floors[i] + (last - k0) * c)
+            else:
+                lo = max(lo, self.floors[i] - (k0 - last) * c)
+            hi = min(hi, self.times[i] + (last - self.lasts[i]) * c)
+            i += 1
+        if self.untimed or lo == float("-inf"):
+            lo = hi
+        lo = min(lo, hi)
+        return int(round(lo)), int(round(hi))
+
+    def drop_before(self, pos: int) -> None:
+        """Forget records whose bytes all lie before absolute position ``pos``."""
+        keep = bisect_right(self.lasts, pos - 1)
+        if keep:
+            del self.starts[:keep], self.lasts[:keep], self.times[:keep], self.floors[:keep]

@@ -1,0 +1,232 @@
+"""The transaction state machine: which response answers which request, and what became of each.
+
+Invariants (they hold after every input):
+
+1. At most one request is *awaiting* an answer: RTU has one master and no transaction id,
+   so a new request ends the wait for the previous one (the master moved on).
+2. Every request frame becomes exactly one transaction; a retry is a transaction of its own.
+3. A transaction leaves the machine (is emitted) in request order, and only once its outcome
+   can no longer change. A ``timeout`` may still turn ``late`` while it is among the last
+   :data:`LATE_WINDOW` requests; after that it is final.
+4. A response is credited to a request only when station and function agree; anything else
+   is an event (``unexpected_responder`` or ``orphan_response``), never a guess.
+5. Frames arrive here in time order, with their direction already fixed by the port or
+   inferred by :meth:`Pairing.direction_of` (two-wire bus).
+
+Transitions (state x input -> action, next state); ``AWAIT`` means "awaiting station N":
+
+======== ================================ ==================================================
+state    input                            action -> next state
+======== ================================ ==================================================
+IDLE     request, station 0               emit ``broadcast`` -> IDLE
+IDLE     request, station N               -> AWAIT(N)
+IDLE     response                         a recent ``timeout`` matches: make it ``late``;
+                                          else event ``orphan_response`` -> IDLE
+IDLE     damage                           -> IDLE
+AWAIT    request                          close the wait: ``corrupt`` if damage came,
+                                          else ``timeout``; then as from IDLE
+AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past the
+                                          configured timeout) -> IDLE
+AWAIT    response, same function, other   event ``unexpected_responder`` -> AWAIT(N)
+         station
+AWAIT    other response                   as from IDLE, staying in AWAIT(N)
+AWAIT    frame-shaped damage              remember it (the answer was probably hit) -> AWAIT
+end      flush                            close the wait as above, emit everything
+======== ================================ ==================================================
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+
+from buswitness.decode.events import Damage, Frame, Transaction
+from buswitness.decode.lengths import REQUEST, RESPONSE
+
+#: How many later requests a timed-out transaction waits for a late answer before it is final.
+LATE_WINDOW = 4
+
+#: Damage kinds that mean "an answer was on the line but unusable".
+ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision"})
+
+#: Failed outcomes after which an identical request counts as a retry.
+FAILED = frozenset({"timeout", "late", "corrupt"})
+
+#: With no configured timeout, a frame identical to the awaited request counts as its echo
+#: answer unless it comes later than this many times the slowest answer seen (plus a floor).
+ECHO_SLACK = 2.0
+ECHO_FLOOR_NS = 20_000_000
+
+
+@dataclass
+class _Slot:
+    txn: Transaction
+    final: bool
+    age: int = 0
+    request: Frame | None = None
+
+
+@dataclass
+class _Await:
+    request: Frame
+    damage: Damage | None = None
+
+
+class Pairing:
+    """Pair frames into transactions; returns transactions (in request order) and events."""
+
+    def __init__(self, response_timeout_ms: float | None, t35_ns: float, timed: bool = True) -> None:
+        self.timeout_ns = None if response_timeout_ms is None else response_timeout_ms * 1e6
+        self.t35_ns = t35_ns
+        self.timed = timed
+        self.waiting: _Await | None = None
+        self.slots: list[_Slot] = []
+        self.last_request: Frame | None = None
+        self.last_failed = False
+        self.slowest_ns = 0.0
+        self._retry_flag = False
+
+    # -- direction on a two-wire bus -------------------------------------------------------
+    def direction_of(self, frame: Frame, shape: int) -> str:
+        """``request`` or ``response`` for a frame whose shape the length rules left open."""
+        if shape == REQUEST:
+            return "request"
+        if shape == RESPONSE:
+            return "response"
+        w = self.waiting
+        if w is None:
+            return "request"
+        req = w.request
+        if frame.address != req.address or frame.function != req.function:
+            return "request"
+        if frame.raw == req.raw:
+            # An echo answer (FC05/06/08) and a retry of the same request look alike: the
+            # master retries only after giving up, so timing tells them apart.
+            gap = frame.t_start_ns - req.t_end_ns
+            if self.timeout_ns is not None:
+                return "response" if gap <= self.timeout_ns else "request"
+            limit = max(ECHO_FLOOR_NS, ECHO_SLACK * self.slowest_ns)
+            return "response" if gap <= limit else "request"
+        return "response"
+
+    # -- inputs -----------------------------------------------------------------------------
+    def on_frame(self, frame: Frame) -> tuple[list[Transaction], list[Damage]]:
+        events: list[Damage] = []
+        if frame.direction == "request":
+            self._close_wait()
+            self._start(frame)
+        else:
+            self._on_response(frame, events)
+        return self._ready(), events
+
+    def on_damage(self, damage: Damage) -> Damage:
+        """Note damage while awaiting; return the event with the station it most likely concerns."""
+        w = self.waiting
+        if w is not None and damage.kind in ANSWER_DAMAGE and damage.t_ns >= w.request.t_end_ns - 1:
+            if damage.station < 0:
+                damage = replace(damage, station=w.request.address)
+            if w.damage is None:
+                w.damage = damage
+        return damage
+
+    def flush(self) -> list[Transaction]:
+        self._close_wait()
+        for slot in self.slots:
+            slot.final = True
+        return self._ready()
+
+    # -- internals --------------------------------------------------------------------------
+    def _start(self, req: Frame) -> None:
+        retry = (self.last_request is not None and self.last_failed and self.last_request.raw == req.raw)
+        self.last_request = req
+        self.last_failed = False
+        for slot in self.slots:
+            slot.age += 1
+            if slot.age >= LATE_WINDOW:
+                slot.final = True
+        if req.address == 0:
+            self.slots.append(_Slot(Transaction(0, req.function, "broadcast", req.t_end_ns, req.raw,
+                                                retry=retry), True))
+            return
+        self.waiting = _Await(req)
+        self._retry_flag = retry
+
+    def _close_wait(self) -> None:
+        w = self.waiting
+        if w is None:
+            return
+        self.waiting = None
+        req = w.request
+        if w.damage is not None:
+            txn = Transaction(req.address, req.function, "corrupt", req.t_end_ns, req.raw,
+                              retry=self._retry_flag, response_raw=w.damage.raw)
+            self.slots.append(_Slot(txn, True))
+        else:
+            txn = Transaction(req.address, req.function, "timeout", req.t_end_ns, req.raw, retry=self._retry_flag)
+            self.slots.append(_Slot(txn, False, request=req))
+        self.last_failed = True
+
+    def _times(self, req: Frame, rsp: Frame) -> tuple[int, float, float, float]:
+        c_rsp = rsp.wire_length * rsp.char_ns
+        start = rsp.t_start_ns
+        if not self.timed:
+            return start, math.nan, math.nan, math.nan
+        # One line, one talker at a time: an answer cannot start before the request ended.
+        mid = max(0.0, (rsp.t_end_ns - c_rsp - req.t_end_ns) / 1e6)
+        low = max(0.0, (rsp.t_end_lo_ns - c_rsp - req.t_end_hi_ns) / 1e6)
+        high = max(0.0, (rsp.t_end_hi_ns - c_rsp - req.t_end_lo_ns) / 1e6)
+        return start, mid, min(low, mid), max(high, mid)
+
+    def _answer(self, req: Frame, rsp: Frame, retry: bool, late: bool) -> Transaction:
+        start, mid, low, high = self._times(req, rsp)
+        exc = rsp.function & 0x80
+        if late:
+            outcome = "late"
+        elif exc:
+            outcome = "exception"
+        else:
+            outcome = "ok"
+        code = rsp.raw[2] if exc and len(rsp.raw) > 2 else 0
+        if outcome == "exception" and code == 0:
+            outcome = "ok"
+        return Transaction(req.address, req.function, outcome, req.t_end_ns, req.raw, start, rsp.raw,
+                           exception_code=code if outcome == "exception" else 0, retry=retry,
+                           response_ms=mid, response_ms_low=low, response_ms_high=high)
+
+    def _on_response(self, rsp: Frame, events: list[Damage]) -> None:
+        w = self.waiting
+        fc = rsp.function & 0x7F
+        if w is not None and fc == w.request.function:
+            req = w.request
+            if rsp.address == req.address:
+                self.waiting = None
+                gap = rsp.t_start_ns - req.t_end_ns
+                late = self.timeout_ns is not None and gap > self.timeout_ns
+                txn = self._answer(req, rsp, self._retry_flag, late)
+                self.slots.append(_Slot(txn, True))
+                self.last_failed = late
+                if not late and not math.isnan(txn.response_ms):
+                    self.slowest_ns = max(self.slowest_ns, txn.response_ms * 1e6)
+                if not math.isnan(txn.response_ms_high) and txn.response_ms_high * 1e6 < self.t35_ns:
+                    events.append(Damage("turnaround_short", rsp.port, txn.t_response_start_ns, rsp.raw,
+                                         rsp.address, f"station {rsp.address} began its answer less than "
+                                         f"t3.5 after the request ended (at most {txn.response_ms_high:.3f} ms)"))
+                return
+            events.append(Damage("unexpected_responder", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
+                                 f"station {rsp.address} answered a request addressed to station {req.address}"))
+            return
+        for slot in reversed(self.slots):
+            t = slot.txn
+            if (not slot.final and slot.request is not None and t.outcome == "timeout"
+                    and t.station == rsp.address and t.function == fc):
+                slot.txn = self._answer(slot.request, rsp, t.retry, True)
+                slot.final = True
+                return
+        events.append(Damage("orphan_response", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
+                             f"a valid answer from station {rsp.address} that no pending request asked for"))
+
+    def _ready(self) -> list[Transaction]:
+        out: list[Transaction] = []
+        while self.slots and self.slots[0].final:
+            out.append(self.slots.pop(0).txn)
+        return out
