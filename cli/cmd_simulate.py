@@ -3,17 +3,60 @@
 from __future__ import annotations
 
 import argparse
+import os
 
-from buswitness.errors import NotBuiltYet
+from buswitness.cli.common import baud_arg, duration_s, format_arg
+from buswitness.errors import EXIT_OK, OutputError, UsageError
 
 HELP = "simulate a bus with faults and write a capture with its ground truth"
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("simulate", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("simulate", help=HELP, description=HELP.capitalize() + ".")
+    p.add_argument("--scenario", default="pumpstation",
+                   help="built-in scenario name (see --list) or a scenario file (.json or .toml); "
+                        "default: pumpstation")
+    p.add_argument("--duration", type=duration_s, default=None,
+                   help="simulated time, e.g. 8h, 90m, 30s (default: the scenario's own)")
+    p.add_argument("--seed", type=int, default=1, help="random seed; the same seed gives the same capture")
+    p.add_argument("-o", "--output", help="capture file to write (.bwcap); refused if it exists")
+    p.add_argument("--truth", help="also write the ground truth as JSON here; refused if it exists")
+    p.add_argument("--latency-ms", type=float, default=None, help="adapter latency timer in ms (e.g. 16 or 1)")
+    p.add_argument("--baud", type=baud_arg, default=None, help="override the bus baud rate")
+    p.add_argument("--format", dest="char_format", type=format_arg, default=None,
+                   help="override the bus character format (8E1, 8N2, 8N1, ...)")
+    p.add_argument("--list", action="store_true", help="list the built-in scenarios and exit")
     p.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness simulate' is not built yet in this version; nothing was done")
+    from buswitness.simulate import builtin_descriptions, load_scenario, simulate
+
+    if args.list:
+        for name, text in builtin_descriptions().items():
+            print(f"{name:24s} {text}")
+        return EXIT_OK
+    if not args.output:
+        raise UsageError("give the capture file to write with -o CAPTURE.bwcap (or --list to see the scenarios)")
+    for path in (args.output, args.truth):
+        if path and os.path.exists(path):
+            raise OutputError(f"{path}: already exists; choose another output name (nothing was overwritten)")
+    if args.seed < 0:
+        raise UsageError(f"--seed must be zero or more, not {args.seed}")
+    sc = load_scenario(args.scenario)
+    res = simulate(sc, duration_s=args.duration, seed=args.seed, latency_ms=args.latency_ms, baud=args.baud,
+                   bus_format=args.char_format, keep_tables=bool(args.truth))
+    try:
+        info = res.write(args.output, args.truth)
+    except BaseException:
+        for path in (args.output, args.truth):
+            if path and os.path.exists(path):
+                os.unlink(path)
+        raise
+    s = res.scenario
+    print(f"simulated {res.duration_s:g} s of scenario {s.name} ({s.serial}, adapter latency "
+          f"{s.adapter.latency_ms:g} ms, seed {res.seed}) in {info['seconds']:.1f} s")
+    print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} frames on the wire")
+    if args.truth:
+        print(f"wrote {args.truth}: ground truth (frames, transactions, events, per-station figures)")
+    return EXIT_OK
