@@ -103,6 +103,7 @@ class Accumulator:
     halfwidth: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
     rt_min: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, np.inf))
     rt_max: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))
+    ok_max: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest answer taken in time
     poll: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
     last_request_ns: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -1, np.int64))
     move_on: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
@@ -218,6 +219,8 @@ class Accumulator:
                                           minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
             np.fmin.at(self.rt_min, s, rt[timed])
             np.fmax.at(self.rt_max, s, rt[timed])
+            in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
+            np.fmax.at(self.ok_max, station[in_time], rt[in_time])
 
         self._poll_cycle(station, t_req)
         self._move_on(tx, station, outcome, t_req)
@@ -358,6 +361,7 @@ class Accumulator:
             setattr(self, name, getattr(self, name) + getattr(other, name))
         self.rt_min = np.fmin(self.rt_min, other.rt_min)
         self.rt_max = np.fmax(self.rt_max, other.rt_max)
+        self.ok_max = np.fmax(self.ok_max, other.ok_max)
         for name in ("frames", "frame_bytes", "response_frames", "busy_ns", "unknown_outcomes"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
         spans = [x for x in (self.first_ns, other.first_ns) if x is not None]
@@ -392,9 +396,14 @@ class Accumulator:
     # -- reading out -----------------------------------------------------------------------------
 
     def stations_seen(self) -> list[int]:
-        """Every address the master polled or a station answered from (broadcast address 0 excluded)."""
-        polled = np.flatnonzero(self.outcomes.sum(axis=1) + self.events[1:].sum(axis=1))
-        return [int(a) for a in polled if a != 0]
+        """Every address the master polled or a valid answer came from (broadcast address 0 excluded).
+
+        Damage attributed to an address nobody polls (a CRC failure whose first byte happens to
+        read 40) does not make a station of it.
+        """
+        answered_from = self.events[1:, _KIND_INDEX["unexpected_responder"]] + self.events[1:, _KIND_INDEX["orphan_response"]]
+        seen = np.flatnonzero(self.outcomes.sum(axis=1) + answered_from)
+        return [int(a) for a in seen if a != 0]
 
 
 def _q(counts: np.ndarray, q: float, bins: LogBins = FINE, vmin: float | None = None,

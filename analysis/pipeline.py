@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable, Iterator
 
+import numpy as np
 import pandas as pd
 
 from buswitness.analysis.exports import TableExporter, utc_anchor_of
@@ -121,7 +122,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         if exporter is not None:
             exporter.abort()
         raise
-    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on)
+    slowest = float(acc.ok_max.max()) if np.isfinite(acc.ok_max).any() else None
+    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, slowest)
     return build_result(header, paths or [], damage, acc, smap, timeout)
 
 
