@@ -165,9 +165,9 @@ def _describe_damage(raw: bytes, at_boundary: bool) -> tuple[str, int, str]:
     shaped = n >= 2 and raw[0] <= 247 and (fc in PUBLIC_CODES or (fc & 0x80 and (fc & 0x7F) in PUBLIC_CODES))
     if shaped:
         rules = [length for length, _ in candidate_lengths(raw, 0, n) if length]
-        if at_boundary and rules and all(length > n for length in rules):
+        if at_boundary and rules and max(rules) > n:
             return "truncated", raw[0], (f"a frame from or to station {raw[0]} cut short after {n} bytes "
-                                         f"(expected {min(rules)})")
+                                         f"(expected {max(rules)})")
         if n >= MIN_FRAME:
             return "crc_error", raw[0], f"{n} bytes shaped like a frame for station {raw[0]}, CRC check failed"
     return "stray_bytes", -1, f"{n} stray byte{'s' if n != 1 else ''} that form no frame"

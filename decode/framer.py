@@ -9,8 +9,9 @@ of times (at most one CRC search of up to 256 lengths, only at a region start or
 a frame), so the time per byte is bounded and resynchronisation is linear.
 
 A frame found in the middle of damaged bytes is accepted at once when its address is one
-already seen in good frames; otherwise it must be *supported*: followed by another valid
-frame or by a certain silence. That keeps random noise from inventing stations.
+already seen in good frames; otherwise it must be *supported* (followed by another valid
+frame or by a certain silence) or have fields within the specification's limits. That keeps
+random noise from inventing stations.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from dataclasses import dataclass
 
 from buswitness.decode.crc import crc16_modbus
 from buswitness.decode.lengths import (EITHER, MAX_FRAME, MIN_FRAME, PUBLIC_CODES, SEARCH_CODES,
-                                       candidate_lengths)
+                                       candidate_lengths, plausible)
 
 JUNK = 0
 _NEED = -1
@@ -147,7 +148,9 @@ class RegionScanner:
                     break
             if best is None:
                 if not trusted:
-                    return _NO
+                    length, shape = valid[0]
+                    if not plausible(buf, p, length, shape):
+                        return _NO
                 best = valid[0]
             if len(valid) > 1 and valid[0][0] == valid[1][0]:
                 best = (best[0], EITHER)

@@ -148,3 +148,35 @@ def vector_lengths(buf: np.ndarray, pos: np.ndarray) -> tuple[np.ndarray, np.nda
         req[sel] = _vector_rule(req_rule, buf, p)
         rsp[sel] = _vector_rule(rsp_rule, buf, p)
     return req, rsp
+
+
+def plausible(buf: bytes, p: int, length: int, shape: int) -> bool:
+    """Do the fields of the CRC-valid frame ``buf[p:p+length]`` make sense (MAP V1.1b3 limits)?
+
+    Used only for frames found inside damaged bytes from a station not yet seen: a CRC match
+    there may be chance (1 in 65536), and sane fields make chance far less likely.
+    """
+    if buf[p] > 247:
+        return False
+    fc = buf[p + 1]
+    if fc & 0x80:
+        return (fc & 0x7F) in PUBLIC_CODES and buf[p + 2] in (1, 2, 3, 4, 5, 6, 8, 10, 11)
+    if fc not in PUBLIC_CODES:
+        return False
+    q = buf[p + 4] << 8 | buf[p + 5] if length >= 8 else 0
+    if fc in (0x01, 0x02):
+        if shape == REQUEST:
+            return 1 <= q <= 2000
+        return buf[p + 2] >= 1
+    if fc in (0x03, 0x04):
+        if shape == REQUEST:
+            return 1 <= q <= 125
+        return buf[p + 2] >= 2 and buf[p + 2] % 2 == 0
+    if fc == 0x05:
+        return q in (0x0000, 0xFF00)
+    if fc in (0x0F, 0x10):
+        if shape == RESPONSE:
+            return 1 <= q <= (1968 if fc == 0x0F else 123)
+        count = buf[p + 6]
+        return count == ((q + 7) // 8 if fc == 0x0F else 2 * q)
+    return True

@@ -27,9 +27,9 @@ AWAIT    request                          close the wait: ``corrupt`` if damage 
                                           else ``timeout``; then as from IDLE
 AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past the
                                           configured timeout) -> IDLE
-AWAIT    response, same function, other   event ``unexpected_responder`` -> AWAIT(N)
-         station
-AWAIT    other response                   as from IDLE, staying in AWAIT(N)
+AWAIT    other response                   a recent ``timeout`` matches: make it ``late``;
+                                          same function: event ``unexpected_responder``;
+                                          else ``orphan_response`` -> AWAIT(N)
 AWAIT    frame-shaped damage              remember it (the answer was probably hit) -> AWAIT
 end      flush                            close the wait as above, emit everything
 ======== ================================ ==================================================
@@ -212,9 +212,6 @@ class Pairing:
                                          rsp.address, f"station {rsp.address} began its answer less than "
                                          f"t3.5 after the request ended (at most {txn.response_ms_high:.3f} ms)"))
                 return
-            events.append(Damage("unexpected_responder", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
-                                 f"station {rsp.address} answered a request addressed to station {req.address}"))
-            return
         for slot in reversed(self.slots):
             t = slot.txn
             if (not slot.final and slot.request is not None and t.outcome == "timeout"
@@ -222,6 +219,11 @@ class Pairing:
                 slot.txn = self._answer(slot.request, rsp, t.retry, True)
                 slot.final = True
                 return
+        if w is not None and fc == w.request.function:
+            events.append(Damage("unexpected_responder", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
+                                 f"station {rsp.address} answered a request addressed to station "
+                                 f"{w.request.address}"))
+            return
         events.append(Damage("orphan_response", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
                              f"a valid answer from station {rsp.address} that no pending request asked for"))
 

@@ -33,3 +33,57 @@ def test_explained_fraction_of_random_bytes_is_near_zero():
 
 def test_explained_fraction_of_nothing_is_zero():
     assert explained_fraction(b"") == 0.0
+
+
+def _decode(chunks, latency_ms=16.0, gap_ns=1_000_000):
+    from buswitness.decode import Decoder, DecoderConfig, SerialFormat
+    dec = Decoder(DecoderConfig(serial=SerialFormat(19200, 8, "E", 1), latency_ms={0: latency_ms}))
+    out = []
+    for i, chunk in enumerate(chunks):
+        out += dec.feed(0, 1_000_000_000 + i * gap_ns, chunk)
+    return out + dec.flush_events()
+
+
+def _kinds(out):
+    from buswitness.decode import Damage, Frame
+    return [("frame", x.raw) if isinstance(x, Frame) else (x.kind, x.raw) for x in out if isinstance(x, (Frame, Damage))]
+
+
+def test_frame_split_across_two_reads_is_one_frame():
+    assert _kinds(_decode([READ_REQ[:3], READ_REQ[3:]])) == [("frame", READ_REQ)]
+
+
+def test_two_frames_and_a_fragment_in_one_read():
+    out = _kinds(_decode([READ_REQ + READ_RSP + READ_REQ[:5]]))
+    assert out == [("frame", READ_REQ), ("frame", READ_RSP), ("truncated", READ_REQ[:5])]
+
+
+def test_frame_cut_short_by_a_certain_silence_is_truncated_and_the_next_frame_survives():
+    # 1 ms adapter timer, 100 ms between reads: the silence is certain (TIMING.md)
+    out = _kinds(_decode([READ_RSP[:6], READ_REQ], latency_ms=1.0, gap_ns=100_000_000))
+    assert out == [("truncated", READ_RSP[:6]), ("frame", READ_REQ)]
+
+
+def test_damaged_frame_between_good_ones_is_a_crc_error():
+    bad = bytearray(READ_RSP)
+    bad[5] ^= 1
+    out = _kinds(_decode([READ_REQ + bytes(bad) + READ_REQ]))
+    assert out == [("frame", READ_REQ), ("crc_error", bytes(bad)), ("frame", READ_REQ)]
+
+
+def test_largest_frame_of_256_bytes_is_accepted():
+    # MSL V1.02 p13: 256 bytes at most; FC17 request with 121 registers is 13 + 242 = 255, FC03 answer of 125 is 255
+    big = append_crc(bytes([1, 0x14, 251]) + bytes(251))
+    assert len(big) == 256
+    assert [(s.start, s.end) for s in split_frames(big + READ_REQ)] == [(0, 256), (256, 264)]
+
+
+def test_byte_count_beyond_the_256_byte_limit_is_no_frame():
+    too_big = append_crc(bytes([1, 0x14, 252]) + bytes(252))
+    assert not [s for s in split_frames(too_big) if s.shape]
+
+
+def test_64k_of_garbage_then_a_frame_finds_the_frame():
+    data = os.urandom(65536) + READ_REQ + READ_RSP
+    spans = split_frames(data)
+    assert [s.end for s in spans if s.shape][-2:] == [len(data) - 11, len(data)]
