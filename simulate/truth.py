@@ -235,7 +235,10 @@ def _columnar(df: pd.DataFrame, columns: list[str]) -> dict:
     out: dict = {"columns": columns}
     for col in columns:
         series = df[col] if col in df else pd.Series([], dtype=object)
-        if col in _BYTES_COLUMNS:
+        if col == "received":
+            # null where the sniffer received exactly what was sent (most frames): keeps the file small
+            out[col] = [None if v == r else bytes(v).hex() for v, r in zip(series.tolist(), df["raw"].tolist())]
+        elif col in _BYTES_COLUMNS:
             out[col] = [bytes(v).hex() for v in series.tolist()]
         elif series.dtype.kind == "f":
             out[col] = [None if math.isnan(v) else round(v, 6) for v in series.tolist()]
@@ -253,7 +256,9 @@ def read_truth(path: str | os.PathLike) -> dict:
             cols = data[key]["columns"]
             df = pd.DataFrame({c: data[key][c] for c in cols})
             for c in cols:
-                if c in _BYTES_COLUMNS:
+                if c in _BYTES_COLUMNS and c != "received":
                     df[c] = [bytes.fromhex(h) for h in df[c]]
+            if "received" in df:
+                df["received"] = [r if h is None else bytes.fromhex(h) for h, r in zip(df["received"], df["raw"])]
             data[key] = df
     return data
