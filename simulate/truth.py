@@ -31,6 +31,8 @@ TRANSACTION_COLUMNS = ["transaction", "t_request_start_ns", "t_request_end_ns", 
                        "t_response_end_ns", "station", "function", "outcome", "exception_code", "retry",
                        "response_ms", "response_ms_low", "response_ms_high", "request_corrupted", "request_raw",
                        "response_raw", "responder"]
+#: In the file the interval columns are left out: truth is exact, so they equal response_ms.
+_JSON_TRANSACTION_COLUMNS = [c for c in TRANSACTION_COLUMNS if c not in ("response_ms_low", "response_ms_high")]
 EVENT_COLUMNS = ["t_start_ns", "t_end_ns", "kind", "station", "detail"]
 _BYTES_COLUMNS = {"raw", "received", "request_raw", "response_raw"}
 
@@ -200,7 +202,7 @@ class Truth:
                "events": _columnar(self.events, EVENT_COLUMNS)}
         if self.keep_tables:
             out["frames"] = _columnar(self.frames, FRAME_COLUMNS)
-            out["transactions"] = _columnar(self.transactions, TRANSACTION_COLUMNS)
+            out["transactions"] = _columnar(self.transactions, _JSON_TRANSACTION_COLUMNS)
         return out
 
     def to_json(self, path: str | os.PathLike) -> None:
@@ -258,7 +260,11 @@ def read_truth(path: str | os.PathLike) -> dict:
             for c in cols:
                 if c in _BYTES_COLUMNS and c != "received":
                     df[c] = [bytes.fromhex(h) for h in df[c]]
+            if "response_ms" in df:
+                df["response_ms"] = df["response_ms"].astype(float)
+                df["response_ms_low"] = df["response_ms"]
+                df["response_ms_high"] = df["response_ms"]
             if "received" in df:
-                df["received"] = [r if h is None else bytes.fromhex(h) for h, r in zip(df["received"], df["raw"])]
+                df["received"] = [bytes.fromhex(h) if isinstance(h, str) else r for h, r in zip(df["received"], df["raw"])]
             data[key] = df
     return data
