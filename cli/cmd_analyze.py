@@ -3,17 +3,85 @@
 from __future__ import annotations
 
 import argparse
+from pathlib import Path
 
-from buswitness.errors import NotBuiltYet
+from buswitness.cli.common import add_input_options, serial_from_args
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
 
+def timeout_arg(text: str) -> float:
+    """``200ms``, ``0.2s`` or a bare number of milliseconds, as milliseconds."""
+    from buswitness.cli.common import duration_s
+    s = str(text).strip()
+    try:
+        value = float(s)
+    except ValueError:
+        return duration_s(s) * 1000.0
+    if value <= 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: a timeout must be more than zero")
+    return value
+
+
+def add_analysis_options(p: argparse.ArgumentParser) -> None:
+    """Options shared by ``analyze`` and ``evidence``: the input and how to judge it."""
+    p.add_argument("capture", help="capture file (or first part of a rotated set), hex text or raw bytes")
+    p.add_argument("--timeout", type=timeout_arg, default=None,
+                   help="the master's response timeout, e.g. 200ms (a bare number is ms); default: inferred "
+                        "from the traffic and reported as inferred")
+    p.add_argument("--stations", metavar="TOML", default=None,
+                   help='station map: [stations.7] name = "Pump drive B", position_m = 310, notes = "..."')
+    p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
+    add_input_options(p)
+
+
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("analyze", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("analyze", help=HELP, description=HELP.capitalize() + ". With no output option, "
+                       "writes report.html and summary.json into the current directory.")
+    add_analysis_options(p)
+    p.add_argument("--html", metavar="FILE", help="write the dashboard here")
+    p.add_argument("--json", metavar="FILE", help="write summary.json here")
+    p.add_argument("--csv", metavar="DIR", help="write transactions.csv, frames.csv and events.csv into DIR")
+    p.add_argument("--parquet", metavar="DIR", help="write the same three tables as Parquet into DIR")
     p.set_defaults(run=run)
 
 
+def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_dir: str | None = None):
+    """Open the input read-only and analyse it as the options say."""
+    from buswitness.analysis import AnalysisOptions, analyze, load_station_map
+    from buswitness.capture.sources import open_capture
+    from buswitness.errors import InputFileError
+
+    smap = load_station_map(args.stations) if args.stations else None
+    source = open_capture(args.capture, args.input_kind, serial_from_args(args), args.on_bad_line)
+    options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
+                              progress=False if args.no_progress else None)
+    result = analyze(source, options)
+    damage = result.damage
+    if result.bus.frames == 0 and damage is not None and not damage.clean:
+        raise InputFileError(args.capture, "holds nothing usable: " + "; ".join(damage.warnings[:3]),
+                             "the file is damaged beyond what can be read")
+    return result
+
+
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness analyze' is not built yet in this version; nothing was done")
+    from buswitness.analysis.dashboard import write_dashboard
+    from buswitness.analysis.summary import text_summary, write_summary
+
+    html, js = args.html, args.json
+    if not any((html, js, args.csv, args.parquet)):
+        html, js = "report.html", "summary.json"
+    result = run_analysis(args, args.csv, args.parquet)
+    print(text_summary(result))
+    written = []
+    if html:
+        written.append(write_dashboard(result, html))
+    if js:
+        written.append(write_summary(result, js))
+    for folder, kind in ((args.csv, "csv"), (args.parquet, "parquet")):
+        if folder:
+            written.extend(Path(folder) / f"{name}.{kind}" for name in ("transactions", "frames", "events"))
+    print("wrote:")
+    for p in written:
+        print(f"  {Path(p).resolve()}")
+    return 0

@@ -3,17 +3,97 @@
 from __future__ import annotations
 
 import argparse
+import time
+from pathlib import Path
 
-from buswitness.errors import NotBuiltYet
+from buswitness.cli.common import duration_s
 
 HELP = "simulate the demo pump-station night, analyse it and write the reports"
 
+#: The demo's default span: 22:00 to 03:00 of the fictional night. It holds every fault of the
+#: scenario (the slow pump drive, the 40-minute dropout from 02:00, the duplicate address and
+#: the noise bursts) and keeps the first run short on a small machine; ``--duration 8h`` runs
+#: the whole night.
+DEFAULT_DURATION = "5h"
+FULL_NIGHT = "8h"
+CAPTURE_NAME = "pumpstation-night.bwcap"
+
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("demo", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("demo", help=HELP, description=HELP.capitalize() + " (a fictional plant: a slow pump drive, "
+                       "a station off the bus after 02:00, a duplicate address, noise when a pump starts).")
+    p.add_argument("--dir", default="buswitness-demo", help="folder for the capture and reports "
+                                                            "(default: ./buswitness-demo)")
+    p.add_argument("--duration", type=duration_s, default=duration_s(DEFAULT_DURATION),
+                   help=f"simulated time from 22:00 (default: {DEFAULT_DURATION}, to 03:00, which shows every fault; "
+                        f"--duration {FULL_NIGHT} for the whole night)")
+    p.add_argument("--seed", type=int, default=1, help="random seed (default: 1)")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
     p.set_defaults(run=run)
 
 
+def station_map_toml(scenario) -> str:
+    """The scenario's station names and positions as a station map file."""
+    by_address: dict[int, list] = {}
+    for st in scenario.stations:
+        by_address.setdefault(st.address, []).append(st)
+    lines = ["# Station map of the fictional demo pump station (use with: buswitness analyze --stations)"]
+    for address, stations in sorted(by_address.items()):
+        name = " / ".join(s.name for s in stations).replace("\\", "\\\\").replace('"', '\\"')
+        lines += ["", f"[stations.{address}]", f'name = "{name}"', f"position_m = {stations[0].position_m:g}"]
+    return "\n".join(lines) + "\n"
+
+
+def slowest_station(result) -> int | None:
+    """The station the evidence report is about: most late answers, then most answers over the timeout."""
+    candidates = [s for s in result.stations if s.requests and s.answered]
+    if not candidates:
+        return None
+    best = max(candidates, key=lambda s: (s.late, s.answers_over_timeout or 0, s.response_ms["p99"] or 0.0))
+    return best.address
+
+
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness demo' is not built yet in this version; nothing was done")
+    from buswitness.analysis import AnalysisOptions, analyze, load_station_map
+    from buswitness.analysis.dashboard import write_dashboard
+    from buswitness.analysis.evidence import write_evidence
+    from buswitness.analysis.summary import text_summary, write_summary
+    from buswitness.capture.sources import open_capture
+    from buswitness.errors import OutputError
+    from buswitness.fsutil import atomic_write
+    from buswitness.simulate import load_scenario, simulate
+
+    folder = Path(args.dir)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{folder}: cannot create the demo folder ({exc.strerror})") from None
+    started = time.perf_counter()
+    scenario = load_scenario("pumpstation")
+    capture = folder / CAPTURE_NAME
+    stations = folder / "stations.toml"
+    capture.unlink(missing_ok=True)  # our own capture from an earlier demo run
+    note = ""
+    if args.duration < duration_s(FULL_NIGHT):
+        note = (f" (22:00 onwards; the whole night is --duration {FULL_NIGHT}, which takes longer: this "
+                f"shorter default already holds every fault of the scenario)")
+    print(f"simulating {args.duration / 3600:g} h of the fictional pump station night ({scenario.serial}){note} ...",
+          flush=True)
+    simulate(scenario, duration_s=args.duration, seed=args.seed, keep_tables=False).write(capture)
+    with atomic_write(stations) as f:
+        f.write(station_map_toml(scenario))
+    print("analysing ...", flush=True)
+    result = analyze(open_capture(capture), AnalysisOptions(station_map=load_station_map(stations),
+                                                            progress=False if args.no_progress else None))
+    print(text_summary(result))
+    written = [capture, stations, write_dashboard(result, folder / "report.html"),
+               write_summary(result, folder / "summary.json")]
+    late = slowest_station(result)
+    if late is not None:
+        written.append(write_evidence(result, late, folder / f"evidence-station{late}.html"))
+    print(f"done in {time.perf_counter() - started:.0f} s; wrote:")
+    for p in written:
+        print(f"  {Path(p).resolve()}")
+    print(f"open {Path(folder / 'report.html').resolve()} in a browser; re-run the analysis with:\n"
+          f"  buswitness analyze {capture} --stations {stations}")
+    return 0

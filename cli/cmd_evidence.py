@@ -3,17 +3,39 @@
 from __future__ import annotations
 
 import argparse
+from pathlib import Path
 
-from buswitness.errors import NotBuiltYet
+from buswitness.cli.cmd_analyze import add_analysis_options, run_analysis
 
 HELP = "write the evidence report on one station for its vendor"
 
 
+def station_arg(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a station address (1 to 247)") from None
+    if not 1 <= value <= 247:
+        raise argparse.ArgumentTypeError(f"{value} is not a station address (1 to 247)")
+    return value
+
+
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("evidence", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("evidence", help=HELP, description=HELP.capitalize() + ": capture identity, method, "
+                       "figures against the master's timeout, every late answer, and the limits of the capture.")
+    add_analysis_options(p)
+    p.add_argument("--station", type=station_arg, required=True, help="the station's address, e.g. 7")
+    p.add_argument("-o", "--output", metavar="FILE", help="report to write (default: stationN.html)")
     p.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness evidence' is not built yet in this version; nothing was done")
+    from buswitness.analysis.evidence import write_evidence
+
+    result = run_analysis(args)
+    path = write_evidence(result, args.station, args.output or f"station{args.station}.html")
+    s = result.station(args.station)
+    print(f"{s.label}: {s.requests} requests, {s.timeouts} timeouts, {s.late} late answers, "
+          f"p95 {s.response_ms['p95']} ms; master timeout {result.timeout.explanation}")
+    print(f"wrote: {Path(path).resolve()}")
+    return 0
