@@ -188,6 +188,7 @@ class Recorder:
         self._writer_thread: threading.Thread | None = None
         self._parsers: list[ParmrkParser | None] = []
         self._watch: list[tuple[Path, int]] = []
+        self._output_gone = False
 
     # -- messages and hand-off --------------------------------------------------------------
     def message(self, text: str) -> None:
@@ -406,17 +407,22 @@ class Recorder:
         except OSError:
             same = False
         if not same:
+            self._output_gone = True
             raise OutputError(f"{part}: the capture file or its directory was removed while recording; "
                               f"recording stopped")
 
     def _close_after_failure(self, w: CaptureWriter) -> None:
-        """After a fatal output error: keep what is on disk valid and rescue a removed file."""
-        try:
-            w.close()
-        except OutputError:
-            pass
-        except OSError:
-            pass
+        """After a fatal output error: keep what is on disk valid and rescue a removed file.
+
+        The writer is not flushed again: a second attempt on a full disk could leave a torn
+        block after the cut-off one, and the reader recovers a cut-off block's whole records.
+        A removed file is still open and writable, so its last records are flushed before the rescue.
+        """
+        if self._output_gone:
+            try:
+                w.close()
+            except OutputError:
+                pass
         if not self._watch or self.error is None:
             return
         part, fd = self._watch[0]

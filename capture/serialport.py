@@ -202,14 +202,15 @@ def open_listening(device: str, bus: SerialFormat, *, read_timeout_s: float = 0.
     """
     opened = SerialFormat.parse("8N1", bus.baud) if is_pty(device) else bus
     notes: list[str] = []
+    failures = (serial.SerialException, OSError, ValueError) + ((termios.error,) if termios else ())
     try:
         ser = _open(device, opened, read_timeout_s)
-    except (serial.SerialException, OSError, ValueError) as exc:
+    except failures as exc:
         if opened.parity != "N" and is_pty(device):
             opened = SerialFormat.parse("8N1", bus.baud)
             try:
                 ser = _open(device, opened, read_timeout_s)
-            except (serial.SerialException, OSError, ValueError) as exc2:
+            except failures as exc2:
                 raise _open_error(device, exc2) from None
         else:
             raise _open_error(device, exc) from None

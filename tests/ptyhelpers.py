@@ -120,6 +120,12 @@ class PtyAdapter:
         """Make the device vanish (the pty closes, the path disappears) and come back as a new pty."""
         self._command("replug")
 
+    def kill(self) -> None:
+        """Stop the helper at once (e.g. when it is blocked writing to a pty nobody reads any more)."""
+        if self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait()
+
     def close(self) -> None:
         if self.proc.poll() is None:
             try:
