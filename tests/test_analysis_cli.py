@@ -97,3 +97,18 @@ def test_analyze_of_an_empty_file_is_a_clear_error(tmp_path, capsys):
     empty.write_bytes(b"")
     assert main(["analyze", str(empty), "--no-progress"]) == 3
     assert "is empty" in capsys.readouterr().err
+
+
+def test_damaged_capture_is_analysed_and_the_damage_reported(tmp_path, capsys):
+    from buswitness.simulate import load_scenario, simulate
+    capture = tmp_path / "cut.bwcap"
+    simulate(load_scenario("pumpstation"), duration_s=120, seed=1, keep_tables=False).write(capture)
+    data = capture.read_bytes()
+    capture.write_bytes(data[: len(data) - 5000])  # a copy cut short
+    out = tmp_path / "s.json"
+    html = tmp_path / "r.html"
+    assert main(["analyze", str(capture), "--json", str(out), "--html", str(html), "--no-progress"]) == 0
+    damage = json.loads(out.read_text())["capture"]["damage"]
+    assert damage["clean"] is False and damage["truncated_tail"] is True
+    assert "The capture file is damaged" in html.read_text()
+    assert "capture damage:" in capsys.readouterr().out
