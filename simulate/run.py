@@ -23,6 +23,7 @@ from buswitness.decode.timing import SerialFormat
 from buswitness.errors import OutputError, UsageError
 from buswitness.simulate.adapter import AdapterModel
 from buswitness.simulate.bus import Bus, expand_windows
+from buswitness.simulate.fastpath import PlainSchedule, is_plain
 from buswitness.simulate.scenario import Scenario, Sniffer
 from buswitness.simulate.sniffer import receive_slice
 from buswitness.simulate.truth import EVENT_COLUMNS, Truth
@@ -62,15 +63,17 @@ class SimResult:
         bus_rng, line_rng, adapter_rng = (np.random.default_rng(s) for s in seq.spawn(3))
         t0 = START_MONOTONIC_NS
         bus = Bus(sc, bus_rng, t0, self.duration_s)
+        schedule = PlainSchedule(bus) if is_plain(sc) else bus
         adapter = AdapterModel(sc.adapter, adapter_rng, t0)
         truth = Truth(self._meta(), _station_names(sc), self.keep_tables)
         bursts = bus.bursts
         sniff = self.sniffer_serial
         matches = sniff == sc.serial and not self.sniffer.polarity_reversed
-        slice_ns = int(self.slice_s * 1e9)
+        # a faster bus gets shorter slices, so a slice holds about as many bytes at any baud rate
+        slice_ns = int(min(self.slice_s, SLICE_S * 19200 / max(sc.serial.baud, sniff.baud)) * 1e9)
         k = 1
         while True:
-            ws = bus.run_slice(t0 + k * slice_ns)
+            ws = schedule.run_slice(t0 + k * slice_ns)
             k = max(k + 1, (bus.t - t0) // slice_ns + 1)
             rec = receive_slice(ws, sc.serial, sniff, self.sniffer.polarity_reversed, bursts, line_rng)
             truth.add_slice(ws, rec, matches)

@@ -29,6 +29,7 @@ class SliceReception:
     value: np.ndarray
     flags: np.ndarray
     stray_bytes: int             # bytes delivered outside any frame (noise on an idle line)
+    windowed: np.ndarray         # per sorted frame: went through the bit-level receiver
 
 
 def _touching(f_start: np.ndarray, f_end: np.ndarray, wl: np.ndarray, wh: np.ndarray) -> np.ndarray:
@@ -46,14 +47,16 @@ def receive_slice(ws: WireSlice, bus: SerialFormat, sniffer: SerialFormat, polar
                   bursts: list[tuple[int, int, float]], rng: np.random.Generator) -> SliceReception:
     """Work out the sniffer's bytes for one slice (deterministic for a given generator state)."""
     n = len(ws)
-    order = np.argsort(np.asarray(ws.f_start, dtype=np.int64), kind="stable")
-    f_start = np.asarray(ws.f_start, dtype=np.int64)[order]
+    starts = np.asarray(ws.f_start, dtype=np.int64)
+    in_order = bool((np.diff(starts) >= 0).all())
+    order = np.arange(n) if in_order else np.argsort(starts, kind="stable")
+    f_start = starts[order]
     f_end = np.asarray(ws.f_end, dtype=np.int64)[order]
     noisy = np.asarray(ws.f_noisy, dtype=bool)[order] if n else np.zeros(0, bool)
     collided = np.asarray(ws.f_collided, dtype=bool)[order] if n else np.zeros(0, bool)
     gap_at = np.asarray(ws.f_gap_at, dtype=np.int64)[order] if n else np.zeros(0, np.int64)
     gap_ns = np.asarray(ws.f_gap_ns, dtype=np.int64)[order] if n else np.zeros(0, np.int64)
-    raws = [ws.f_raw[i] for i in order.tolist()]
+    raws = list(ws.f_raw) if in_order else [ws.f_raw[i] for i in order.tolist()]
     lengths = np.fromiter((len(r) for r in raws), dtype=np.int64, count=n)
     values = np.frombuffer(b"".join(raws), dtype=np.uint8)
     offsets = np.cumsum(lengths) - lengths
@@ -81,7 +84,7 @@ def receive_slice(ws: WireSlice, bus: SerialFormat, sniffer: SerialFormat, polar
             break
         windowed |= more
 
-    received: list[bytes] = [bytes(r) for r in raws]
+    received: list[bytes] = list(raws)
     line_errors = np.zeros(n, dtype=np.int64)
     cheap_chars = ~windowed[fid]
     arr_parts = [np.round(c_end[cheap_chars]).astype(np.int64)]
@@ -143,7 +146,7 @@ def receive_slice(ws: WireSlice, bus: SerialFormat, sniffer: SerialFormat, polar
     flg = np.concatenate(flag_parts)
     srt = np.argsort(t_arr, kind="stable")
     return SliceReception(order=order, received=received, line_errors=line_errors, t_arrival_ns=t_arr[srt],
-                          value=val[srt], flags=flg[srt], stray_bytes=stray)
+                          value=val[srt], flags=flg[srt], stray_bytes=stray, windowed=windowed)
 
 
 def _glitches(lo: list[int], hi: list[int], ber: list[float], bus: SerialFormat, f_start: np.ndarray,

@@ -85,7 +85,11 @@ class Truth:
             noisy = np.asarray(ws.f_noisy, dtype=bool)[order]
             collided = np.asarray(ws.f_collided, dtype=bool)[order]
             raws = [ws.f_raw[i] for i in order.tolist()]
-            crc_good = np.fromiter((_crc_good(r) for r in rec.received), dtype=bool, count=n)
+            # a frame that did not go through the bit-level receiver arrived as sent, with the valid
+            # CRC every simulated talker appends
+            crc_good = np.ones(n, dtype=bool)
+            for i in np.flatnonzero(rec.windowed).tolist():
+                crc_good[i] = _crc_good(rec.received[i])
             corrupted = noisy | collided
             resp = kind == 1
             bad_on_wire = ~crc_good if sniffer_matches_bus else corrupted
