@@ -14,7 +14,6 @@ timestamp as its chunk, as live capture stores PARMRK marks.
 from __future__ import annotations
 
 import numpy as np
-
 from buswitness.capture.fileformat import RecordBatch
 from buswitness.simulate.scenario import Adapter
 
@@ -91,7 +90,7 @@ class AdapterModel:
     def __init__(self, cfg: Adapter, rng: np.random.Generator, t0_ns: int, port: int = 0) -> None:
         self.cfg = cfg
         self.rng = rng
-        self.latency_ns = max(1, int(round(cfg.latency_ms * 1e6)))
+        self.latency_ns = max(1, round(cfg.latency_ms * 1e6))
         self.phase = int(t0_ns)
         self.port = port
         self.last_t = int(t0_ns)

@@ -25,7 +25,6 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-
 from buswitness.simulate.pdus import exception_frame, request_frame, response_data_length, response_frame
 from buswitness.simulate.scenario import Scenario, Station
 
@@ -209,7 +208,7 @@ class Bus:
                    gap_at: int = -1, gap_ns: int = 0) -> int:
         s = self.slice
         assert s is not None
-        end = start + int(round(len(raw) * self.c_ns)) + gap_ns
+        end = start + round(len(raw) * self.c_ns) + gap_ns
         idx = len(s.f_start)
         s.f_start.append(start)
         s.f_end.append(end)

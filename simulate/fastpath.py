@@ -12,10 +12,18 @@ same rules (broadcasts wait the broadcast delay, other transactions the inter-po
 from __future__ import annotations
 
 import numpy as np
-
 from buswitness.decode.crc import crc16_rows
-from buswitness.simulate.bus import BROADCAST, EXCEPTION, KIND_BROADCAST, KIND_REQUEST, KIND_RESPONSE, MASTER, OK, \
-    Bus, WireSlice
+from buswitness.simulate.bus import (
+    BROADCAST,
+    EXCEPTION,
+    KIND_BROADCAST,
+    KIND_REQUEST,
+    KIND_RESPONSE,
+    MASTER,
+    OK,
+    Bus,
+    WireSlice,
+)
 from buswitness.simulate.pdus import exception_frame, response_data_length, response_frame
 from buswitness.simulate.scenario import Scenario
 

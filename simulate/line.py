@@ -19,7 +19,6 @@ import bisect
 from dataclasses import dataclass
 
 import numpy as np
-
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR
 from buswitness.decode.timing import SerialFormat
 

@@ -12,12 +12,11 @@ from __future__ import annotations
 import hashlib
 import os
 import time
+from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import Iterator
 
 import numpy as np
 import pandas as pd
-
 from buswitness.capture.fileformat import CaptureHeader, CaptureWriter, PortInfo, RecordBatch
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import OutputError, UsageError
@@ -153,25 +152,25 @@ class SimResult:
             r = st.response
             if r.fixed_ms + r.jitter_ms > sc.master.timeout_ms or r.tail_rate > 0:
                 rows.append((t0, t1, "late_answers", st.address,
-                             f"{st.name} answers in {r.fixed_ms:g}+{r.jitter_ms:g} ms, with a tail of "
+                             (f"{st.name} answers in {r.fixed_ms:g}+{r.jitter_ms:g} ms, with a tail of "
                              f"{r.tail_rate:g} of answers {r.tail_mean_ms:g} ms later on average "
-                             f"(master timeout {sc.master.timeout_ms:g} ms)"))
+                             f"(master timeout {sc.master.timeout_ms:g} ms)")))
             if r.fixed_ms < t35_ms:
                 rows.append((t0, t1, "fast_turnaround", st.address,
                              f"{st.name} answers after {r.fixed_ms:g} ms, under t3.5 = {t35_ms:.3f} ms"))
             if st.gap_rate > 0:
                 rows.append((t0, t1, "gap_in_frame", st.address,
-                             f"{st.gap_rate:g} of {st.name}'s answers have a {st.gap_chars:g}-character "
-                             f"silence inside"))
+                             (f"{st.gap_rate:g} of {st.name}'s answers have a {st.gap_chars:g}-character "
+                             f"silence inside")))
             if st.exception_rate > 0:
                 rows.append((t0, t1, "exceptions", st.address,
-                             f"{st.name} answers {st.exception_rate:g} of requests with exception code(s) "
-                             f"{', '.join(str(c) for c in st.exception_codes)}"))
+                             (f"{st.name} answers {st.exception_rate:g} of requests with exception code(s) "
+                             f"{', '.join(str(c) for c in st.exception_codes)}")))
             ber = sc.station_ber(st)
             if ber > 0:
                 rows.append((t0, t1, "line_noise", st.address,
-                             f"bit-error rate {ber:g} on frames to and from {st.name} "
-                             f"({st.position_m:g} m along the cable)"))
+                             (f"bit-error rate {ber:g} on frames to and from {st.name} "
+                             f"({st.position_m:g} m along the cable)")))
         for a, count in present.items():
             if count > 1:
                 rows.append((t0, t1, "duplicate_address", a, f"{names[a]} share address {a}"))

@@ -9,13 +9,13 @@ mistake gives one clear message naming the file and the field instead of a trace
 from __future__ import annotations
 
 import json
-import tomllib
 from dataclasses import dataclass, field, replace
 from datetime import datetime
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
+import tomllib
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, SerialFormatError, UsageError
 
@@ -132,7 +132,7 @@ class Scenario:
         return self.noise_ber_per_km * station.position_m / 1000.0
 
     def with_overrides(self, *, baud: int | None = None, bus_format: str | None = None,
-                       latency_ms: float | None = None) -> "Scenario":
+                       latency_ms: float | None = None) -> Scenario:
         """A copy with the bus baud rate, character format or adapter latency replaced."""
         sc = self
         if baud is not None or bus_format is not None:

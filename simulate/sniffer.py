@@ -12,7 +12,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
 from buswitness.decode.timing import SerialFormat
 from buswitness.simulate.bus import WireSlice
 from buswitness.simulate.line import char_bits, invert, low_intervals, merge_intervals, receive

@@ -15,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-
 from buswitness.decode.crc import crc16_modbus
 from buswitness.errors import OutputError
 from buswitness.simulate.bus import FRAME_KINDS, MASTER, OUTCOMES, WireSlice
@@ -226,7 +225,7 @@ def _percentiles(values: np.ndarray) -> dict:
     if len(values) == 0:
         return {"count": 0, "min": None, "p50": None, "p95": None, "p99": None, "max": None}
     q = np.percentile(values, [50, 95, 99])
-    return {"count": int(len(values)), "min": round(float(values.min()), 4), "p50": round(float(q[0]), 4),
+    return {"count": len(values), "min": round(float(values.min()), 4), "p50": round(float(q[0]), 4),
             "p95": round(float(q[1]), 4), "p99": round(float(q[2]), 4), "max": round(float(values.max()), 4)}
 
 

@@ -9,7 +9,6 @@ import dataclasses
 
 import numpy as np
 import pytest
-
 from buswitness.capture.fileformat import FLAG_LINE_ERROR
 from buswitness.simulate import load_scenario, simulate
 from buswitness.simulate.adapter import AdapterModel, packet_times
@@ -36,7 +35,7 @@ def test_sixty_two_buffered_bytes_leave_at_once_and_rephase_the_timer():
 
 
 def test_a_byte_exactly_on_a_tick_goes_with_that_tick():
-    ends, times, _ = packet_times(np.array([16 * MS]), 16 * MS, 0)
+    _ends, times, _ = packet_times(np.array([16 * MS]), 16 * MS, 0)
     assert times.tolist() == [16 * MS]
 
 

@@ -4,7 +4,6 @@ import json
 import math
 
 import numpy as np
-
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR
 from buswitness.decode.crc import append_crc
 from buswitness.decode.timing import SerialFormat

@@ -3,7 +3,6 @@
 import json
 
 import pytest
-
 from buswitness.errors import InputFileError, UsageError
 from buswitness.simulate import builtin_names, load_scenario, simulate
 from buswitness.simulate.scenario import parse_scenario

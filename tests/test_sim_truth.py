@@ -2,7 +2,6 @@
 
 import numpy as np
 import pytest
-
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, CaptureReader
 from buswitness.decode.crc import crc_ok
 from buswitness.simulate import START_MONOTONIC_NS, load_scenario, read_truth, simulate
@@ -30,7 +29,7 @@ def demo_run():
 
 
 def test_clean_capture_holds_exactly_the_frames_on_the_wire(clean_run):
-    res, (t, n, flags, payload) = clean_run
+    res, (_t, _n, flags, payload) = clean_run
     frames = res.truth.frames
     assert payload == b"".join(frames.raw)
     assert not flags.any()
@@ -64,7 +63,7 @@ def test_every_colliding_pair_loses_at_least_one_frame(demo_run):
 
 
 def test_chunk_timestamps_never_precede_their_last_byte_on_the_bus(clean_run):
-    res, (t, n, flags, payload) = clean_run
+    res, (t, n, _flags, _payload) = clean_run
     f = res.truth.frames
     c = res.scenario.serial.char_time_s * 1e9
     arrival = np.concatenate([s + (np.arange(len(r)) + 1) * c for s, r in zip(f.t_first_bit_ns, f.raw)])
@@ -138,7 +137,7 @@ def test_write_gives_a_capture_and_truth_that_read_back(tmp_path):
 
 def test_polarity_reversed_sniffer_sees_breaks_and_marked_garbage():
     res = simulate(load_scenario("clean"), duration_s=5, seed=1, sniffer_polarity_reversed=True)
-    t, n, flags, payload = concat(res.batches())
+    _t, _n, flags, payload = concat(res.batches())
     assert (flags & FLAG_BREAK).any()
     assert (flags & FLAG_LINE_ERROR).any()
     assert payload != b"".join(res.truth.frames.raw)
