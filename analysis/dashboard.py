@@ -8,13 +8,13 @@ Chart data travel as JSON in a ``<script type="application/json">`` element (esc
 from __future__ import annotations
 
 import html
+import math
 from pathlib import Path
-
-from markupsafe import Markup
 
 from buswitness.analysis.render import environment, finite, script_json, stylesheet
 from buswitness.analysis.result import AnalysisResult
 from buswitness.fsutil import atomic_write
+from markupsafe import Markup
 
 #: Rows in the frame browser (the slowest answers and first failures of each station).
 BROWSER_ROWS_PER_STATION = 12
@@ -58,7 +58,7 @@ def charts(result: AnalysisResult) -> dict:
         visible = True if i < VISIBLE_STATIONS else "legendonly"
         series = result.station_series(s.address)
         name = _label(s.label)
-        if any(v == v for v in series["rt_p95"]):
+        if any(math.isfinite(v) for v in series["rt_p95"]):
             rt_traces.append({"type": "scattergl", "mode": "lines", "name": f"{name} p50", "x": x,
                               "y": finite(series["rt_p50"]), "line": {"color": colour, "width": 1},
                               "legendgroup": name, "visible": visible})

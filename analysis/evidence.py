@@ -13,13 +13,12 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from markupsafe import Markup
-
 from buswitness.analysis.histogram import FINE, count_above
 from buswitness.analysis.render import environment, stylesheet
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.errors import UsageError
 from buswitness.fsutil import atomic_write
+from markupsafe import Markup
 
 #: Multiples of the master's timeout at which the tail is tabulated.
 TAIL_FACTORS = (0.5, 0.75, 0.9, 1.0, 1.25, 1.5, 2.0)

@@ -11,7 +11,6 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import pandas as pd
-
 from buswitness.fsutil import atomic_write
 
 TRANSACTION_COLUMNS = ("t_request_end_s", "utc", "station", "function", "outcome", "exception_code", "retry",

@@ -15,7 +15,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-
 from buswitness.analysis.devid import device_id_text
 from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, quantile, quantiles_rows
 
@@ -68,7 +67,7 @@ class _Growing:
     def view(self) -> np.ndarray:
         return self.data[: self.minutes]
 
-    def merge(self, other: "_Growing", how: str = "add") -> None:
+    def merge(self, other: _Growing, how: str = "add") -> None:
         data = self.ensure(other.minutes)
         if how == "max":
             np.fmax(data[: other.minutes], other.view(), out=data[: other.minutes])
@@ -352,7 +351,7 @@ class Accumulator:
 
     # -- merging ---------------------------------------------------------------------------------
 
-    def merge(self, other: "Accumulator") -> None:
+    def merge(self, other: Accumulator) -> None:
         """Add ``other`` (a later or parallel part of the same capture) into this one."""
         if other.t0_ns != self.t0_ns:
             raise ValueError("accumulators of different capture starts cannot be merged")

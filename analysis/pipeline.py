@@ -8,13 +8,12 @@ number of minutes, not on the capture's length.
 from __future__ import annotations
 
 import sys
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Iterable, Iterator
 
 import numpy as np
 import pandas as pd
-
 from buswitness.analysis.exports import TableExporter, utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
 from buswitness.analysis.result import AnalysisResult, build_result

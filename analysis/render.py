@@ -7,7 +7,6 @@ import math
 from importlib import resources
 
 import jinja2
-
 from buswitness.analysis.result import EXCEPTION_NAMES
 
 FUNCTION_NAMES = {1: "read coils", 2: "read discrete inputs", 3: "read holding registers",

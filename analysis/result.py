@@ -10,10 +10,18 @@ from dataclasses import asdict, dataclass, field
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
-
 from buswitness import __version__
-from buswitness.analysis.figures import (EVENT_KINDS, FAILURES_PER_STATION, LATE_CAP, MINUTE_COLUMNS, OUTCOMES,
-                                         Accumulator, above, minute_bands, response_figures)
+from buswitness.analysis.figures import (
+    EVENT_KINDS,
+    FAILURES_PER_STATION,
+    LATE_CAP,
+    MINUTE_COLUMNS,
+    OUTCOMES,
+    Accumulator,
+    above,
+    minute_bands,
+    response_figures,
+)
 from buswitness.analysis.finding import Finding
 from buswitness.analysis.histogram import FINE, quantile
 from buswitness.analysis.stationmap import StationMap
@@ -245,5 +253,11 @@ def build_result(header: CaptureHeader, paths: list, damage: ReadReport | None, 
                           analysed_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"))
 
 
-__all__ = ["AnalysisResult", "BusFigures", "StationFigures", "EXCEPTION_NAMES", "FAILURES_PER_STATION",
-           "build_result"]
+__all__ = [
+    "EXCEPTION_NAMES",
+    "FAILURES_PER_STATION",
+    "AnalysisResult",
+    "BusFigures",
+    "StationFigures",
+    "build_result",
+]

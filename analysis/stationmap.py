@@ -14,10 +14,10 @@ from __future__ import annotations
 
 import os
 import re
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import tomllib
 from buswitness.errors import InputFileError
 
 

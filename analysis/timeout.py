@@ -15,7 +15,6 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
-
 from buswitness.analysis.histogram import FINE, quantile
 
 #: Silences after unanswered requests needed before an estimate is offered (common practice: a

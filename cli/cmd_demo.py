@@ -45,11 +45,14 @@ def station_map_toml(scenario) -> str:
 
 
 def slowest_station(result) -> int | None:
-    """The station the evidence report is about: most late answers, then most answers over the timeout."""
+    """The station the evidence report is about: the most answers slower than the timeout, then the slowest tail.
+
+    Late answers alone do not pick it: a duplicate address also yields late answers, quick ones.
+    """
     candidates = [s for s in result.stations if s.requests and s.answered]
     if not candidates:
         return None
-    best = max(candidates, key=lambda s: (s.late, s.answers_over_timeout or 0, s.response_ms["p99"] or 0.0))
+    best = max(candidates, key=lambda s: (s.answers_over_timeout or 0, s.response_ms["p99"] or 0.0, s.late))
     return best.address
 
 

@@ -4,14 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from buswitness.analysis.figures import Accumulator
 from buswitness.analysis.histogram import FINE, quantile
 from buswitness.analysis.pipeline import AnalysisOptions, analyze_tables
 from buswitness.analysis.stationmap import load_station_map
 from buswitness.analysis.timeout import infer_timeout
 from buswitness.errors import InputFileError
-
 from test_analysis_support import CHAR_NS, T0, Tx, header, night, tables
 
 

@@ -8,7 +8,6 @@ import stat
 from pathlib import Path
 
 import pytest
-
 from buswitness.cli.main import main
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_captures"

@@ -6,7 +6,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-
 from buswitness.capture.fileformat import CaptureHeader, PortInfo
 from buswitness.decode.crc import append_crc
 from buswitness.decode.timing import SerialFormat

@@ -6,7 +6,6 @@ import json
 
 import pandas as pd
 import pytest
-
 from buswitness.analysis import AnalysisOptions, analyze
 from buswitness.analysis.summary import summary_dict
 from buswitness.capture.sources import open_capture

@@ -8,7 +8,6 @@ import re
 from buswitness.analysis.dashboard import render_dashboard
 from buswitness.analysis.pipeline import analyze_tables
 from buswitness.analysis.render import script_json
-
 from test_analysis_support import Tx, header, night, report_id_response, tables
 
 HOSTILE = b"</script><script>alert(1)</script><img src=x onerror=alert(2)>"

@@ -5,11 +5,9 @@ from __future__ import annotations
 import json
 
 import pytest
-
+from browser import OfflinePage, require_chromium, screenshot
 from buswitness.cli.main import main
 from buswitness.decode.crc import append_crc
-
-from browser import OfflinePage, require_chromium, screenshot
 
 pytestmark = pytest.mark.browser
 

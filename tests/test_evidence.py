@@ -6,13 +6,11 @@ import hashlib
 import re
 
 import pytest
-
 from buswitness.analysis.evidence import evidence_data, render_evidence
 from buswitness.analysis.finding import WIRING_CAUTION, Finding
 from buswitness.analysis.pipeline import analyze_tables
 from buswitness.analysis.summary import summary_dict
 from buswitness.errors import UsageError
-
 from test_analysis_support import Tx, header, night, tables
 
 
@@ -69,8 +67,8 @@ def test_a_station_not_in_the_capture_is_a_clear_error(result):
 
 
 def test_hostile_station_name_is_escaped(tmp_path):
-    from buswitness.analysis.stationmap import load_station_map
     from buswitness.analysis.pipeline import AnalysisOptions
+    from buswitness.analysis.stationmap import load_station_map
     p = tmp_path / "s.toml"
     p.write_text('[stations.4]\nname = "<script>alert(1)</script>"\n')
     r = analyze_tables(header(), [tables([Tx(1.0, 4, "ok", 5.0)])], AnalysisOptions(station_map=load_station_map(p)))

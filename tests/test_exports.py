@@ -6,10 +6,8 @@ import os
 
 import pandas as pd
 import pytest
-
 from buswitness.analysis.exports import TRANSACTION_COLUMNS
 from buswitness.analysis.pipeline import AnalysisOptions, analyze_tables
-
 from test_analysis_support import Tx, header, tables
 
 TXS = [Tx(1.0, 7, "ok", 180.0), Tx(2.0, 7, "timeout"), Tx(3.0, 7, "late", 240.0)]
