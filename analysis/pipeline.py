@@ -147,9 +147,10 @@ def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
         result = analyze_tables(source.header, _decoded(source, cfg, lambda n: None), options, paths,
                                 getattr(source, "report", None))
     else:
+        from rich.console import Console
         from rich.progress import BarColumn, DownloadColumn, Progress, TextColumn, TimeRemainingColumn
         with Progress(TextColumn("analysing"), BarColumn(), DownloadColumn(), TimeRemainingColumn(),
-                      transient=True) as progress:
+                      console=Console(stderr=True), transient=True) as progress:
             task = progress.add_task("analyse", total=total)
             result = analyze_tables(source.header, _decoded(source, cfg, lambda n: progress.advance(task, n)),
                                     options, paths, getattr(source, "report", None))

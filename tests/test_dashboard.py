@@ -43,3 +43,16 @@ def test_station_table_has_a_row_per_station_and_the_timeout_line():
     rows = re.findall(r'<tr data-address="(\d+)">', page)
     assert rows == ["1", "2", "7", "9"]
     assert "master timeout 200 ms (inferred)" in page
+
+
+def test_findings_fill_the_summary_band_with_their_caution():
+    from buswitness.analysis.finding import WIRING_CAUTION, Cause, Finding
+    result = analyze_tables(header(), night(minutes=3))
+    result.findings = [Finding("late-answers", "warning", "Station 7 answers after the master's 200 ms timeout.",
+                               station=7, t_start_s=0.0, t_end_s=180.0, evidence={"late": 12},
+                               causes=[Cause("the device is slow", "its configured response delay")],
+                               caution=WIRING_CAUTION)]
+    page = render_dashboard(result)
+    assert 'class="sev sev-warning"' in page and "answers after the master&#39;s 200 ms timeout." in page
+    assert "the device is slow: check its configured response delay" in page and "licensed" in page
+    assert "No findings were raised" not in page
