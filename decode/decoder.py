@@ -34,6 +34,13 @@ PROTOCOLS = ("rtu", "ascii")
 
 _GAP_FLAGS = FLAG_REOPENED | FLAG_PAUSED | FLAG_DISCONNECTED
 _CUT_FLAGS = _GAP_FLAGS | FLAG_BREAK | FLAG_LOST
+_MARKS = (("line_error", FLAG_LINE_ERROR), ("break", FLAG_BREAK), ("bytes_lost", FLAG_LOST), ("port_gap", _GAP_FLAGS))
+_MARK_TEXT = {
+    "line_error": "bytes marked bad by the UART (parity or framing error)",
+    "break": "a break (line held low) was received",
+    "bytes_lost": "bytes were lost before this read (overrun or queue overflow)",
+    "port_gap": "the port was disconnected, reopened or paused: traffic in between is unknown",
+}
 
 
 @dataclass
@@ -191,6 +198,8 @@ class _Port:
         self.base = 0  # absolute stream position of buf[0]
         self.silences: dict[int, float] = {}  # absolute position of a record start -> least silence before it
         self.last_key = -(1 << 62)
+        self._marks: dict[str, list] = {}
+        self._merge_ns = cfg.latency_for(port) * 1e6 + cfg.host_delay_ms * 1e6 + 4 * self.char_ns
 
     def add(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
         """Take one record; append (sort key, item) pairs for what it completes to ``out``."""
@@ -209,6 +218,31 @@ class _Port:
 
     def flush(self, out: list) -> None:
         self._scan(True, out)
+        for kind in list(self._marks):
+            out.append(self._mark_item(kind))
+
+    def marks(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
+        """Turn record flags into events; consecutive marked records make one event with all their bytes."""
+        present = {kind for kind, bit in _MARKS if flags & bit}
+        for kind in list(self._marks):
+            run = self._marks[kind]
+            if kind not in present and (data or t_ns - run[1] > self._merge_ns):
+                out.append(self._mark_item(kind))
+        for kind in present:
+            run = self._marks.get(kind)
+            if run is not None and t_ns - run[1] <= self._merge_ns:
+                run[1] = t_ns
+                run[2] += data if kind == "line_error" else b""
+            else:
+                if run is not None:
+                    out.append(self._mark_item(kind))
+                self._marks[kind] = [t_ns, t_ns, bytearray(data if kind == "line_error" else b"")]
+
+    def _mark_item(self, kind: str) -> tuple:
+        t_first, _t_last, raw = self._marks.pop(kind)
+        # The marked bytes arrived within one adapter period before the first such read returned.
+        t = int(t_first - self._merge_ns / 2)
+        return t, ("damage", Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind]))
 
     def first_open_time(self) -> int | None:
         """Earliest time an item this port still holds back could carry (None: holds nothing)."""
@@ -237,8 +271,8 @@ class _Port:
         raw = bytes(self.buf[span.start:span.end])
         lo, hi = self.timeline.end_bounds(a, b - 1)
         if span.shape == JUNK:
-            first_lo, first_hi = self.timeline.end_bounds(a, a)
-            t = (first_lo + first_hi) // 2 - int(round(self.char_ns))
+            # Damaged bytes are mostly one talker's back-to-back bytes: bound them like a frame.
+            t = (lo + hi) // 2 - int(round(len(raw) * self.char_ns))
             kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
         gaps = [s for pos, s in self.silences.items() if a < pos < b]
@@ -310,13 +344,7 @@ class Decoder:
         if p is None:
             p = self.ports[port] = _Port(port, self.config)
         items: list = []
-        for kind, bit, text in (("line_error", FLAG_LINE_ERROR, "bytes marked bad by the UART (parity or framing)"),
-                                ("break", FLAG_BREAK, "a break (line held low) was received"),
-                                ("bytes_lost", FLAG_LOST, "bytes were lost before this read (overrun)"),
-                                ("port_gap", _GAP_FLAGS, "the port was disconnected, reopened or paused")):
-            if flags & bit:
-                items.append((t_ns, ("damage", Damage(kind, port, t_ns, data if bit == FLAG_LINE_ERROR else b"",
-                                                      -1, text))))
+        p.marks(t_ns, data, flags, items)
         p.add(t_ns, data, flags, items)
         self._enqueue(p, items)
 

@@ -137,30 +137,42 @@ class RegionScanner:
                 elif _valid(buf, p, length):
                     valid.append((length, shape))
         if valid:
-            trusted = self.anchored or buf[p] in self.known_addresses
-            best = None
-            for length, shape in valid:
-                sup = self._support(buf, p + length, end, final)
-                if sup is None and not trusted:
-                    return _NEED
-                if sup:
-                    best = (length, shape)
-                    break
-            if best is None:
-                if not trusted:
-                    length, shape = valid[0]
-                    if not plausible(buf, p, length, shape):
-                        return _NO
-                best = valid[0]
-            if len(valid) > 1 and valid[0][0] == valid[1][0]:
-                best = (best[0], EITHER)
-            return best[0] << 2 | best[1]
+            if need and not final:
+                return _NEED  # a longer rule is still open: the split that explains more may win
+            return self._choose(buf, p, end, final, valid)
         fc = buf[p + 1]
         if self.anchored and not fc & 0x80 and (fc not in PUBLIC_CODES or fc in SEARCH_CODES):
             return self._search(buf, p, end, final)
         if need and not final:
             return _NEED
         return _NO
+
+    def _choose(self, buf: bytes, p: int, end: int, final: bool, valid: list[tuple[int, int]]) -> int:
+        """Pick among CRC-valid lengths at ``p``: the one a valid frame or a silence follows, else the longest.
+
+        Two lengths can both be CRC-valid: a frame ending in 0x00 has a CRC-valid prefix one
+        byte shorter (the CRC of 0x00 from a zero state stays zero), and request and response
+        rules may coincide. The split that explains the most bytes wins.
+        """
+        trusted = self.anchored or buf[p] in self.known_addresses
+        undecided = False
+        for length, shape in valid:
+            sup = self._support(buf, p + length, end, final)
+            if sup:
+                return self._pick(valid, length, shape)
+            undecided = undecided or sup is None
+        if undecided and (len(valid) > 1 or not trusted):
+            return _NEED
+        length, shape = max(valid)
+        if not trusted and not plausible(buf, p, length, shape):
+            return _NO
+        return self._pick(valid, length, shape)
+
+    @staticmethod
+    def _pick(valid: list[tuple[int, int]], length: int, shape: int) -> int:
+        if sum(1 for n, _ in valid if n == length) > 1:
+            shape = EITHER
+        return length << 2 | shape
 
     def _search(self, buf: bytes, p: int, end: int, final: bool) -> int:
         """CRC search for a code without a length rule: the shortest valid, supported split."""

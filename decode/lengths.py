@@ -28,6 +28,9 @@ MAX_FRAME = 256
 PUBLIC_CODES = frozenset({0x01, 0x02, 0x03, 0x04, 0x05, 0x06, 0x07, 0x08, 0x0B, 0x0C, 0x0F, 0x10, 0x11,
                           0x14, 0x15, 0x16, 0x17, 0x18, 0x2B})
 
+#: FC08 sub-functions the specification defines (MAP V1.1b3 section 6.8).
+DIAGNOSTIC_SUBFUNCTIONS = frozenset({0, 1, 2, 3, 4} | set(range(0x0A, 0x13)) | {0x14})
+
 #: Codes whose length the CRC search must find (besides unknown codes).
 SEARCH_CODES = frozenset({0x08, 0x2B})
 
@@ -174,9 +177,21 @@ def plausible(buf: bytes, p: int, length: int, shape: int) -> bool:
         return buf[p + 2] >= 2 and buf[p + 2] % 2 == 0
     if fc == 0x05:
         return q in (0x0000, 0xFF00)
+    if fc == 0x08:
+        return (buf[p + 2] << 8 | buf[p + 3]) in DIAGNOSTIC_SUBFUNCTIONS
     if fc in (0x0F, 0x10):
         if shape == RESPONSE:
             return 1 <= q <= (1968 if fc == 0x0F else 123)
         count = buf[p + 6]
         return count == ((q + 7) // 8 if fc == 0x0F else 2 * q)
+    if fc in (0x14, 0x15):
+        return 0x07 <= buf[p + 2] <= 0xFB
+    if fc == 0x17:
+        if shape == RESPONSE:
+            return buf[p + 2] >= 2 and buf[p + 2] % 2 == 0
+        read_q, write_q = q, buf[p + 8] << 8 | buf[p + 9]
+        return 1 <= read_q <= 125 and 1 <= write_q <= 121 and buf[p + 10] == 2 * write_q
+    if fc == 0x18 and shape == RESPONSE:
+        count = buf[p + 4] << 8 | buf[p + 5]
+        return count <= 31 and (buf[p + 2] << 8 | buf[p + 3]) == 2 + 2 * count
     return True

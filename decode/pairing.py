@@ -30,7 +30,7 @@ AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past 
 AWAIT    other response                   a recent ``timeout`` matches: make it ``late``;
                                           same function: event ``unexpected_responder``;
                                           else ``orphan_response`` -> AWAIT(N)
-AWAIT    frame-shaped damage              remember it (the answer was probably hit) -> AWAIT
+AWAIT    damage after the request         remember it (the answer was probably hit) -> AWAIT
 end      flush                            close the wait as above, emit everything
 ======== ================================ ==================================================
 """
@@ -46,8 +46,8 @@ from buswitness.decode.lengths import REQUEST, RESPONSE
 #: How many later requests a timed-out transaction waits for a late answer before it is final.
 LATE_WINDOW = 4
 
-#: Damage kinds that mean "an answer was on the line but unusable".
-ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision"})
+#: Damage kinds that mean "an answer was on the line but unusable" when they follow a request.
+ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision", "stray_bytes", "line_error", "break"})
 
 #: Failed outcomes after which an identical request counts as a retry.
 FAILED = frozenset({"timeout", "late", "corrupt"})
@@ -122,7 +122,9 @@ class Pairing:
     def on_damage(self, damage: Damage) -> Damage:
         """Note damage while awaiting; return the event with the station it most likely concerns."""
         w = self.waiting
-        if w is not None and damage.kind in ANSWER_DAMAGE and damage.t_ns >= w.request.t_end_ns - 1:
+        # On the request's own port, stream order already says the damage came after it.
+        if w is not None and damage.kind in ANSWER_DAMAGE and (damage.port == w.request.port
+                                                                 or damage.t_ns >= w.request.t_end_lo_ns):
             if damage.station < 0:
                 damage = replace(damage, station=w.request.address)
             if w.damage is None:

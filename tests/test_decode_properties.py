@@ -3,7 +3,7 @@
 import os
 import time
 
-from hypothesis import given, settings, HealthCheck, strategies as st
+from hypothesis import HealthCheck, assume, given, settings, strategies as st
 
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, FLAG_LOST, Record, RecordBatch
 from buswitness.decode import Damage, Decoder, DecoderConfig, Frame, Transaction, append_crc
@@ -52,6 +52,10 @@ def test_random_chunkings_of_glued_vectors_give_the_same_frames(seq, cuts):
 @given(st.sampled_from(VECTORS), st.binary(max_size=40), st.binary(max_size=40), st.lists(st.integers(0, 10_000),
                                                                                          max_size=8))
 def test_vector_survives_noise_before_and_after_in_any_chunking(vector, before, after, cuts):
+    # A 0x00 right after a frame keeps its CRC valid (the CRC of 0x00 from a zero state is
+    # zero), so "frame + 00" is itself a frame when a rule allows that length: only timing
+    # could tell them apart, and this test has none.
+    assume(not after.startswith(b"\x00"))
     data = before + vector + after
     whole = frames_of([data])
     assert vector in whole
