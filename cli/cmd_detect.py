@@ -3,17 +3,76 @@
 from __future__ import annotations
 
 import argparse
+import sys
+from pathlib import Path
 
-from buswitness.errors import NotBuiltYet
+from buswitness.capture import detect
+from buswitness.cli.common import baud_arg, format_arg
+from buswitness.decode.timing import COMMON_BAUD_RATES
 
 HELP = "find a bus's baud rate and character format from its traffic"
 
+DESCRIPTION = """Listen to a port at each common baud rate and character format for a few seconds
+each (listen-only, as 'record') and rank the settings by the share of the traffic that reads
+as CRC-valid Modbus RTU frames without parity or framing marks; the character time seen in
+the read timestamps separates formats a receiver reads alike (8N1 and 8N2).
+
+Given a capture file instead, check the settings in its header against its contents."""
+
+
+def _list(kind):
+    def parse(text: str) -> list:
+        try:
+            return [kind(x) for x in text.replace(",", " ").split()]
+        except argparse.ArgumentTypeError as exc:
+            raise argparse.ArgumentTypeError(str(exc)) from None
+    return parse
+
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("detect", help=HELP + " [not built yet]", description=HELP.capitalize() + ".")
-    p.add_argument("rest", nargs=argparse.REMAINDER, help=argparse.SUPPRESS)
+    p = sub.add_parser("detect", help=HELP, description=DESCRIPTION,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("target", metavar="PORT|CAPTURE", help="serial device or pyserial URL, or a capture file")
+    p.add_argument("--seconds", type=float, default=3.0, help="listening time per setting (default 3)")
+    p.add_argument("--bauds", type=_list(baud_arg), default=None,
+                   help=f"baud rates to try, e.g. 9600,19200 (default: {','.join(map(str, COMMON_BAUD_RATES))})")
+    p.add_argument("--formats", type=_list(format_arg), default=None,
+                   help=f"formats to try (default: {','.join(detect.COMMON_FORMATS)})")
+    p.add_argument("--top", type=int, default=8, help="rows of the ranking to show (default 8)")
     p.set_defaults(run=run)
 
 
+def print_ranking(scores: list[detect.Score], top: int) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    table = Table(title="settings ranked by how well they read the traffic")
+    for col in ("#", "setting", "valid & unmarked", "in valid frames", "bytes", "marked", "timing"):
+        table.add_column(col, justify="right" if col not in ("setting", "timing") else "left")
+    for i, s in enumerate(scores[:top], 1):
+        timing = {True: "agrees", False: "disagrees", None: "-"}[s.timing]
+        if s.char_time_s is not None:
+            timing += f" ({s.char_time_s * s.setting.baud:.1f} bits/char)"
+        table.add_row(str(i), str(s.setting), f"{100 * s.value:.1f}%", f"{100 * s.explained:.1f}%", str(s.bytes),
+                      str(s.marked), timing)
+    Console(soft_wrap=True).print(table)
+
+
 def run(args: argparse.Namespace) -> int:
-    raise NotBuiltYet("'buswitness detect' is not built yet in this version; nothing was done")
+    from buswitness.capture.sources import open_capture
+
+    target = Path(args.target)
+    if "://" not in args.target and target.is_file():
+        source = open_capture(target)
+        check = detect.check_capture(source.header.serial, source.iter_batches())
+        print(check.describe())
+        return 0
+    bauds = args.bauds or list(COMMON_BAUD_RATES)
+    formats = args.formats or list(detect.COMMON_FORMATS)
+    trials = detect.candidates(bauds, formats)
+    print(f"listening on {args.target} at {len(trials)} settings, {args.seconds:g} s each "
+          f"(about {len(trials) * args.seconds:.0f} s; listen-only)", file=sys.stderr)
+    scores = detect.rank_settings(detect.port_sampler(args.target, args.seconds), trials)
+    print_ranking(scores, args.top)
+    print(detect.verdict(scores))
+    return 0
