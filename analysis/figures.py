@@ -35,6 +35,7 @@ FAILURES_PER_STATION = 25   #: first timeouts/corrupt answers kept per station a
 LATE_CAP = 5000             #: late answers listed per station (the count is exact beyond it)
 LARGEST_GAPS = 20           #: longest silences between frames kept
 DEVICE_IDS_PER_STATION = 4  #: distinct identification strings kept per station
+MIN_POLLS = 3               #: requests to a silent address before it is listed as a station
 
 _OUTCOME_INDEX = {name: i for i, name in enumerate(OUTCOMES)}
 _KIND_INDEX = {name: i for i, name in enumerate(EVENT_KINDS)}
@@ -103,6 +104,7 @@ class Accumulator:
     rt_min: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, np.inf))
     rt_max: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))
     ok_max: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest answer taken in time
+    in_time: np.ndarray = field(default_factory=lambda: np.zeros(FINE.count, np.int64))  #: bus-wide, ok + exception
     poll: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
     last_request_ns: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -1, np.int64))
     move_on: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
@@ -220,6 +222,7 @@ class Accumulator:
             np.fmax.at(self.rt_max, s, rt[timed])
             in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
             np.fmax.at(self.ok_max, station[in_time], rt[in_time])
+            self.in_time += np.bincount(FINE.index(rt[in_time]), minlength=FINE.count)
 
         self._poll_cycle(station, t_req)
         self._move_on(tx, station, outcome, t_req)
@@ -356,7 +359,7 @@ class Accumulator:
         if other.t0_ns != self.t0_ns:
             raise ValueError("accumulators of different capture starts cannot be merged")
         for name in ("outcomes", "retries", "exception_codes", "functions", "rt_mid", "rt_low", "rt_high",
-                     "halfwidth", "poll", "move_on", "move_on_sum_ms", "events", "gaps"):
+                     "halfwidth", "poll", "move_on", "move_on_sum_ms", "events", "gaps", "in_time"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
         self.rt_min = np.fmin(self.rt_min, other.rt_min)
         self.rt_max = np.fmax(self.rt_max, other.rt_max)
@@ -395,14 +398,21 @@ class Accumulator:
     # -- reading out -----------------------------------------------------------------------------
 
     def stations_seen(self) -> list[int]:
-        """Every address the master polled or a valid answer came from (broadcast address 0 excluded).
+        """Addresses that answered at least once or were polled at least MIN_POLLS times (0 excluded).
 
-        Damage attributed to an address nobody polls (a CRC failure whose first byte happens to
-        read 40) does not make a station of it.
+        Noise can read as a request to an address nobody uses; such stray addresses are listed
+        apart (``stray_addresses``) instead of as stations.
         """
-        answered_from = self.events[1:, _KIND_INDEX["unexpected_responder"]] + self.events[1:, _KIND_INDEX["orphan_response"]]
-        seen = np.flatnonzero(self.outcomes.sum(axis=1) + answered_from)
+        answered = self.outcomes[:, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late", "corrupt")]].sum(axis=1)
+        answered = answered + self.events[1:, _KIND_INDEX["unexpected_responder"]]
+        seen = np.flatnonzero((answered > 0) | (self.outcomes.sum(axis=1) >= MIN_POLLS))
         return [int(a) for a in seen if a != 0]
+
+    def stray_addresses(self) -> dict[int, int]:
+        """Addresses polled (or read from noise) too rarely to count as stations: address -> requests."""
+        seen = set(self.stations_seen())
+        polled = self.outcomes.sum(axis=1)
+        return {int(a): int(polled[a]) for a in np.flatnonzero(polled) if a != 0 and int(a) not in seen}
 
 
 def _q(counts: np.ndarray, q: float, bins: LogBins = FINE, vmin: float | None = None,

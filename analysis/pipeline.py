@@ -12,7 +12,6 @@ from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 from buswitness.analysis.exports import TableExporter, utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
@@ -121,8 +120,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         if exporter is not None:
             exporter.abort()
         raise
-    slowest = float(acc.ok_max.max()) if np.isfinite(acc.ok_max).any() else None
-    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, slowest)
+    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, acc.in_time)
     return build_result(header, paths or [], damage, acc, smap, timeout)
 
 

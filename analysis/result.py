@@ -91,6 +91,7 @@ class BusFigures:
     gap_ms: dict                 #: p50, p95, max of the silences between frames
     largest_gaps: list           #: [{"t_s", "gap_ms"}], longest first
     unknown_outcomes: int
+    stray_addresses: dict        #: address -> requests, for addresses too rarely polled to be stations (noise)
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -240,7 +241,7 @@ def _bus_figures(acc: Accumulator) -> BusFigures:
         gap_ms={"p50": None if g50 is None else round(g50, 3), "p95": None if g95 is None else round(g95, 3),
                 "max": round(gaps[0][0], 3) if gaps else None},
         largest_gaps=[{"t_s": round((t - acc.t0_ns) / 1e9, 3), "gap_ms": round(g, 3)} for g, t in gaps],
-        unknown_outcomes=acc.unknown_outcomes)
+        unknown_outcomes=acc.unknown_outcomes, stray_addresses=acc.stray_addresses())
 
 
 def build_result(header: CaptureHeader, paths: list, damage: ReadReport | None, acc: Accumulator,

@@ -29,6 +29,9 @@ ROUND_TOLERANCE = 0.10
 CLUSTER_RATIO = 1.15
 #: Silences a cluster needs to count as the master's timeout rather than a stray pause.
 CLUSTER_MIN = 3
+#: The slowest answers the master accepted, as a floor for its timeout: a high quantile rather
+#: than the maximum, so one mis-paired answer cannot lift the floor.
+SLOWEST_ACCEPTED_Q = 0.999
 
 
 @dataclass
@@ -53,15 +56,18 @@ def given_timeout(timeout_ms: float) -> TimeoutEstimate:
                            explanation=f"{timeout_ms:g} ms, given on the command line (--timeout)")
 
 
-def infer_timeout(move_on_hist: np.ndarray, slowest_accepted_ms: float | None = None) -> TimeoutEstimate:
+def infer_timeout(move_on_hist: np.ndarray, accepted_hist: np.ndarray | None = None) -> TimeoutEstimate:
     """Estimate the master's timeout from the histogram of silences after unanswered requests.
 
     ``move_on_hist`` is one row per station (as kept by the accumulator) or a single row;
-    ``slowest_accepted_ms`` the slowest answer the master took in time, a floor for the timeout.
+    ``accepted_hist`` the response times of answers the master took in time, whose high end
+    is a floor for the timeout.
     """
     counts = np.asarray(move_on_hist).reshape(-1, FINE.count).sum(axis=0).copy()
+    slowest_accepted_ms = None if accepted_hist is None else quantile(np.asarray(accepted_hist), SLOWEST_ACCEPTED_Q,
+                                                                        FINE)
     early = 0
-    if slowest_accepted_ms is not None and np.isfinite(slowest_accepted_ms):
+    if slowest_accepted_ms is not None:
         k = int(FINE.index(np.array([slowest_accepted_ms]))[0])
         early = int(counts[:k].sum())
         counts[:k] = 0
@@ -86,5 +92,6 @@ def infer_timeout(move_on_hist: np.ndarray, slowest_accepted_ms: float | None = 
             f"(median {p50:g} ms, 95th percentile {p95:g} ms); its timeout is about {estimate:g} ms")
     if early:
         text += (f" ({early} shorter silences, below the slowest answer the master accepted "
-                 f"({slowest_accepted_ms:.1f} ms), were left out: it gave up early there, e.g. on a damaged answer)")
+                 f"({slowest_accepted_ms:.1f} ms, 99.9th percentile), were left out: it gave up early there, e.g. on "
+                 f"a damaged answer)")
     return TimeoutEstimate(estimate, "inferred", n, p5, p50, p95, round_ms, text)

@@ -135,3 +135,18 @@ def test_late_answers_are_all_listed_with_their_frames():
 def test_empty_capture_gives_empty_figures():
     result = analyze_tables(header(), [])
     assert result.stations == [] and result.bus.frames == 0 and result.timeout.source == "not inferable"
+
+
+def test_timeout_inference_ignores_early_give_ups_and_one_odd_slow_answer():
+    move_on = np.bincount(FINE.index(np.array([20.0] * 10 + [204.0, 205.0, 206.0] * 4 + [700.0] * 30)),
+                          minlength=FINE.count)
+    accepted = np.bincount(FINE.index(np.array(list(np.linspace(5, 60, 5000)) + [248.0])), minlength=FINE.count)
+    t = infer_timeout(move_on, accepted)
+    assert t.timeout_ms == 200.0 and 203.0 <= t.silence_p5_ms <= 206.0
+    assert "10 shorter silences" in t.explanation
+
+
+def test_stray_addresses_from_noise_are_not_stations():
+    txs = [Tx(1.0 + i, 5, "ok", 9.0) for i in range(5)] + [Tx(10.0, 84, "timeout")]
+    result = analyze_tables(header(), [tables(txs)])
+    assert [s.address for s in result.stations] == [5] and result.bus.stray_addresses == {84: 1}
