@@ -57,6 +57,9 @@ class SimResult:
 
     def batches(self) -> Iterator[RecordBatch]:
         """The records ``record`` would have written, in time order, one batch per slice."""
+        return self._run(self.keep_tables)
+
+    def _run(self, keep_tables: bool) -> Iterator[RecordBatch]:
         sc = self.scenario
         seq = np.random.SeedSequence(self.seed)
         bus_rng, line_rng, adapter_rng = (np.random.default_rng(s) for s in seq.spawn(3))
@@ -64,7 +67,7 @@ class SimResult:
         bus = Bus(sc, bus_rng, t0, self.duration_s)
         schedule = PlainSchedule(bus) if is_plain(sc) else bus
         adapter = AdapterModel(sc.adapter, adapter_rng, t0)
-        truth = Truth(self._meta(), _station_names(sc), self.keep_tables)
+        truth = Truth(self._meta(), _station_names(sc), keep_tables)
         bursts = bus.bursts
         sniff = self.sniffer_serial
         matches = sniff == sc.serial and not self.sniffer.polarity_reversed
@@ -103,14 +106,19 @@ class SimResult:
                               f"(nothing was overwritten)")
         with CaptureWriter(capture_path, self.header, fsync_interval_s=3600.0, flush_interval_s=3600.0,
                            max_block_records=16384) as writer:
-            for batch in self.batches():
+            # without a truth file there is no need to hold the frame tables of a long run in memory
+            tables = self.keep_tables and truth_path is not None
+            for batch in self._run(tables):
                 writer.append_batch(batch)
                 records += len(batch)
                 data += int(batch.length.sum())
+        assert self._truth is not None
+        frames = self._truth.bus.get("frames", 0)
         if truth_path is not None:
-            self.truth.to_json(truth_path)
-        return {"records": records, "bytes": data, "seconds": time.perf_counter() - t_start,
-                "frames": self.truth.bus.get("frames", 0)}
+            self._truth.to_json(truth_path)
+        elif self.keep_tables:
+            self._truth = None  # its tables were not kept; asking for the truth runs it again, whole
+        return {"records": records, "bytes": data, "seconds": time.perf_counter() - t_start, "frames": frames}
 
     # -- helpers -----------------------------------------------------------------------------
     def _meta(self) -> dict:
