@@ -26,7 +26,9 @@ IDLE     damage                           -> IDLE
 AWAIT    request                          close the wait: ``corrupt`` if damage came,
                                           else ``timeout``; then as from IDLE
 AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past the
-                                          configured timeout) -> IDLE
+                                          configured timeout); ``corrupt`` plus a
+                                          ``collision`` event when a damaged frame from N
+                                          came first (two answers overlapped) -> IDLE
 AWAIT    other response                   a recent ``timeout`` matches: make it ``late``;
                                           same function: event ``unexpected_responder``;
                                           else ``orphan_response`` -> AWAIT(N)
@@ -202,6 +204,18 @@ class Pairing:
             req = w.request
             if rsp.address == req.address:
                 self.waiting = None
+                hit = w.damage
+                if hit is not None and hit.kind in ("crc_error", "truncated") and hit.raw[:1] == rsp.raw[:1]:
+                    # Two answers from "station N" to one request: they overlapped on the line, and
+                    # the master heard a collision, whatever came through intact afterwards.
+                    events.append(Damage("collision", rsp.port, hit.t_ns, hit.raw, rsp.address,
+                                         f"two answers from station {rsp.address} to one request overlapped "
+                                         f"(duplicate address?)"))
+                    self.slots.append(_Slot(Transaction(req.address, req.function, "corrupt", req.t_end_ns,
+                                                        req.raw, retry=self._retry_flag, response_raw=hit.raw),
+                                            True))
+                    self.last_failed = True
+                    return
                 gap = rsp.t_start_ns - req.t_end_ns
                 late = self.timeout_ns is not None and gap > self.timeout_ns
                 txn = self._answer(req, rsp, self._retry_flag, late)
