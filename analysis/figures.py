@@ -403,7 +403,7 @@ class Accumulator:
         Noise can read as a request to an address nobody uses; such stray addresses are listed
         apart (``stray_addresses``) instead of as stations.
         """
-        answered = self.outcomes[:, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late", "corrupt")]].sum(axis=1)
+        answered = self.outcomes[:, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late")]].sum(axis=1)
         answered = answered + self.events[1:, _KIND_INDEX["unexpected_responder"]]
         seen = np.flatnonzero((answered > 0) | (self.outcomes.sum(axis=1) >= MIN_POLLS))
         return [int(a) for a in seen if a != 0]

@@ -19,7 +19,7 @@ def test_demo_writes_capture_reports_and_the_late_stations_evidence(tmp_path, ca
     summary = json.loads((folder / "summary.json").read_text())
     drive_b = next(s for s in summary["stations"] if s["address"] == 7)
     assert drive_b["label"] == "Pump drive B (7)" and drive_b["late"] > 0
-    assert "the whole night is --duration 8h" in out
+    assert "so the dropout after 02:00 is not, or not wholly, in it" in out
     assert "Pump drive B (7)" in (folder / "evidence-station7.html").read_text()
 
 
