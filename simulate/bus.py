@@ -13,7 +13,9 @@ Rules of the model (also in ``docs/scenario-format.md``):
 - A station's state (silent, inside a noise burst) is taken at the time of the request.
 - The master waits ``timeout_ms`` after its request's last bit for an answer to *start*;
   an answer starting later is ``late`` and the master has moved on. A late answer stays on
-  the wire and may collide with whatever the master sends next.
+  the wire and may collide with whatever the master sends next; a late answer that is
+  damaged (noise, collision) leaves its transaction a ``timeout``: no valid answer at all.
+  ``corrupt`` is kept for a damaged answer that started within the timeout.
 - An answer with a silence inside it (``gap_rate``) is accepted by the master (tolerant
   masters are the common case); the silence is in the truth so the decoder can be checked.
 """
@@ -232,7 +234,7 @@ class Bus:
         return idx
 
     def _damage_late(self, frame: int) -> None:
-        """A late answer overlapped by a later frame: its transaction had no usable answer after all."""
+        """A late answer overlapped by a later frame: its transaction had no valid answer at all (a timeout)."""
         s = self.slice
         assert s is not None
         txn = s.f_txn[frame]
@@ -240,7 +242,7 @@ class Bus:
             return
         row = txn - s.x_id[0] if s.x_id else -1
         if 0 <= row < len(s.x_outcome) and s.x_outcome[row] == LATE and s.x_resp_frame[row] == frame:
-            s.x_outcome[row] = CORRUPT
+            s.x_outcome[row] = TIMEOUT
 
     def _prune(self) -> None:
         s = self.slice
@@ -303,7 +305,7 @@ class Bus:
                         exc_code = s.f_raw[fidx][2] if fc & 0x80 else 0
                         self.t = s.f_end[fidx]
                 else:
-                    outcome = CORRUPT if (s.f_noisy[fidx] or s.f_collided[fidx]) else LATE
+                    outcome = TIMEOUT if (s.f_noisy[fidx] or s.f_collided[fidx]) else LATE
             self.t += self.delay_ns
         s.x_outcome.append(outcome)
         s.x_exc.append(exc_code)

@@ -58,7 +58,8 @@ class Truth:
         self._txns_df: pd.DataFrame | None = None
         self.events = pd.DataFrame({c: [] for c in EVENT_COLUMNS})
         self._counts: dict[str, np.ndarray] = {k: np.zeros(256, np.int64) for k in
-                                               ("requests", "retries", "crc_errors", "collisions", "frames_sent")
+                                               ("requests", "requests_corrupted", "retries", "crc_errors", "collisions",
+                                                "frames_sent")
                                                + OUTCOMES}
         self._exc = np.zeros((256, 256), np.int64)
         self._rt: dict[int, list[np.ndarray]] = {}
@@ -122,12 +123,19 @@ class Truth:
             retry = np.asarray(ws.x_retry, dtype=bool)
             req_bad = np.asarray(ws.x_req_corrupt, dtype=bool)
             req_end = np.asarray(ws.x_req_end, dtype=np.int64)
-            rsp_start = np.asarray(ws.x_resp_start, dtype=np.int64)
+            # a timeout has no answer in the transaction view, even where a damaged late answer
+            # is on the wire (it stays in the frame table under this transaction's id)
+            no_answer = outc == OUTCOMES.index("timeout")
+            rsp_start = np.where(no_answer, -1, np.asarray(ws.x_resp_start, dtype=np.int64))
+            rsp_end = np.where(no_answer, -1, np.asarray(ws.x_resp_end, dtype=np.int64))
+            rsp_raw = [b"" if gone else r for gone, r in zip(no_answer.tolist(), ws.x_resp_raw)]
+            responder = np.where(no_answer, -1, np.asarray(ws.x_responder, dtype=np.int64))
             exc = np.asarray(ws.x_exc, dtype=np.int64)
             rt = np.where(rsp_start >= 0, (rsp_start - req_end) / 1e6, np.nan)
             station_tx = st != 0
             np.add.at(self._counts["requests"], st[station_tx], 1)
             np.add.at(self._counts["retries"], st[station_tx & retry], 1)
+            np.add.at(self._counts["requests_corrupted"], st[station_tx & req_bad], 1)
             for code, name in enumerate(OUTCOMES):
                 np.add.at(self._counts[name], st[outc == code], 1)
             is_exc = outc == OUTCOMES.index("exception")
@@ -140,15 +148,15 @@ class Truth:
                     "transaction": np.asarray(ws.x_id, dtype=np.int64),
                     "t_request_start_ns": np.asarray(ws.x_req_start, dtype=np.int64),
                     "t_request_end_ns": req_end, "t_response_start_ns": rsp_start,
-                    "t_response_end_ns": np.asarray(ws.x_resp_end, dtype=np.int64),
+                    "t_response_end_ns": rsp_end,
                     "station": st.astype(np.uint8), "function": np.asarray(ws.x_function, dtype=np.uint8),
                     "outcome": pd.Categorical.from_codes(outc, OUTCOMES),
                     "exception_code": exc.astype(np.uint8), "retry": retry,
                     "response_ms": rt, "response_ms_low": rt, "response_ms_high": rt,
                     "request_corrupted": req_bad,
                     "request_raw": pd.array(ws.x_req_raw, dtype=object),
-                    "response_raw": pd.array(ws.x_resp_raw, dtype=object),
-                    "responder": np.asarray(ws.x_responder, dtype=np.int64),
+                    "response_raw": pd.array(rsp_raw, dtype=object),
+                    "responder": responder,
                 }))
 
     def finish(self, events: pd.DataFrame, duration_s: float) -> None:
@@ -162,6 +170,7 @@ class Truth:
             self.stations[a] = {
                 "name": self._names[a],
                 "requests": int(c["requests"][a]),
+                "requests_corrupted": int(c["requests_corrupted"][a]),
                 "answered": int(c["ok"][a] + c["exception"][a]),
                 "ok": int(c["ok"][a]),
                 "timeouts": int(c["timeout"][a]),
