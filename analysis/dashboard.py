@@ -74,7 +74,7 @@ def charts(result: AnalysisResult) -> dict:
             widths = [b - a for a, b in zip(edges[:-1], edges[1:])]
             dist_traces.append({"type": "bar", "name": name, "x": centres, "y": counts, "width": widths,
                                 "marker": {"color": colour}, "opacity": 0.75, "visible": visible})
-        heat_y.append(name)
+        heat_y.append(name if len(s.label) <= 30 else _label(f"{s.label[:22]}… ({s.address})"))
         heat_z.append([a + b + c + d + e for a, b, c, d, e in zip(series["timeout"], series["late"],
                                                                   series["corrupt"], series["crc_errors"],
                                                                   series["collisions"])])
@@ -100,7 +100,7 @@ def charts(result: AnalysisResult) -> dict:
                                "colorscale": [[0, "#f4f1ea"], [0.001, "#f1d9a6"], [0.3, "#d08a2c"],
                                               [1, "#8c2f2b"]],
                                "colorbar": {"title": {"text": "per minute"}}, "hoverongaps": False}],
-                     "layout": {**base_layout, "margin": {"l": 160, "r": 20, "t": 10, "b": 45},
+                     "layout": {**base_layout, "margin": {"l": 190, "r": 20, "t": 10, "b": 45},
                                 "xaxis": {"title": {"text": x_title}}}},
         "events": {"data": event_traces, "layout": {**base_layout, "barmode": "stack",
                                                     "yaxis": {"title": {"text": "events per minute"}},

@@ -165,16 +165,17 @@ class AnalysisResult:
         return out
 
     def worst_transactions(self, per_station: int | None = None) -> list[dict]:
-        """Slowest answers and first failures of every station, in time order."""
-        rows: list[dict] = []
+        """Slowest answers of every station (slowest first), then each station's first failures (in time order)."""
+        slow: list[dict] = []
+        failed: list[dict] = []
         for st in sorted(set(self.acc.worst) | set(self.acc.failures)):
-            slow = sorted(self.acc.worst.get(st, []), key=lambda x: -x[0])[:per_station]
-            rows.extend(r for _, _, r in slow)
-            rows.extend(self.acc.failures.get(st, [])[:per_station])
+            slow.extend(r for _, _, r in sorted(self.acc.worst.get(st, []), key=lambda x: -x[0])[:per_station])
+            failed.extend(self.acc.failures.get(st, [])[:per_station])
+        rows = sorted(slow, key=lambda r: -(r["response_ms"] or 0.0)) + sorted(failed, key=lambda r: r["t_s"])
         for r in rows:
             r.setdefault("utc", self.utc_at(r["t_s"]))
             r["label"] = self.station_map.label(r["station"])
-        return sorted(rows, key=lambda r: r["t_s"])
+        return rows
 
     def late_answers(self, address: int) -> list[dict]:
         rows = self.acc.late_rows.get(address, [])
