@@ -183,11 +183,14 @@ class Truth:
                 "response_ms": _percentiles(rts),
             }
         busy = self._busy_ns / 1e9
+        # the last transaction may run a little past the requested duration
+        span = max(duration_s, ((self._t_last or 0) - int(self.meta.get("start_monotonic_ns", 0))) / 1e9)
         self.bus = {
             "duration_s": duration_s,
+            "span_s": span,
             "frames": self._n_frames,
             "bytes": self._n_bytes,
-            "utilisation": busy / duration_s if duration_s > 0 else 0.0,
+            "utilisation": busy / span if span > 0 else 0.0,
             "transactions": int(sum(int(c[o].sum()) for o in OUTCOMES)),
             "broadcasts": int(c["broadcast"].sum()),
             "stray_bytes": self._stray,
