@@ -102,8 +102,9 @@ def test_exception_station_answers_with_its_codes():
     assert tr.stations[2]["exceptions"]["total"] == len(exc)
 
 
-def test_clean_bus_has_no_fault_events_and_no_damage():
-    tr = truth_of("clean", 60)
+@pytest.mark.parametrize("name", ["clean", "saturated115200"])
+def test_fault_free_buses_have_no_fault_events_and_no_damage(name):
+    tr = truth_of(name, 30)
     assert tr.events.empty
     assert not tr.frames.corrupted.any()
     assert set(tr.transactions.outcome) <= {"ok", "broadcast"}
