@@ -10,8 +10,9 @@ from __future__ import annotations
 import math
 import threading
 from collections import deque
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Mapping
+from typing import Any
 
 #: Outcomes where the station gave a usable answer (docs/tables.md vocabulary).
 ANSWERED = frozenset({"ok", "exception", "late"})
@@ -138,12 +139,12 @@ class LiveDecoder:
         self.disabled_reason: str | None = None
 
     @classmethod
-    def create(cls, header: Any) -> "LiveDecoder | None":
+    def create(cls, header: Any) -> LiveDecoder | None:
         try:
-            from buswitness.decode import Decoder, DecoderConfig  # type: ignore[attr-defined]
             from buswitness.capture.fileformat import Record, RecordBatch
+            from buswitness.decode import Decoder, DecoderConfig  # type: ignore[attr-defined]
             decoder = Decoder(DecoderConfig.from_header(header))
-        except Exception:  # the decoder is optional for live views: any failure means "not available"
+        except Exception:  # noqa: BLE001 -- the decoder is optional for live views: any failure means "not available"
             return None
         return cls(decoder, RecordBatch, Record)
 
@@ -164,5 +165,15 @@ class LiveDecoder:
         try:
             out = self._decoder.feed_batch(self._batch_cls.from_records(pending))
             self.figures.add_output(out)
-        except Exception as exc:  # a decoder fault must never stop a recording
+        except Exception as exc:  # noqa: BLE001 -- a decoder fault must never stop a recording
+            self.disabled_reason = f"live station figures stopped ({type(exc).__name__}: {exc})"
+
+    def finish(self) -> None:
+        """End of input: decode what is left and close the last transactions."""
+        self.update()
+        if self.disabled_reason is not None:
+            return
+        try:
+            self.figures.add_output(self._decoder.flush())
+        except Exception as exc:  # noqa: BLE001 -- as in update: the live figures are a convenience
             self.disabled_reason = f"live station figures stopped ({type(exc).__name__}: {exc})"

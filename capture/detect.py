@@ -14,11 +14,10 @@ from __future__ import annotations
 
 import select
 import time
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
-from typing import Callable, Iterable, Sequence, Union
 
 import numpy as np
-
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, Record, RecordBatch
 from buswitness.decode.timing import COMMON_BAUD_RATES, SerialFormat
 
@@ -35,7 +34,7 @@ TIMING_TOLERANCE = 0.045
 #: Fewer busy read pairs than this and the character time is not estimated.
 MIN_TIMING_PAIRS = 5
 
-Sample = Union[bytes, bytearray, Iterable[Record], Iterable[RecordBatch]]
+Sample = bytes | bytearray | Iterable[Record] | Iterable[RecordBatch]
 
 
 @dataclass(frozen=True)
@@ -49,7 +48,7 @@ class Observation:
     lengths: np.ndarray  #: bytes each such read brought
 
     @classmethod
-    def of(cls, sample: Sample) -> "Observation":
+    def of(cls, sample: Sample) -> Observation:
         """Reduce bytes, records or batches (one port) to an observation."""
         if isinstance(sample, (bytes, bytearray, memoryview)):
             return cls(bytes(sample), 0, 0, np.zeros(0, np.int64), np.zeros(0, np.int64))

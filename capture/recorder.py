@@ -18,15 +18,19 @@ import shutil
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import serial
-
 from buswitness.capture import serialport
 from buswitness.capture.fileformat import (
-    FLAG_DISCONNECTED, FLAG_LOST, FLAG_REOPENED, CaptureHeader, CaptureWriter, PortInfo,
+    FLAG_DISCONNECTED,
+    FLAG_LOST,
+    FLAG_REOPENED,
+    CaptureHeader,
+    CaptureWriter,
+    PortInfo,
 )
 from buswitness.capture.parmrk import ParmrkParser
 from buswitness.decode.timing import SerialFormat
@@ -61,7 +65,7 @@ class RecorderConfig:
 
     devices: list[str]
     bus: SerialFormat
-    output: Path
+    output: Path | None  #: None: decode live only, keep nothing (``watch`` without ``-o``)
     rotate_bytes: int | None = None
     rotate_ns: int | None = None
     notes: str = ""
@@ -76,10 +80,32 @@ class RecorderConfig:
     extra: dict = field(default_factory=dict)
 
 
+class _NoFile:
+    """Stands in for the capture writer when nothing is to be kept: counts, stores nothing."""
+
+    def __init__(self, header: CaptureHeader) -> None:
+        self.header = header
+        self.parts: list[Path] = []
+        self.records_written = 0
+        self.bytes_written = 0
+        self.last_t_ns: int | None = None
+
+    def append(self, port: int, t_ns: int, data: bytes = b"", flags: int = 0) -> None:
+        self.records_written += 1
+        self.bytes_written += len(data)
+        self.last_t_ns = t_ns
+
+    def tick(self) -> None:
+        """Nothing to flush."""
+
+    def close(self) -> None:
+        """Nothing to close."""
+
+
 class _Reader(threading.Thread):
     """Reads one port and hands every chunk on with its read-return time; reopens after a loss."""
 
-    def __init__(self, rec: "Recorder", port_id: int, opened: serialport.OpenedPort) -> None:
+    def __init__(self, rec: Recorder, port_id: int, opened: serialport.OpenedPort) -> None:
         super().__init__(name=f"buswitness-reader-{port_id}", daemon=True)
         self.rec = rec
         self.port_id = port_id
@@ -260,14 +286,10 @@ class Recorder:
         extra["opened_format"] = {p.device: p.opened_format.short_form for p in opened}
         extra["listen_only"] = True
         header = CaptureHeader.new(self.cfg.bus, infos, notes=self.cfg.notes, source="record", extra=extra)
-        try:
-            self.writer = CaptureWriter(self.cfg.output, header, rotate_bytes=self.cfg.rotate_bytes,
-                                        rotate_ns=self.cfg.rotate_ns, flush_interval_s=self.cfg.flush_interval_s,
-                                        fsync_interval_s=self.cfg.fsync_interval_s, overwrite=self.cfg.overwrite)
-        except OutputError:
-            for p in opened:
-                p.close()
-            raise
+        if self.cfg.output is None:
+            self.writer = _NoFile(header)  # type: ignore[assignment]
+        else:
+            self._create_file(header, opened)
         self.start_ns = header.start_monotonic_ns
         self._parsers = [ParmrkParser() if p.parmrk else None for p in opened]
         self._watch_current_part()
@@ -280,6 +302,17 @@ class Recorder:
             reader = _Reader(self, i, p)
             self._readers.append(reader)
             reader.start()
+
+    def _create_file(self, header: CaptureHeader, opened: list[serialport.OpenedPort]) -> None:
+        assert self.cfg.output is not None
+        try:
+            self.writer = CaptureWriter(self.cfg.output, header, rotate_bytes=self.cfg.rotate_bytes,
+                                        rotate_ns=self.cfg.rotate_ns, flush_interval_s=self.cfg.flush_interval_s,
+                                        fsync_interval_s=self.cfg.fsync_interval_s, overwrite=self.cfg.overwrite)
+        except OutputError:
+            for p in opened:
+                p.close()
+            raise
 
     def stop(self) -> None:
         """Ask every thread to finish; the writer drains the queue and closes the file."""

@@ -19,10 +19,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import serial
-from serial.tools import list_ports
-
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import DeviceError
+from serial.tools import list_ports
 
 try:
     import termios

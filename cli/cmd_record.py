@@ -7,14 +7,18 @@ import re
 import signal
 import sys
 import time
+from collections.abc import Callable
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Callable
+from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.common import add_serial_options, duration_s, serial_from_args, size_bytes
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import UsageError
+
+if TYPE_CHECKING:
+    from buswitness.analysis.rolling import LiveDecoder
 
 HELP = "record a bus to a capture file through a serial adapter (listen-only)"
 
@@ -146,13 +150,40 @@ def run_recorder(rec: Recorder, seconds: float | None, refresh: Callable[[], Non
             signal.signal(sig, handler)
 
 
+class LiveFigures:
+    """The optional live decoder of a recording, created on the first record (the header exists by then)."""
+
+    def __init__(self, rec: Recorder) -> None:
+        self.rec = rec
+        self.decoder: LiveDecoder | None = None
+        self.tried = False
+
+    def tap(self, port: int, t_ns: int, data: bytes, flags: int) -> None:
+        """Recorder tap (writer thread): queue each record for the decoder."""
+        if not self.tried and self.rec.writer is not None:
+            from buswitness.analysis.rolling import LiveDecoder
+
+            self.tried = True
+            self.decoder = LiveDecoder.create(self.rec.writer.header)
+        if self.decoder is not None:
+            self.decoder.add(port, t_ns, data, flags)
+
+    def update(self) -> None:
+        if self.decoder is not None:
+            self.decoder.update()
+
+    def finish(self) -> None:
+        if self.decoder is not None:
+            self.decoder.finish()
+
+
 def summary(rec: Recorder) -> str:
     """What was recorded, per port, for the last lines printed."""
     w = rec.writer
     elapsed = (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
     lines = []
     if w is not None:
-        parts = ", ".join(str(p) for p in w.parts)
+        parts = ", ".join(str(p) for p in w.parts) or "no file (nothing kept; -o records)"
         lines.append(f"recorded {w.bytes_written} bytes in {w.records_written} records over "
                      f"{_hms(elapsed)} into {parts}")
     for s in rec.stats:
@@ -203,34 +234,24 @@ def run(args: argparse.Namespace) -> int:
     from rich.console import Console
     from rich.live import Live
 
-    from buswitness.analysis.rolling import LiveDecoder
-
     cfg = config_from_args(args, args.ports)
     console = Console(stderr=True)
     show_status = not args.quiet and sys.stderr.isatty()
-    live_holder: dict[str, LiveDecoder | None] = {"dec": None}
 
     def message(text: str) -> None:
         console.print(text, markup=False, highlight=False, soft_wrap=True)
 
-    def tap(port: int, t_ns: int, data: bytes, flags: int) -> None:
-        dec = live_holder["dec"]
-        if dec is not None:
-            dec.add(port, t_ns, data, flags)
-
-    rec = Recorder(cfg, on_message=message, tap=tap if show_status else None)
+    rec = Recorder(cfg, on_message=message)
+    figures = LiveFigures(rec)
+    if show_status:
+        rec.tap = figures.tap
     seconds = stop_after(args)
     if show_status:
         live = Live(console=console, refresh_per_second=2, transient=True)
 
         def refresh() -> None:
-            if live_holder["dec"] is None and rec.writer is not None and "tried" not in live_holder:
-                live_holder["tried"] = None  # type: ignore[assignment]
-                live_holder["dec"] = LiveDecoder.create(rec.writer.header)
-            dec = live_holder["dec"]
-            if dec is not None:
-                dec.update()
-            live.update(status_renderable(rec, dec))
+            figures.update()
+            live.update(status_renderable(rec, figures.decoder))
 
         with live:
             try:

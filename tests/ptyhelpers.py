@@ -140,7 +140,7 @@ class PtyAdapter:
                 self.proc.kill()
                 self.proc.wait()
 
-    def __enter__(self) -> "PtyAdapter":
+    def __enter__(self) -> PtyAdapter:
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -12,7 +12,6 @@ import time
 
 import pytest
 import serial
-
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR
 from buswitness.capture.parmrk import ParmrkParser
 from buswitness.capture.serialport import enable_error_marking, is_pty

@@ -14,10 +14,11 @@ import time
 from pathlib import Path
 
 import numpy as np
-import pytest
-
 from buswitness.capture.fileformat import (
-    FLAG_DISCONNECTED, FLAG_REOPENED, CaptureReader, read_header,
+    FLAG_DISCONNECTED,
+    FLAG_REOPENED,
+    CaptureReader,
+    read_header,
 )
 from ptyhelpers import PtyAdapter, sample_bytes
 
@@ -177,7 +178,7 @@ def test_kill_9_loses_at_most_about_the_last_second(tmp_path):
         proc.kill()
         proc.wait(timeout=10)
         adapter.wait_sent()
-    data, times, reader = captured(out)
+    data, times, _ = captured(out)
     assert payload.startswith(data) and len(data) > 0
     # Blocks are written and fsynced every second; allow scheduling slack on a loaded 2-core machine.
     # CLOCK_MONOTONIC is one clock for every process, so the file's times compare with t_kill.

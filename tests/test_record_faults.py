@@ -12,7 +12,6 @@ import time
 from pathlib import Path
 
 import pytest
-
 from buswitness.capture import serialport
 from buswitness.capture.fileformat import FLAG_LOST, CaptureReader
 from buswitness.capture.recorder import Recorder, RecorderConfig
@@ -91,7 +90,7 @@ def test_output_directory_removed_mid_capture_is_reported_and_the_data_rescued(t
 
 def test_missing_port_exits_4_and_lists_the_ports_seen(tmp_path):
     out = subprocess.run([sys.executable, "-m", "buswitness.cli.main", "record", str(tmp_path / "ttyNONE"),
-                          "-o", str(tmp_path / "x.bwcap")], capture_output=True, text=True, timeout=60)
+                          "-o", str(tmp_path / "x.bwcap")], capture_output=True, text=True, check=False, timeout=60)
     assert out.returncode == 4
     assert "no such serial port" in out.stderr and "Serial ports seen now:" in out.stderr
     assert not (tmp_path / "x.bwcap").exists()
@@ -108,7 +107,7 @@ def test_existing_output_is_never_overwritten(tmp_path):
     out.write_bytes(b"keep me")
     with PtyAdapter(tmp_path / "ttyO") as adapter:
         res = subprocess.run([sys.executable, "-m", "buswitness.cli.main", "record", str(adapter.link),
-                              "-o", str(out), "--quiet"], capture_output=True, text=True, timeout=60)
+                              "-o", str(out), "--quiet"], capture_output=True, text=True, check=False, timeout=60)
     assert res.returncode == 3 and "already exists" in res.stderr
     assert out.read_bytes() == b"keep me"
 
