@@ -82,3 +82,27 @@ def test_bytes_of_a_packet_still_open_at_a_slice_cut_wait_for_the_next_slice():
     assert len(first) == 0
     assert second.length.tolist() == [3]
     assert second.t_ns.tolist() == [16 * MS]
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_records_never_precede_their_last_byte_and_wait_at_most_one_timer_period(seed):
+    rng = np.random.default_rng(seed)
+    # bursts of back-to-back bytes at 115200 8N1 with idle gaps between them, cut into three slices
+    gaps = rng.choice([86_806, 86_806, 86_806, 30 * MS], size=3000)
+    arrival = np.cumsum(gaps).astype(np.int64)
+    cfg = Adapter(latency_ms=16, host_delay_ms=0.2, host_delay_tail_rate=0.01, host_delay_tail_ms=4.0)
+    model = AdapterModel(cfg, np.random.default_rng(seed), 0)
+    cuts = [int(arrival[1000]) + 1, int(arrival[2000]) + 1, None]
+    batches, lo = [], 0
+    for cut in cuts:
+        hi = len(arrival) if cut is None else int(np.searchsorted(arrival, cut))
+        batches.append(model.feed(arrival[lo:hi], np.zeros(hi - lo, np.uint8), np.zeros(hi - lo, np.uint8), cut))
+        lo = hi
+    t = np.concatenate([b.t_ns for b in batches])
+    n = np.concatenate([b.length for b in batches])
+    last = arrival[np.cumsum(n) - 1]
+    assert n.sum() == len(arrival)
+    assert (n <= 62).all()
+    assert (t >= last).all()
+    assert (t - last <= 16 * MS + 0.2 * MS * 20 + 6 * MS).all()
+    assert (np.diff(t) >= 0).all()
