@@ -5,8 +5,9 @@ The helper process creates a pseudo-terminal, points a symlink at its slave end 
 
 * ``send FILE BAUD CHUNK``: write FILE's bytes to the master end, CHUNK bytes at a time, at
   the pace of BAUD baud 8N1 (10 bits a character), then answer ``done T_START T_END`` (monotonic ns);
-* ``replug``: close the pty (the device goes away), remove the symlink, wait, make a new pty
-  and re-point the symlink (the device comes back), answer ``done``;
+* ``replug [NEWLINK]``: close the pty (the device goes away), remove the symlink, wait, make a
+  new pty and point the symlink (or a new one, as when an adapter comes back under another
+  name) at it (the device comes back), answer ``done``;
 * ``quit``.
 
 Run directly (``python ptyhelpers.py LINK``) it is the helper; tests use :class:`PtyAdapter`.
@@ -64,6 +65,8 @@ def helper_main(link: Path) -> None:
             os.close(master)
             os.close(slave)
             link.unlink()
+            if len(cmd) > 1:
+                link = Path(cmd[1])
             time.sleep(1.2)
             master, slave = _make_pty(link)
             print("done", flush=True)
@@ -116,9 +119,13 @@ class PtyAdapter:
         answer = self.proc.stdout.readline().split()
         return int(answer[1]), int(answer[2])
 
-    def replug(self) -> None:
+    def replug(self, new_link: Path | None = None) -> None:
         """Make the device vanish (the pty closes, the path disappears) and come back as a new pty."""
-        self._command("replug")
+        if new_link is None:
+            self._command("replug")
+        else:
+            self._command(f"replug {new_link}")
+            self.link = Path(new_link)
 
     def kill(self) -> None:
         """Stop the helper at once (e.g. when it is blocked writing to a pty nobody reads any more)."""
