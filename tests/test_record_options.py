@@ -9,14 +9,13 @@ import time
 from datetime import datetime
 
 import pytest
-from rich.console import Console
-
 from buswitness.capture import serialport
 from buswitness.capture.fileformat import FLAG_REOPENED, CaptureReader
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.cmd_record import rotate_arg, seconds_until, status_renderable, until_arg
 from buswitness.decode.timing import SerialFormat
 from ptyhelpers import PtyAdapter, sample_bytes
+from rich.console import Console
 
 
 def test_until_is_the_next_time_the_clock_shows_it():
