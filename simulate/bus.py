@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from buswitness.simulate.pdus import exception_frame, request_frame, response_data_length, response_frame
-from buswitness.simulate.scenario import Scenario, Station
+from buswitness.simulate.scenario import Event, Scenario, Station
 
 MASTER = -1
 
@@ -116,9 +116,9 @@ class WireSlice:
         return len(self.f_start)
 
 
-def expand_windows(sc: Scenario, kind: str, duration_s: float, t0_ns: int) -> list[tuple[int, int, object]]:
+def expand_windows(sc: Scenario, kind: str, duration_s: float, t0_ns: int) -> list[tuple[int, int, Event]]:
     """The (start_ns, end_ns, event) windows of one event kind inside the run, repeats expanded."""
-    out: list[tuple[int, int, object]] = []
+    out: list[tuple[int, int, Event]] = []
     for ev in sc.events:
         if ev.kind != kind:
             continue
@@ -158,8 +158,8 @@ class Bus:
         self.ber = [sc.station_ber(st) for st in sc.stations]
         self.silent: dict[int, list[tuple[int, int]]] = {}
         for a, b, ev in expand_windows(sc, "silent", duration_s, t0_ns):
-            self.silent.setdefault(ev.station, []).append((a, b))  # type: ignore[attr-defined]
-        self.bursts = [(a, b, ev.bit_error_rate) for a, b, ev in  # type: ignore[attr-defined]
+            self.silent.setdefault(int(ev.station or 0), []).append((a, b))
+        self.bursts = [(a, b, ev.bit_error_rate) for a, b, ev in
                        expand_windows(sc, "noise_burst", duration_s, t0_ns)]
         self.burst_starts = [w[0] for w in self.bursts]
         # master state

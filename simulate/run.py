@@ -145,11 +145,11 @@ class SimResult:
         rows: list[tuple[int, int, str, int, str]] = []
         names = _station_names(sc)
         for a, b, ev in expand_windows(sc, "silent", self.duration_s, t0):
-            rows.append((a, b, "silent", ev.station,  # type: ignore[attr-defined]
-                         ev.detail or f"{names.get(ev.station, '?')} does not answer"))  # type: ignore
+            station = int(ev.station or 0)
+            rows.append((a, b, "silent", station, ev.detail or f"{names.get(station, '?')} does not answer"))
         for a, b, ev in expand_windows(sc, "noise_burst", self.duration_s, t0):
-            rows.append((a, b, "noise_burst", -1, (ev.detail or "noise burst on the line") +  # type: ignore
-                         f" (bit-error rate {ev.bit_error_rate:g})"))  # type: ignore[attr-defined]
+            rows.append((a, b, "noise_burst", -1,
+                         f"{ev.detail or 'noise burst on the line'} (bit-error rate {ev.bit_error_rate:g})"))
         present: dict[int, int] = {}
         t35_ms = sc.serial.t35_s * 1e3
         for st in sc.stations:
