@@ -43,9 +43,26 @@ _DAMAGE_KINDS = ("crc_error", "truncated", "stray_bytes", "collision", "line_err
 
 
 def _codes(values: pd.Series, vocabulary: tuple[str, ...], fallback: int) -> np.ndarray:
-    codes = pd.Categorical(values.astype(str), categories=list(vocabulary)).codes.astype(np.int64)
-    codes[codes < 0] = fallback
-    return codes
+    """Index of each value in ``vocabulary`` (``fallback`` for anything else), fast for categoricals."""
+    index = {name: i for i, name in enumerate(vocabulary)}
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        lookup = np.array([index.get(str(c), fallback) for c in values.cat.categories] + [fallback], np.int64)
+        return lookup[values.cat.codes.to_numpy(np.int64)]  # code -1 (missing) takes the last entry
+    uniques, inverse = np.unique(values.to_numpy(dtype=object).astype(str), return_inverse=True)
+    lookup = np.array([index.get(u, fallback) for u in uniques.tolist()], np.int64)
+    return lookup[inverse.reshape(-1)]
+
+
+def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray) -> None:
+    """Count ``values_ms`` into the rows ``station`` of a (station, FINE bin) histogram."""
+    stations, compact = np.unique(station, return_inverse=True)
+    counts = np.bincount(compact.reshape(-1) * FINE.count + FINE.index(values_ms),
+                         minlength=len(stations) * FINE.count).reshape(len(stations), FINE.count)
+    target[stations] += counts
+
+
+def _minute_sum(minute: np.ndarray, n_min: int, weights: np.ndarray | None = None) -> np.ndarray:
+    return np.bincount(minute, weights=weights, minlength=n_min)[:n_min]
 
 
 class _Growing:
@@ -154,14 +171,16 @@ class Accumulator:
         self._span(t_end)
         self.frames += len(frames)
         self.frame_bytes += int(length.sum())
-        self.response_frames += int((frames["direction"].astype(str) == "response").sum())
+        self.response_frames += int((_codes(frames["direction"], ("response",), -1) == 0).sum())
         busy = length * self.char_ns
         self.busy_ns += float(busy.sum())
         minute = self._minute(t_start)
-        data = self.bus_minutes.ensure(int(minute.max()) + 1)
-        np.add.at(data[:, 0], minute, busy / 1e6)
-        np.add.at(data[:, 1], minute, 1)
-        np.add.at(data[:, 2], minute, length)
+        m0, n_min = int(minute.min()), int(minute.max()) + 1
+        data = self.bus_minutes.ensure(n_min)
+        rel = minute - m0
+        data[m0:n_min, 0] += _minute_sum(rel, n_min - m0, busy / 1e6)
+        data[m0:n_min, 1] += _minute_sum(rel, n_min - m0)
+        data[m0:n_min, 2] += _minute_sum(rel, n_min - m0, length.astype(np.float64))
         order = np.argsort(t_start, kind="stable")
         starts, ends = t_start[order], t_end[order]
         prev_end = np.concatenate(([self._last_frame_end_ns if self._last_frame_end_ns is not None else starts[0]],
@@ -187,7 +206,8 @@ class Accumulator:
         """Outcomes, response times, poll cycle, master move-on gaps, example lists."""
         if tx.empty:
             return
-        tx = tx.sort_values("t_request_end_ns", kind="stable")
+        if not tx["t_request_end_ns"].is_monotonic_increasing:
+            tx = tx.sort_values("t_request_end_ns", kind="stable")
         t_req = tx["t_request_end_ns"].to_numpy(np.int64)
         self._span(t_req)
         station = tx["station"].to_numpy(np.int64)
@@ -213,11 +233,8 @@ class Accumulator:
             s = station[timed]
             for hist, values in ((self.rt_mid, rt), (self.rt_low, np.where(np.isfinite(lo), lo, rt)),
                                  (self.rt_high, np.where(np.isfinite(hi), hi, rt))):
-                hist += np.bincount(s * FINE.count + FINE.index(values[timed]),
-                                    minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
-            half = np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed]
-            self.halfwidth += np.bincount(s * FINE.count + FINE.index(half),
-                                          minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+                _add_hist(hist, s, values[timed])
+            _add_hist(self.halfwidth, s, np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed])
             np.fmin.at(self.rt_min, s, rt[timed])
             np.fmax.at(self.rt_max, s, rt[timed])
             in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
@@ -238,16 +255,22 @@ class Accumulator:
         valid &= s != 0
         if valid.any():
             d_ms = (t[valid] - prev[valid]) / 1e6
-            self.poll += np.bincount(s[valid] * FINE.count + FINE.index(np.maximum(d_ms, 0)),
-                                     minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+            _add_hist(self.poll, s[valid], np.maximum(d_ms, 0))
         last = np.concatenate((s[1:] != s[:-1], [True]))
         self.last_request_ns[s[last]] = t[last]
 
     def _move_on(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, t_req: np.ndarray) -> None:
         """Silence after an unanswered request until the master's next request: its timeout at work."""
-        req_len = tx["request_raw"].map(len).to_numpy(np.int64)
-        next_start = t_req - (req_len * self.char_ns).astype(np.int64)
         timeout = outcome == _OUTCOME_INDEX["timeout"]
+        if self._pending_timeout is None and not timeout.any():
+            return
+        need = np.zeros(len(tx), bool)
+        need[0] = True
+        need[1:] = timeout[:-1]
+        req_len = np.zeros(len(tx), np.int64)
+        raw = tx["request_raw"].to_numpy(dtype=object)
+        req_len[need] = [len(r) for r in raw[need]]
+        next_start = t_req - (req_len * self.char_ns).astype(np.int64)
         if self._pending_timeout is not None:
             st, t_end = self._pending_timeout
             self._add_move_on(np.array([st]), np.array([(next_start[0] - t_end) / 1e6]))
@@ -260,42 +283,56 @@ class Accumulator:
 
     def _add_move_on(self, station: np.ndarray, gap_ms: np.ndarray) -> None:
         gap_ms = np.maximum(gap_ms, 0.0)
-        self.move_on += np.bincount(station * FINE.count + FINE.index(gap_ms),
-                                    minlength=N_ADDR * FINE.count).reshape(N_ADDR, FINE.count)
+        _add_hist(self.move_on, station, gap_ms)
         np.add.at(self.move_on_sum_ms, station, gap_ms)
 
     def _station_minutes(self, station: np.ndarray, outcome: np.ndarray, retry: np.ndarray, rt: np.ndarray,
                          timed: np.ndarray, t_req: np.ndarray) -> None:
         minute = self._minute(t_req)
+        m0 = int(minute.min())
         n_min = int(minute.max()) + 1
-        for st in np.unique(station):
-            sel = station == st
-            m = minute[sel]
-            series = self.station_minutes.setdefault(int(st), _Growing(len(MINUTE_COLUMNS)))
-            data = series.ensure(n_min)
-            np.add.at(data[:, 0], m, 1)
-            for col, name in enumerate(("ok", "exception", "timeout", "late", "corrupt"), start=1):
-                np.add.at(data[:, col], m[outcome[sel] == _OUTCOME_INDEX[name]], 1)
-            np.add.at(data[:, 6], m[retry[sel]], 1)
-            tsel = sel & timed
+        rel = minute - m0
+        n_rel = n_min - m0
+        stations, compact = np.unique(station, return_inverse=True)
+        compact = compact.reshape(-1)
+        # one bincount over (station, minute, column) for every count column at once
+        n_col = len(MINUTE_COLUMNS)
+        col_of_outcome = np.full(len(OUTCOMES) + 1, -1, np.int64)
+        for col, name in enumerate(("ok", "exception", "timeout", "late", "corrupt"), start=1):
+            col_of_outcome[_OUTCOME_INDEX[name]] = col
+        size = len(stations) * n_rel * n_col
+        key = (compact * n_rel + rel) * n_col
+        oc = col_of_outcome[outcome]
+        counts = (np.bincount(key, minlength=size) + np.bincount(key[oc >= 0] + oc[oc >= 0], minlength=size)
+                  + np.bincount(key[retry] + 6, minlength=size)).reshape(len(stations), n_rel, n_col)
+        rt_bin = COARSE.index(np.where(timed, rt, 1.0))
+        for j, st in enumerate(stations.tolist()):
+            data = self.station_minutes.setdefault(st, _Growing(n_col)).ensure(n_min)
+            data[m0:n_min] += counts[j]
+            tsel = timed & (compact == j)
             if tsel.any():
-                hist = self.station_minute_rt.setdefault(int(st), _Growing(COARSE.count)).ensure(n_min)
-                np.add.at(hist, (minute[tsel], COARSE.index(rt[tsel])), 1)
-                mx = self.station_minute_max.setdefault(int(st), _Growing(1, np.float64, np.nan)).ensure(n_min)
+                hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count)).ensure(n_min)
+                hist[m0:n_min] += np.bincount(rel[tsel] * COARSE.count + rt_bin[tsel],
+                                              minlength=n_rel * COARSE.count).reshape(n_rel, COARSE.count)
+                mx = self.station_minute_max.setdefault(st, _Growing(1, np.float64, np.nan)).ensure(n_min)
                 np.fmax.at(mx[:, 0], minute[tsel], rt[tsel])
 
     def _examples(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, rt: np.ndarray,
                   timed: np.ndarray, t_req: np.ndarray) -> None:
         cols = ("t_request_end_ns", "station", "function", "outcome", "response_ms", "response_ms_low",
                 "response_ms_high", "exception_code", "retry", "request_raw", "response_raw")
+        arrays: dict = {}
 
         def row(i: int) -> dict:
-            return tx_row(self.t0_ns, *(tx[c].iat[i] for c in cols))
+            if not arrays:
+                arrays.update({c: tx[c].to_numpy(dtype=object) for c in cols})
+            return tx_row(self.t0_ns, *(arrays[c][i] for c in cols))
 
         for st in np.unique(station[timed]):
-            idx = np.flatnonzero(timed & (station == st))
-            top = idx[np.argsort(rt[idx])[-WORST_PER_STATION:]]
             heap = self.worst.setdefault(int(st), [])
+            floor = heap[0][0] if len(heap) >= WORST_PER_STATION else -np.inf
+            idx = np.flatnonzero(timed & (station == st) & (rt > floor))
+            top = idx[np.argsort(rt[idx])[-WORST_PER_STATION:]]
             for i in top:
                 self._seq += 1
                 item = (float(rt[i]), self._seq, row(int(i)))
@@ -322,7 +359,7 @@ class Accumulator:
             known = self.device_ids.setdefault(st, [])
             if len(known) >= DEVICE_IDS_PER_STATION:
                 continue
-            text = device_id_text(bytes(tx["response_raw"].iat[i]))
+            text = device_id_text(bytes(tx["response_raw"].iat[int(i)]))
             if text and text not in known:
                 known.append(text)
 
