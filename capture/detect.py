@@ -281,13 +281,18 @@ class FileCheck:
         return "\n".join(lines)
 
 
-def check_capture(setting: SerialFormat, batches: Iterable[RecordBatch], max_bytes: int = 2 << 20) -> FileCheck:
-    """Check a capture (its first ``max_bytes`` of data) against the settings in its header."""
-    taken: list[RecordBatch] = []
+def check_capture(setting: SerialFormat, batches: Iterable[RecordBatch], max_bytes: int = 2 << 20,
+                  port: int = 0) -> FileCheck:
+    """Check one port of a capture (its first ``max_bytes`` of data) against the settings in its header."""
+    taken: list[Record] = []
     total = 0
     for b in batches:
-        taken.append(b)
-        total += int(b.length.sum())
+        if not np.any(b.port == port):
+            continue
+        for r in b.records():
+            if r.port == port:
+                taken.append(r)
+                total += len(r.data)
         if total >= max_bytes:
             break
     score = score_observation(setting, Observation.of(taken))

@@ -64,8 +64,11 @@ def run(args: argparse.Namespace) -> int:
     target = Path(args.target)
     if "://" not in args.target and target.is_file():
         source = open_capture(target)
-        check = detect.check_capture(source.header.serial, source.iter_batches())
-        print(check.describe())
+        for info in source.header.ports:
+            if len(source.header.ports) > 1:
+                print(f"port {info.id} ({info.name}):")
+            check = detect.check_capture(source.header.serial, source.iter_batches(), port=info.id)
+            print(check.describe())
         return 0
     bauds = args.bauds or list(COMMON_BAUD_RATES)
     formats = args.formats or list(detect.COMMON_FORMATS)

@@ -79,6 +79,7 @@ def test_every_byte_written_is_captured_in_order_with_monotonic_times(tmp_path):
     assert header.ports[0].line_errors is False
     assert "line errors are not observable" in err
     assert "recorded 20000 bytes" in err
+    assert out.stat().st_mode & 0o077 == 0  # user-only: a capture may hold process data (issue 9 §5)
 
 
 def test_two_ports_share_one_capture_with_records_tagged_per_port(tmp_path):
