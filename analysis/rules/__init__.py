@@ -1,0 +1,1 @@
+"""The findings rules, one module per family; ``buswitness.analysis.findings`` runs them all."""
