@@ -51,7 +51,7 @@ def charts(result: AnalysisResult) -> dict:
     base_layout = {"margin": {"l": 60, "r": 20, "t": 10, "b": 45}, "paper_bgcolor": "rgba(0,0,0,0)",
                    "plot_bgcolor": "#fbfaf7", "font": {"family": "system-ui, sans-serif", "size": 12,
                                                        "color": "#27323a"},
-                   "legend": {"orientation": "h", "y": -0.25}, "hovermode": "closest"}
+                   "legend": {"orientation": "h", "x": 0, "y": 1.02, "yanchor": "bottom"}, "hovermode": "closest"}
     rt_traces, dist_traces, heat_z, heat_y = [], [], [], []
     for i, s in enumerate(result.stations):
         colour = STATION_COLOURS[i % len(STATION_COLOURS)]
@@ -89,7 +89,7 @@ def charts(result: AnalysisResult) -> dict:
     return {
         "rt": {"data": rt_traces, "layout": {**base_layout, "yaxis": {"title": {"text": "response time (ms)"},
                                                                         "rangemode": "tozero"},
-                                             "xaxis": {"title": {"text": x_title}}, "shapes": shapes}},
+                                             "xaxis": {"title": {"text": x_title, "standoff": 4}}, "shapes": shapes}},
         "dist": {"data": dist_traces, "layout": {**base_layout, "barmode": "overlay",
                                                  "xaxis": {"type": "log", "title": {"text": "response time (ms)"}},
                                                  "yaxis": {"title": {"text": "answers"}},
@@ -101,15 +101,15 @@ def charts(result: AnalysisResult) -> dict:
                                               [1, "#8c2f2b"]],
                                "colorbar": {"title": {"text": "per minute"}}, "hoverongaps": False}],
                      "layout": {**base_layout, "margin": {"l": 190, "r": 20, "t": 10, "b": 45},
-                                "xaxis": {"title": {"text": x_title}}}},
+                                "xaxis": {"title": {"text": x_title, "standoff": 4}}}},
         "events": {"data": event_traces, "layout": {**base_layout, "barmode": "stack",
                                                     "yaxis": {"title": {"text": "events per minute"}},
-                                                    "xaxis": {"title": {"text": x_title}}}},
+                                                    "xaxis": {"title": {"text": x_title, "standoff": 4}}}},
         "util": {"data": [{"type": "scatter", "mode": "lines", "name": "line busy", "x": x,
                            "y": [round(100 * u, 3) for u in bus["utilisation"]], "fill": "tozeroy",
                            "line": {"color": "#2f6f8f"}}],
                  "layout": {**base_layout, "yaxis": {"title": {"text": "line busy (%)"}, "rangemode": "tozero"},
-                            "xaxis": {"title": {"text": x_title}}}},
+                            "xaxis": {"title": {"text": x_title, "standoff": 4}}}},
     }
 
 
