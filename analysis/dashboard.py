@@ -52,7 +52,7 @@ def charts(result: AnalysisResult) -> dict:
                    "plot_bgcolor": "#fbfaf7", "font": {"family": "system-ui, sans-serif", "size": 12,
                                                        "color": "#27323a"},
                    "legend": {"orientation": "h", "x": 0, "y": 1.02, "yanchor": "bottom"}, "hovermode": "closest"}
-    rt_traces, dist_traces, heat_z, heat_y = [], [], [], []
+    rt_traces, dist_traces, avail_traces, heat_z, heat_y = [], [], [], [], []
     for i, s in enumerate(result.stations):
         colour = STATION_COLOURS[i % len(STATION_COLOURS)]
         visible = True if i < VISIBLE_STATIONS else "legendonly"
@@ -68,6 +68,11 @@ def charts(result: AnalysisResult) -> dict:
             rt_traces.append({"type": "scattergl", "mode": "markers", "name": f"{name} max", "x": x,
                               "y": finite(series["rt_max"]), "marker": {"color": colour, "size": 4, "symbol": "x"},
                               "legendgroup": name, "visible": visible})
+        if s.requests:
+            avail = [None if n == 0 else round(100.0 * (a + b) / n, 2)
+                     for a, b, n in zip(series["ok"], series["exception"], series["requests"])]
+            avail_traces.append({"type": "scattergl", "mode": "lines", "name": name, "x": x, "y": avail,
+                                 "line": {"color": colour, "width": 1.5}, "visible": visible})
         edges, counts = result.response_histogram(s.address)
         if counts:
             centres = [(a * b) ** 0.5 for a, b in zip(edges[:-1], edges[1:])]
@@ -90,6 +95,10 @@ def charts(result: AnalysisResult) -> dict:
         "rt": {"data": rt_traces, "layout": {**base_layout, "yaxis": {"title": {"text": "response time (ms)"},
                                                                         "rangemode": "tozero"},
                                              "xaxis": {"title": {"text": x_title, "standoff": 4}}, "shapes": shapes}},
+        "avail": {"data": avail_traces, "layout": {**base_layout,
+                                                   "yaxis": {"title": {"text": "answered in time (%)"},
+                                                             "range": [0, 102]},
+                                                   "xaxis": {"title": {"text": x_title, "standoff": 4}}}},
         "dist": {"data": dist_traces, "layout": {**base_layout, "barmode": "overlay",
                                                  "xaxis": {"type": "log", "title": {"text": "response time (ms)"}},
                                                  "yaxis": {"title": {"text": "answers"}},

@@ -6,7 +6,7 @@ in them, so the strings returned here are plain ``str`` that every renderer must
 
 from __future__ import annotations
 
-#: Basic and regular object ids of Read Device Identification (MB Application Protocol V1.1b3 p44).
+#: Basic and regular object ids of Read Device Identification (MAP V1.1b3 p43-45; ids 3-6 from memory).
 DEVICE_ID_OBJECTS = {0: "vendor name", 1: "product code", 2: "revision", 3: "vendor URL", 4: "product name",
                      5: "model name", 6: "application name"}
 
@@ -26,7 +26,7 @@ def device_id_text(response: bytes) -> str | None:
     function = response[1]
     body = response[2:-2]
     if function == 0x11:
-        # byte count, then server id, run indicator and additional data (MB Application Protocol V1.1b3 p42)
+        # byte count, then server id, run indicator and additional data (MAP V1.1b3 p31)
         count = body[0]
         data = body[1:1 + count]
         return printable(data) if data else None

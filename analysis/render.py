@@ -19,7 +19,7 @@ FUNCTION_NAMES = {1: "read coils", 2: "read discrete inputs", 3: "read holding r
 
 
 def function_name(code: int) -> str:
-    """``3 (read holding registers)``; names from the MB Application Protocol V1.1b3 function table."""
+    """``3 (read holding registers)``; names from the MAP V1.1b3 function code table."""
     base = code & 0x7F
     name = FUNCTION_NAMES.get(base, "function")
     return f"{code} ({name}{', exception' if code & 0x80 else ''})"

@@ -31,7 +31,7 @@ from buswitness.capture.fileformat import CaptureHeader, ReadReport
 _O = {name: i for i, name in enumerate(OUTCOMES)}
 _K = {name: i for i, name in enumerate(EVENT_KINDS)}
 
-#: Exception codes and their meaning (MB Application Protocol V1.1b3 p48-49).
+#: Exception codes and their meaning (MAP V1.1b3 p47-49).
 EXCEPTION_NAMES = {1: "illegal function", 2: "illegal data address", 3: "illegal data value",
                    4: "server device failure", 5: "acknowledge", 6: "server device busy",
                    8: "memory parity error", 10: "gateway path unavailable",

@@ -21,7 +21,7 @@ def header(start_utc: str = "2026-03-04T21:00:00+00:00") -> CaptureHeader:
 
 
 def read_request(station: int, register: int = 0, count: int = 2) -> bytes:
-    # FC 03 read holding registers request: addr fc start(2) count(2) crc (MB Application Protocol V1.1b3 p15)
+    # FC 03 read holding registers request: addr fc start(2) count(2) crc (MAP V1.1b3 p15)
     return append_crc(bytes([station, 3, register >> 8, register & 0xFF, count >> 8, count & 0xFF]))
 
 
@@ -34,7 +34,7 @@ def exception_response(station: int, function: int, code: int) -> bytes:
 
 
 def report_id_response(station: int, text: bytes) -> bytes:
-    # FC 11 report server ID: addr 0x11 byte-count id... run-indicator (MB Application Protocol V1.1b3 p42)
+    # FC 11 report server ID: addr 0x11 byte-count id... run-indicator (MAP V1.1b3 p31)
     body = text + b"\xff"
     return append_crc(bytes([station, 0x11, len(body)]) + body)
 

@@ -25,7 +25,7 @@ def hostile_hex_capture(path) -> None:
     def frame(at: float, data: bytes) -> None:
         lines.append(f"{at:.6f} " + data.hex(" ").upper())
 
-    # FC 11 report server ID (MB Application Protocol V1.1b3 p42); FC 2B/0E read device identification (p43-44)
+    # FC 11 report server ID (MAP V1.1b3 p31); FC 2B/0E read device identification (MAP p43-45)
     fc11 = append_crc(bytes([9, 0x11]))
     fc11_resp = append_crc(bytes([9, 0x11, len(SCRIPT + IMG) + 1]) + SCRIPT + IMG + b"\xff")
     objects = bytes([0, len(CLOSE)]) + CLOSE + bytes([1, len(IMG)]) + IMG
@@ -70,7 +70,7 @@ def test_dashboard_renders_offline_without_errors_and_hostile_text_stays_text(re
         page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
         rows = page.locator("#station-table tbody tr")
         assert rows.count() == len(summary["stations"]) == 3
-        for chart in ("chart-rt", "chart-dist", "chart-timeline", "chart-util"):
+        for chart in ("chart-rt", "chart-avail", "chart-dist", "chart-timeline", "chart-util"):
             traces = page.evaluate(f"document.getElementById('{chart}').data.length")
             points = page.evaluate(f"document.getElementById('{chart}').data"
                                    f".reduce((n, t) => n + ((t.y || t.z || []).length), 0)")
