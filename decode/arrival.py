@@ -18,6 +18,8 @@ from __future__ import annotations
 from bisect import bisect_right
 from dataclasses import dataclass, field
 
+import numpy as np
+
 
 @dataclass
 class Timeline:
@@ -84,3 +86,57 @@ class Timeline:
         keep = bisect_right(self.lasts, pos - 1)
         if keep:
             del self.starts[:keep], self.lasts[:keep], self.times[:keep], self.floors[:keep]
+
+    def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> np.ndarray:
+        """:meth:`add` for many records at once (all with bytes); returns the least silence before each."""
+        count = t_ns.shape[0]
+        if count == 0:
+            return np.zeros(0)
+        t = t_ns.astype(np.float64)
+        prev = np.empty(count)
+        prev[0] = np.nan if self._last_t is None else self._last_t
+        prev[1:] = t[:-1]
+        ends = self._next_pos + np.cumsum(n)
+        starts = ends - n
+        floor = t - self.latency_ns - self.host_delay_ns
+        one_packet = (n <= self.packet_bytes) & ~np.isnan(prev)
+        floor[one_packet] = np.maximum(floor[one_packet], prev[one_packet] - self.host_delay_ns)
+        silence = t - self.latency_ns - self.host_delay_ns - n * self.char_ns - prev
+        silence[np.isnan(prev)] = -np.inf
+        if self.untimed:
+            silence[:] = -np.inf
+        self.starts.extend(starts.tolist())
+        self.lasts.extend((ends - 1).tolist())
+        self.times.extend(t_ns.tolist())
+        self.floors.extend(floor.tolist())
+        self._next_pos = int(ends[-1])
+        self._last_t = int(t_ns[-1])
+        return silence
+
+    def end_bounds_many(self, first: np.ndarray, last: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`end_bounds` for many frames (absolute positions, in stream order)."""
+        starts = np.asarray(self.starts, dtype=np.int64)
+        lasts = np.asarray(self.lasts, dtype=np.int64)
+        times = np.asarray(self.times, dtype=np.float64)
+        floors = np.asarray(self.floors, dtype=np.float64)
+        c = self.char_ns
+        ra = np.maximum(np.searchsorted(starts, first, "right") - 1, 0)
+        rb = np.searchsorted(starts, last, "right") - 1
+        e = last.astype(np.float64)
+        # Latest end: every record's last byte ended by its read time; min over the frame's records.
+        h = np.append(times - lasts * c, np.inf)
+        hi = np.minimum.reduceat(h, np.ravel(np.column_stack((ra, rb + 1))))[::2] + e * c
+        # Earliest end, first record: its bytes from the frame's first (or the last P) on.
+        k0 = np.maximum(first, lasts[ra] - self.packet_bytes + 1)
+        lo = floors[ra] + (e - k0) * c
+        # Later records lie wholly inside the frame.
+        more = rb > ra
+        if more.any():
+            g = np.append(floors - np.maximum(starts, lasts - self.packet_bytes + 1) * c, -np.inf)
+            sel = np.flatnonzero(more)
+            idx = np.ravel(np.column_stack((ra[sel] + 1, rb[sel] + 1)))
+            lo[sel] = np.maximum(lo[sel], np.maximum.reduceat(g, idx)[::2] + e[sel] * c)
+        if self.untimed:
+            lo = hi.copy()
+        lo = np.minimum(lo, hi)
+        return np.rint(lo).astype(np.int64), np.rint(hi).astype(np.int64)

@@ -14,16 +14,18 @@ from dataclasses import dataclass, field
 from typing import Iterator
 
 import numpy as np
-import pandas as pd
 
 from buswitness.capture.fileformat import (FLAG_BREAK, FLAG_DISCONNECTED, FLAG_LINE_ERROR, FLAG_LOST,
                                            FLAG_PAUSED, FLAG_REOPENED, CaptureHeader, RecordBatch)
 from buswitness.decode.arrival import Timeline
 from buswitness.decode.ascii import AsciiScanner, decode_ascii_frame
-from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
+from buswitness.decode.bulk import bulk_spans
+from buswitness.decode.events import Damage, Frame, Transaction
 from buswitness.decode.framer import JUNK, RegionScanner, Span
-from buswitness.decode.lengths import MIN_FRAME, PUBLIC_CODES, REQUEST, RESPONSE, candidate_lengths
+from buswitness.decode.lengths import EITHER, MIN_FRAME, PUBLIC_CODES, REQUEST, RESPONSE, candidate_lengths
 from buswitness.decode.pairing import Pairing
+from buswitness.decode.tables import (OUTCOME_CODE, Collector, DecodeOutput, events_table, frames_table,
+                                      transactions_table)
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import UsageError
 
@@ -96,75 +98,6 @@ class DecoderConfig:
         return self.port_roles.get(port, "both")
 
 
-FRAME_COLUMNS = ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port", "address", "function", "length",
-                 "direction", "raw")
-TRANSACTION_COLUMNS = ("t_request_end_ns", "t_response_start_ns", "station", "function", "outcome",
-                       "exception_code", "retry", "response_ms", "response_ms_low", "response_ms_high",
-                       "request_raw", "response_raw")
-EVENT_COLUMNS = ("t_ns", "kind", "station", "port", "raw", "detail")
-
-
-def frames_table(frames: list[Frame]) -> pd.DataFrame:
-    """Frames as the ``frames`` table of docs/tables.md."""
-    return pd.DataFrame({
-        "t_start_ns": np.array([f.t_start_ns for f in frames], dtype=np.int64),
-        "t_end_ns": np.array([f.t_end_ns for f in frames], dtype=np.int64),
-        "t_end_lo_ns": np.array([f.t_end_lo_ns for f in frames], dtype=np.int64),
-        "t_end_hi_ns": np.array([f.t_end_hi_ns for f in frames], dtype=np.int64),
-        "port": np.array([f.port for f in frames], dtype=np.uint8),
-        "address": np.array([f.address for f in frames], dtype=np.uint8),
-        "function": np.array([f.function for f in frames], dtype=np.uint8),
-        "length": np.array([f.length for f in frames], dtype=np.int32),
-        "direction": pd.Categorical([f.direction for f in frames], categories=DIRECTIONS),
-        "raw": pd.Series([f.raw for f in frames], dtype=object),
-    })
-
-
-def transactions_table(txns: list[Transaction]) -> pd.DataFrame:
-    """Transactions as the ``transactions`` table of docs/tables.md."""
-    return pd.DataFrame({
-        "t_request_end_ns": np.array([t.t_request_end_ns for t in txns], dtype=np.int64),
-        "t_response_start_ns": np.array([t.t_response_start_ns for t in txns], dtype=np.int64),
-        "station": np.array([t.station for t in txns], dtype=np.uint8),
-        "function": np.array([t.function for t in txns], dtype=np.uint8),
-        "outcome": pd.Categorical([t.outcome for t in txns], categories=OUTCOMES),
-        "exception_code": np.array([t.exception_code for t in txns], dtype=np.uint8),
-        "retry": np.array([t.retry for t in txns], dtype=bool),
-        "response_ms": np.array([t.response_ms for t in txns], dtype=np.float64),
-        "response_ms_low": np.array([t.response_ms_low for t in txns], dtype=np.float64),
-        "response_ms_high": np.array([t.response_ms_high for t in txns], dtype=np.float64),
-        "request_raw": pd.Series([t.request_raw for t in txns], dtype=object),
-        "response_raw": pd.Series([t.response_raw for t in txns], dtype=object),
-    })
-
-
-def events_table(events: list[Damage]) -> pd.DataFrame:
-    """Damage and notable-traffic events as the ``events`` table of docs/tables.md."""
-    return pd.DataFrame({
-        "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
-        "kind": pd.Categorical([e.kind for e in events], categories=EVENT_KINDS),
-        "station": np.array([e.station for e in events], dtype=np.int16),
-        "port": np.array([e.port for e in events], dtype=np.uint8),
-        "raw": pd.Series([e.raw for e in events], dtype=object),
-        "detail": pd.Series([e.detail for e in events], dtype=object),
-    })
-
-
-@dataclass
-class DecodeOutput:
-    """The three tables one call produced (any may be empty)."""
-
-    frames: pd.DataFrame
-    transactions: pd.DataFrame
-    events: pd.DataFrame
-
-    @classmethod
-    def from_objects(cls, items: list) -> "DecodeOutput":
-        return cls(frames_table([x for x in items if isinstance(x, Frame)]),
-                   transactions_table([x for x in items if isinstance(x, Transaction)]),
-                   events_table([x for x in items if isinstance(x, Damage)]))
-
-
 def _describe_damage(raw: bytes, at_boundary: bool) -> tuple[str, int, str]:
     """Kind, likely station and a sentence for a run of bytes that forms no valid frame."""
     n = len(raw)
@@ -198,7 +131,9 @@ class _Port:
         self.base = 0  # absolute stream position of buf[0]
         self.silences: dict[int, float] = {}  # absolute position of a record start -> least silence before it
         self.last_key = -(1 << 62)
+        self.expect_response = False  # the bulk walk's guess for the next frame's direction
         self._marks: dict[str, list] = {}
+        self._held: list[tuple[int, tuple]] = []
         self._merge_ns = cfg.latency_for(port) * 1e6 + cfg.host_delay_ms * 1e6 + 4 * self.char_ns
 
     def add(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
@@ -217,17 +152,21 @@ class _Port:
         self._scan(False, out)
 
     def flush(self, out: list) -> None:
-        self._scan(True, out)
         for kind in list(self._marks):
-            out.append(self._mark_item(kind))
+            self._close_mark(kind)
+        self._scan(True, out)
 
-    def marks(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
-        """Turn record flags into events; consecutive marked records make one event with all their bytes."""
+    def marks(self, t_ns: int, data: bytes, flags: int) -> None:
+        """Turn record flags into events; consecutive marked records make one event with all their bytes.
+
+        An event is held until the framer has settled the bytes before it, so it reaches
+        pairing in stream order (after the request it may have hit, before what follows).
+        """
         present = {kind for kind, bit in _MARKS if flags & bit}
         for kind in list(self._marks):
             run = self._marks[kind]
             if kind not in present and (data or t_ns - run[1] > self._merge_ns):
-                out.append(self._mark_item(kind))
+                self._close_mark(kind)
         for kind in present:
             run = self._marks.get(kind)
             if run is not None and t_ns - run[1] <= self._merge_ns:
@@ -235,14 +174,29 @@ class _Port:
                 run[2] += data if kind == "line_error" else b""
             else:
                 if run is not None:
-                    out.append(self._mark_item(kind))
-                self._marks[kind] = [t_ns, t_ns, bytearray(data if kind == "line_error" else b"")]
+                    self._close_mark(kind)
+                self._marks[kind] = [t_ns, t_ns, bytearray(data if kind == "line_error" else b""),
+                                     self.base + len(self.buf)]
 
-    def _mark_item(self, kind: str) -> tuple:
-        t_first, _t_last, raw = self._marks.pop(kind)
+    def _close_mark(self, kind: str) -> None:
+        t_first, _t_last, raw, pos = self._marks.pop(kind)
         # The marked bytes arrived within one adapter period before the first such read returned.
         t = int(t_first - self._merge_ns / 2)
-        return t, ("damage", Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind]))
+        self._held.append((pos, (t, ("damage", Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind])))))
+
+    def _held_before(self, pos: int | None) -> list:
+        """Held events whose bytes start before absolute ``pos`` (all of them for None)."""
+        if not self._held:
+            return []
+        if pos is None:
+            ready, self._held = self._held, []
+        else:
+            ready = [h for h in self._held if h[0] <= pos]
+            self._held = [h for h in self._held if h[0] > pos]
+        return [item for _pos, item in sorted(ready, key=lambda h: h[0])]
+
+    def has_marks(self) -> bool:
+        return bool(self._marks or self._held)
 
     def first_open_time(self) -> int | None:
         """Earliest time an item this port still holds back could carry (None: holds nothing)."""
@@ -252,11 +206,92 @@ class _Port:
         lo, _hi = self.timeline.end_bounds(self.base + settled, self.base + settled)
         return lo - int(self.char_ns)
 
+    def add_bulk(self, t_ns: np.ndarray, n: np.ndarray, payload: bytes, pieces: list) -> None:
+        """Take many flag-free records, each with bytes, at once; append pieces in stream order.
+
+        A piece is ``("items", [(key, item), ...])`` from the sequential framer or
+        ``("bulk", end_lo, end_hi, lengths, shapes, addresses, functions, raws)`` from the bulk path.
+        """
+        offsets = len(self.buf) + np.cumsum(n) - n
+        silence = self.timeline.add_many(t_ns, n)
+        for i in np.flatnonzero(silence > self.t35_ns).tolist():
+            self.scanner.add_boundary(int(offsets[i]))
+        for i in np.flatnonzero(silence > self.t15_ns).tolist():
+            self.silences[self.base + int(offsets[i])] = float(silence[i])
+        self.buf.extend(payload)
+        self._scan_bulk(pieces)
+
+    def _scan_bulk(self, pieces: list) -> None:
+        sc = self.scanner
+        assert isinstance(sc, RegionScanner)
+        buf = bytes(self.buf)
+        arr = np.frombuffer(buf, dtype=np.uint8)
+        end = len(buf)
+        # The bulk path never runs a frame across a certain silence or a silence over t1.5:
+        # those frames need the sequential framer's judgement and events.
+        stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silences}), dtype=np.int64)
+        while True:
+            progressed = False
+            held = self._held_before(self.base + sc.settled)
+            if held:
+                pieces.append(("items", held))
+            if sc.junk_start is None:
+                starts, lens, shapes, expect = bulk_spans(buf, arr, sc.pos, end, self.expect_response)
+                if starts.size and self._held:
+                    # stop before the first frame that comes after a held event's bytes
+                    keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
+                    if keep < starts.size:
+                        starts, lens, shapes = starts[:keep], lens[:keep], shapes[:keep]
+                        expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
+                if starts.size and stops.size:
+                    j = np.searchsorted(stops, starts, "right")
+                    inside = (j < stops.size) & (stops[np.minimum(j, stops.size - 1)] < starts + lens)
+                    if inside.any():
+                        keep = int(np.argmax(inside))
+                        starts, lens, shapes = starts[:keep], lens[:keep], shapes[:keep]
+                        expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
+                if starts.size:
+                    ends = (starts + lens).tolist()
+                    raws = [buf[a:b] for a, b in zip(starts.tolist(), ends)]
+                    addrs = arr[starts]
+                    first = starts + self.base
+                    lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
+                    pieces.append(("bulk", lo, hi, lens, shapes, addrs, arr[starts + 1], raws))
+                    sc.pos = ends[-1]
+                    sc.anchored = True
+                    sc.known_addresses.update(np.unique(addrs).tolist())
+                    self.expect_response = expect
+                    progressed = True
+            spans: list[Span] = []
+            before = sc.pos
+            sc.scan(buf, end, False, spans, frames=2)
+            if spans:
+                items: list = []
+                for span in spans:
+                    items.extend(self._held_before(self.base + span.start))
+                    items.append(self._item(span))
+                pieces.append(("items", items))
+                for span in reversed(spans):
+                    if span.shape:
+                        self.expect_response = (span.shape == REQUEST if span.shape != EITHER
+                                                else not self.expect_response)
+                        break
+            if spans or sc.pos != before:
+                progressed = True
+            if not progressed:
+                break
+        self._trim()
+
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
         self.scanner.scan(self.buf, len(self.buf), final, spans)
         for span in spans:
+            out.extend(self._held_before(self.base + span.start))
             out.append(self._item(span))
+        out.extend(self._held_before(None if final else self.base + self.scanner.settled))
+        self._trim()
+
+    def _trim(self) -> None:
         settled = self.scanner.settled
         if settled:
             del self.buf[:settled]
@@ -320,31 +355,161 @@ class Decoder:
 
     # -- columnar view ------------------------------------------------------------------------
     def feed_batch(self, batch: RecordBatch) -> DecodeOutput:
-        """Take a batch of records; return the tables of what they complete."""
-        out: list = []
+        """Take a batch of records; return the tables of what they complete.
+
+        Runs of flag-free records on a single RTU port go through the bulk path (columns all
+        the way); everything else goes record by record. Both give the same results.
+        """
+        col = Collector()
+        count = len(batch)
+        if count == 0:
+            return col.output()
         payload = batch.payload.tobytes()
+        offsets = batch.offsets
+        lengths = batch.length
+        ports = np.unique(batch.port)
+        single = ports.size == 1 and set(self.ports) <= {int(ports[0])} and self.config.protocol == "rtu"
+        if not single:
+            out: list = []
+            for t, n, p, f, o in zip(batch.t_ns.tolist(), lengths.tolist(), batch.port.tolist(),
+                                     batch.flags.tolist(), offsets.tolist()):
+                self._record(p, t, payload[o:o + n], f)
+            self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
+            col.add_objects(out)
+            return col.output()
+        port = int(ports[0])
+        plain = (batch.flags == 0) & (lengths > 0)
+        edges = np.flatnonzero(np.diff(np.concatenate(([0], plain.astype(np.int8), [0]))))
         pos = 0
-        last_t = None
-        for t, n, p, f in zip(batch.t_ns.tolist(), batch.length.tolist(), batch.port.tolist(),
-                              batch.flags.tolist()):
-            self._record(p, t, payload[pos:pos + n], f)
-            pos += n
-            last_t = t
-        if last_t is not None:
-            self._release(last_t - self._slack_ns, out)
-        return DecodeOutput.from_objects(out)
+        for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):
+            self._records(batch, payload, offsets, pos, run_start, col)
+            self._bulk_run(port, batch, payload, offsets, run_start, run_end, col)
+            pos = run_end
+        self._records(batch, payload, offsets, pos, count, col)
+        return col.output()
+
+    def _records(self, batch: RecordBatch, payload: bytes, offsets: np.ndarray, a: int, b: int,
+                 col: Collector) -> None:
+        if a >= b:
+            return
+        out: list = []
+        for i in range(a, b):
+            o, n = int(offsets[i]), int(batch.length[i])
+            self._record(int(batch.port[i]), int(batch.t_ns[i]), payload[o:o + n], int(batch.flags[i]))
+        self._release(None, out)
+        col.add_objects(out)
+
+    def _bulk_run(self, port: int, batch: RecordBatch, payload: bytes, offsets: np.ndarray, a: int, b: int,
+                  col: Collector) -> None:
+        p = self._port(port)
+        t_ns = batch.t_ns[a:b]
+        lengths = batch.length[a:b]
+        data = payload[int(offsets[a]):int(offsets[b - 1] + lengths[-1])]
+        if p.has_marks():
+            p.marks(int(t_ns[0]), data, 0)
+        pieces: list = []
+        p.add_bulk(t_ns, lengths, data, pieces)
+        for piece in pieces:
+            if piece[0] == "items":
+                out: list = []
+                self._enqueue(p, piece[1])
+                self._release(None, out)
+                col.add_objects(out)
+            else:
+                self._bulk_frames(p, piece, col)
+
+    def _bulk_frames(self, p: "_Port", piece: tuple, col: Collector) -> None:
+        """Frames from the bulk path: times in columns, pairing in columns where traffic is regular."""
+        _tag, lo, hi, lens, shapes, addrs, fcs, raws = piece
+        c = self.char_ns
+        t_end = (lo + hi) // 2
+        t_start = t_end - np.rint(lens * c).astype(np.int64)
+        m = lens.shape[0]
+        directions = np.full(m, 2, dtype=np.int8)
+        p.last_key = max(p.last_key, int(t_start[-1]))
+        role = self.config.role_for(p.port)
+        pr = self.pairing
+        i = 0
+        while i < m:
+            if role == "both" and pr.waiting is None and not pr.slots:
+                run = _regular_pairs(shapes[i:], addrs[i:], fcs[i:])
+                if run:
+                    j = i + 2 * run
+                    self._pair_columns(p.port, raws, lo, hi, lens, t_start, t_end, fcs, i, j, col)
+                    directions[i:j:2] = 0
+                    directions[i + 1:j:2] = 1
+                    i = j
+                    continue
+            out: list = []
+            frame = self._deliver(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0, 0, out,
+                                  keep_frame=False)
+            directions[i] = 0 if frame.direction == "request" else 1 if frame.direction == "response" else 2
+            col.add_objects(out)
+            i += 1
+        col.add_frame_columns({
+            "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi,
+            "port": np.full(m, p.port, dtype=np.uint8), "address": addrs, "function": fcs, "length": lens,
+            "direction": directions, "raw": raws,
+        })
+
+    def _pair_columns(self, port: int, raws: list, lo: np.ndarray, hi: np.ndarray, lens: np.ndarray,
+                      t_start: np.ndarray, t_end: np.ndarray, fcs: np.ndarray, i: int, j: int,
+                      col: Collector) -> None:
+        """Transactions of a run of request/answer pairs, as Pairing would make them, in columns."""
+        pr = self.pairing
+        q = np.arange(i, j, 2)
+        r = q + 1
+        c_rsp = lens[r] * self.char_ns
+        gap = t_start[r] - t_end[q]
+        late = np.zeros(q.size, dtype=bool) if pr.timeout_ns is None else gap > pr.timeout_ns
+        rsp_raws = [raws[k] for k in r.tolist()]
+        req_raws = [raws[k] for k in q.tolist()]
+        exc = (fcs[r] & 0x80) != 0
+        codes = np.array([x[2] for x in rsp_raws], dtype=np.uint8)
+        is_exc = exc & (codes != 0) & ~late
+        outcome = np.where(late, OUTCOME_CODE["late"], np.where(is_exc, OUTCOME_CODE["exception"],
+                                                                OUTCOME_CODE["ok"])).astype(np.int8)
+        if pr.timed:
+            mid = np.maximum(0.0, (t_end[r] - c_rsp - t_end[q]) / 1e6)
+            low = np.minimum(np.maximum(0.0, (lo[r] - c_rsp - hi[q]) / 1e6), mid)
+            high = np.maximum(np.maximum(0.0, (hi[r] - c_rsp - lo[q]) / 1e6), mid)
+        else:
+            mid = low = high = np.full(q.size, np.nan)
+        failed_before = np.concatenate(([pr.last_failed], late[:-1]))
+        prev_raw = [pr.last_request.raw if pr.last_request is not None else None] + req_raws[:-1]
+        retry = failed_before & np.array([a == b for a, b in zip(prev_raw, req_raws)], dtype=bool)
+        col.add_transaction_columns({
+            "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": [x[0] for x in req_raws],
+            "function": fcs[q], "outcome": outcome, "exception_code": np.where(is_exc, codes, 0), "retry": retry,
+            "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
+            "request_raw": req_raws, "response_raw": rsp_raws,
+        })
+        short = np.flatnonzero(high * 1e6 < pr.t35_ns)
+        col.add_objects([Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                                f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
+                                f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()])
+        ok_rt = mid[~late]
+        if pr.timed and ok_rt.size:
+            pr.slowest_ns = max(pr.slowest_ns, float(np.nanmax(ok_rt)) * 1e6)
+        last = int(q[-1])
+        pr.last_request = Frame(port, raws[last], int(lo[last]), int(hi[last]), self.char_ns, "request")
+        pr.last_failed = bool(late[-1])
 
     def flush(self) -> DecodeOutput:
         """End of input, as tables."""
         return DecodeOutput.from_objects(self.flush_events())
 
     # -- internals ----------------------------------------------------------------------------
-    def _record(self, port: int, t_ns: int, data: bytes, flags: int) -> None:
+    def _port(self, port: int) -> "_Port":
         p = self.ports.get(port)
         if p is None:
             p = self.ports[port] = _Port(port, self.config)
+        return p
+
+    def _record(self, port: int, t_ns: int, data: bytes, flags: int) -> None:
+        p = self._port(port)
         items: list = []
-        p.marks(t_ns, data, flags, items)
+        p.marks(t_ns, data, flags)
         p.add(t_ns, data, flags, items)
         self._enqueue(p, items)
 
@@ -371,22 +536,39 @@ class Decoder:
                 out.append(self.pairing.on_damage(item[1]))
                 continue
             _tag, port, raw, lo, hi, shape, gap, wire = item
-            role = self.config.role_for(port)
-            probe = Frame(port, raw, lo, hi, self.char_ns, wire_chars=wire)
-            if role == "master":
-                direction = "request"
-            elif role == "slaves":
-                direction = "response"
-            else:
-                direction = self.pairing.direction_of(probe, shape)
-            frame = Frame(port, raw, lo, hi, self.char_ns, direction, wire)
+            self._deliver(port, raw, lo, hi, shape, gap, wire, out)
+
+    def _deliver(self, port: int, raw: bytes, lo: int, hi: int, shape: int, gap: float, wire: int, out: list,
+                 keep_frame: bool = True) -> Frame:
+        """One frame into pairing; its events and finished transactions (and the frame) go to ``out``."""
+        role = self.config.role_for(port)
+        if role == "master":
+            direction = "request"
+        elif role == "slaves":
+            direction = "response"
+        else:
+            direction = self.pairing.direction_of(Frame(port, raw, lo, hi, self.char_ns, wire_chars=wire), shape)
+        frame = Frame(port, raw, lo, hi, self.char_ns, direction, wire)
+        if keep_frame:
             out.append(frame)
-            if gap:
-                out.append(Damage("gap_in_frame", port, frame.t_start_ns, raw, raw[0],
-                                  f"a silence of at least {gap / 1e6:.3f} ms inside a frame (over t1.5)"))
-            txns, events = self.pairing.on_frame(frame)
-            out.extend(events)
-            out.extend(txns)
+        if gap:
+            out.append(Damage("gap_in_frame", port, frame.t_start_ns, raw, raw[0],
+                              f"a silence of at least {gap / 1e6:.3f} ms inside a frame (over t1.5)"))
+        txns, events = self.pairing.on_frame(frame)
+        out.extend(events)
+        out.extend(txns)
+        return frame
+
+
+def _regular_pairs(shapes: np.ndarray, addrs: np.ndarray, fcs: np.ndarray) -> int:
+    """How many request/answer pairs open these frames: request-shaped to station N, then N's answer."""
+    k = np.arange(0, shapes.shape[0] - 1, 2)
+    if k.size == 0:
+        return 0
+    ok = ((shapes[k] == REQUEST) & (shapes[k + 1] == RESPONSE) & (addrs[k] == addrs[k + 1]) & (addrs[k] != 0)
+          & ((fcs[k + 1] & 0x7F) == fcs[k]))
+    bad = np.flatnonzero(~ok)
+    return int(bad[0]) if bad.size else int(k.size)
 
 
 def decode_source(source, config: DecoderConfig | None = None) -> Iterator[DecodeOutput]:
@@ -398,4 +580,5 @@ def decode_source(source, config: DecoderConfig | None = None) -> Iterator[Decod
     yield dec.flush()
 
 
-__all__ = ["Decoder", "DecoderConfig", "DecodeOutput", "decode_source", "REQUEST", "RESPONSE"]
+__all__ = ["Decoder", "DecoderConfig", "DecodeOutput", "decode_source", "events_table", "frames_table",
+           "transactions_table"]

@@ -80,8 +80,13 @@ class RegionScanner:
         if not self.boundaries or at > self.boundaries[-1]:
             self.boundaries.append(at)
 
-    def scan(self, buf: bytes, end: int, final: bool, out: list[Span]) -> None:
-        """Examine ``buf[pos:end]``; ``final`` says no byte will follow ``end`` (end of input)."""
+    def scan(self, buf: bytes, end: int, final: bool, out: list[Span], frames: int | None = None) -> None:
+        """Examine ``buf[pos:end]``; ``final`` says no byte will follow ``end`` (end of input).
+
+        With ``frames``, return early once that many frames were found and no damage run is
+        open: the bulk path then takes over again.
+        """
+        found = 0
         bounds = self.boundaries
         bi = bisect_left(bounds, self.pos)
         while self.pos < end:
@@ -102,6 +107,9 @@ class RegionScanner:
                 self.known_addresses.add(buf[self.pos])
                 self.pos += length
                 self.anchored = True
+                found += 1
+                if frames is not None and found >= frames:
+                    return
                 continue
             if self.junk_start is None:
                 self.junk_start = self.pos
