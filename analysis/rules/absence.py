@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from buswitness.analysis.figures import EVENT_KINDS
 from buswitness.analysis.finding import WIRING_CAUTION, Cause, Finding
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.analysis.rules.common import (
@@ -19,6 +20,14 @@ from buswitness.analysis.rules.thresholds import Thresholds
 def _alive(s: StationFigures) -> int:
     """Polls the station evidently answered: in time, late, or damaged on the way."""
     return s.answered + s.late + s.corrupt
+
+
+def unpolled_responders(result: AnalysisResult) -> list[int]:
+    """Addresses valid answers came from that the master never polls (a device set to another address)."""
+    acc = result.acc
+    kinds = [EVENT_KINDS.index("orphan_response"), EVENT_KINDS.index("unexpected_responder")]
+    answered = acc.events[1:, kinds].sum(axis=1)
+    return [a for a in range(1, 248) if answered[a] and not acc.outcomes[a].sum()]
 
 
 def no_answers(result: AnalysisResult, th: Thresholds) -> list[Finding]:
@@ -64,8 +73,7 @@ def never_present(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     """A polled station that never answered while others did."""
     if not any(s.answered + s.late for s in result.stations):
         return []
-    strangers = sorted({s.address for s in result.stations if not s.requests and
-                        (s.events.get("orphan_response", 0) or s.events.get("unexpected_responder", 0))})
+    strangers = unpolled_responders(result)
     out = []
     t0, t1 = capture_span(result)
     for s in polled(result, th):

@@ -48,15 +48,19 @@ def _failure_minutes(result: AnalysisResult, address: int, columns: tuple) -> tu
 
 
 def _period_text(result: AnalysisResult, minutes: tuple[int, int] | None) -> tuple[str, float, float]:
-    """' all after 02:00' / ' all between ...' when failures keep to part of the capture; and the span."""
+    """' all after 02:00' / ' all between ...' when failures keep to part of the capture; and the span.
+
+    Only a whole failure-free minute before or after counts: a capture ending a few
+    milliseconds into a new minute does not make the failures "end early".
+    """
     t0, t1 = capture_span(result)
     if minutes is None:
         return "", t0, t1
     a, b = minute_span(minutes[0], minutes[1], result)
-    n = result.minutes()
-    if minutes[0] > 0 and minutes[1] >= n - 1:
+    later, earlier = a >= 60.0, t1 - b >= 60.0
+    if later and not earlier:
         return f", all after {clock(result, a)}", a, t1
-    if minutes[0] > 0 or minutes[1] < n - 1:
+    if later or earlier:
         return f", all between {clock(result, a)} and {clock(result, b)}", a, b
     return "", t0, t1
 
