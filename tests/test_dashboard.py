@@ -54,5 +54,6 @@ def test_findings_fill_the_summary_band_with_their_caution():
                                caution=WIRING_CAUTION)]
     page = render_dashboard(result)
     assert 'class="sev sev-warning"' in page and "answers after the master&#39;s 200 ms timeout." in page
-    assert "the device is slow: check its configured response delay" in page and "licensed" in page
+    assert "the device is slow <span class=\"next\">What to check: its configured response delay" in page
+    assert "licensed" in page
     assert "No findings were raised" not in page
