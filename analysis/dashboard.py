@@ -8,6 +8,7 @@ Chart data travel as JSON in a ``<script type="application/json">`` element (esc
 from __future__ import annotations
 
 import html
+import itertools
 import math
 from pathlib import Path
 
@@ -75,8 +76,8 @@ def charts(result: AnalysisResult) -> dict:
                                  "line": {"color": colour, "width": 1.5}, "visible": visible})
         edges, counts = result.response_histogram(s.address)
         if counts:
-            centres = [(a * b) ** 0.5 for a, b in zip(edges[:-1], edges[1:])]
-            widths = [b - a for a, b in zip(edges[:-1], edges[1:])]
+            centres = [(a * b) ** 0.5 for a, b in itertools.pairwise(edges)]
+            widths = [b - a for a, b in itertools.pairwise(edges)]
             dist_traces.append({"type": "bar", "name": name, "x": centres, "y": counts, "width": widths,
                                 "marker": {"color": colour}, "opacity": 0.75, "visible": visible})
         heat_y.append(name if len(s.label) <= 30 else _label(f"{s.label[:22]}… ({s.address})"))

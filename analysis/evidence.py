@@ -71,7 +71,7 @@ def _histogram_svg(result: AnalysisResult, address: int, width: int = 760, heigh
                      "y": round(height - pad_b - h, 2), "h": round(h, 2), "n": n, "over": over,
                      "a": a, "b": b})
     ticks = []
-    for decade in range(int(math.floor(lo)), int(math.ceil(hi)) + 1):
+    for decade in range(math.floor(lo), math.ceil(hi) + 1):
         for m in ((1, 2, 5) if span > 1 else (1, 1.5, 2, 3, 4, 5, 6, 7, 8, 9)):
             v = m * 10 ** decade
             if lo <= math.log10(v) <= hi:

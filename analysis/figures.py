@@ -130,7 +130,6 @@ class Accumulator:
     gaps: np.ndarray = field(default_factory=lambda: np.zeros(FINE.count, np.int64))
     frames: int = 0
     frame_bytes: int = 0
-    response_frames: int = 0
     busy_ns: float = 0.0
     first_ns: int | None = None
     last_ns: int | None = None
@@ -171,7 +170,6 @@ class Accumulator:
         self._span(t_end)
         self.frames += len(frames)
         self.frame_bytes += int(length.sum())
-        self.response_frames += int((_codes(frames["direction"], ("response",), -1) == 0).sum())
         busy = length * self.char_ns
         self.busy_ns += float(busy.sum())
         minute = self._minute(t_start)
@@ -401,7 +399,7 @@ class Accumulator:
         self.rt_min = np.fmin(self.rt_min, other.rt_min)
         self.rt_max = np.fmax(self.rt_max, other.rt_max)
         self.ok_max = np.fmax(self.ok_max, other.ok_max)
-        for name in ("frames", "frame_bytes", "response_frames", "busy_ns", "unknown_outcomes"):
+        for name in ("frames", "frame_bytes", "busy_ns", "unknown_outcomes"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
         spans = [x for x in (self.first_ns, other.first_ns) if x is not None]
         self.first_ns = min(spans) if spans else None

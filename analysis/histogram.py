@@ -23,7 +23,7 @@ class LogBins:
 
     @property
     def count(self) -> int:
-        return int(math.ceil(math.log(self.hi_ms / self.lo_ms) / math.log(self.ratio))) + 1
+        return math.ceil(math.log(self.hi_ms / self.lo_ms) / math.log(self.ratio)) + 1
 
     @property
     def relative_resolution(self) -> float:
@@ -60,7 +60,7 @@ def quantile(counts: np.ndarray, q: float, bins: LogBins, vmin: float | None = N
     total = int(counts.sum())
     if total == 0:
         return None
-    rank = max(1, int(math.ceil(q * total)))
+    rank = max(1, math.ceil(q * total))
     k = int(np.searchsorted(np.cumsum(counts), rank))
     value = float(bins.centre(k))
     if vmin is not None:

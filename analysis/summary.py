@@ -92,8 +92,8 @@ def _ms(v: float | None) -> str:
 def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
     """The short text ``analyze`` prints: the capture, top findings, a line per station."""
     bus = result.bus
-    lines = [f"capture: {bus.duration_s / 3600:.2f} h, {bus.frames} frames, {bus.requests} requests, "
-             f"line busy {0 if bus.utilisation is None else 100 * bus.utilisation:.1f}%",
+    lines = [(f"capture: {bus.duration_s / 3600:.2f} h, {bus.frames} frames, {bus.requests} requests, "
+              f"line busy {0 if bus.utilisation is None else 100 * bus.utilisation:.1f}%"),
              f"master timeout: {result.timeout.explanation}"]
     if result.damage is not None and not result.damage.clean:
         lines.append("capture damage: " + "; ".join(result.damage.warnings[:3] or ["see the report"]))

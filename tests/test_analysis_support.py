@@ -71,23 +71,23 @@ def tables(txs: list[Tx], events: list[tuple[float, str, int, bytes]] = ()) -> O
             resp = (exception_response(t.station, t.function, t.exception_code) if t.outcome == "exception"
                     else read_response(t.station))
         t_end = T0 + int(t.t_s * 1e9)
-        frame_rows.append(dict(t_start_ns=t_end - int(len(req) * CHAR_NS), t_end_ns=t_end,
-                               t_end_lo_ns=t_end - 1_000_000, t_end_hi_ns=t_end, port=0, address=t.station,
-                               function=req[1], length=len(req), direction="request", raw=req))
+        frame_rows.append({"t_start_ns": t_end - int(len(req) * CHAR_NS), "t_end_ns": t_end,
+                               "t_end_lo_ns": t_end - 1_000_000, "t_end_hi_ns": t_end, "port": 0, "address": t.station,
+                               "function": req[1], "length": len(req), "direction": "request", "raw": req})
         t_resp = -1
         if has_resp:
             t_resp = t_end + int(t.response_ms * 1e6)
-            frame_rows.append(dict(t_start_ns=t_resp, t_end_ns=t_resp + int(len(resp) * CHAR_NS),
-                                   t_end_lo_ns=t_resp, t_end_hi_ns=t_resp + int(len(resp) * CHAR_NS), port=0,
-                                   address=t.station, function=resp[1], length=len(resp), direction="response",
-                                   raw=resp))
+            frame_rows.append({"t_start_ns": t_resp, "t_end_ns": t_resp + int(len(resp) * CHAR_NS),
+                                   "t_end_lo_ns": t_resp, "t_end_hi_ns": t_resp + int(len(resp) * CHAR_NS), "port": 0,
+                                   "address": t.station, "function": resp[1], "length": len(resp), "direction": "response",
+                                   "raw": resp})
         rt = t.response_ms if has_resp else float("nan")
-        tx_rows.append(dict(t_request_end_ns=t_end, t_response_start_ns=t_resp, station=t.station,
-                            function=t.function, outcome=t.outcome, exception_code=t.exception_code,
-                            retry=t.retry, response_ms=rt, response_ms_low=rt - t.halfwidth_ms,
-                            response_ms_high=rt + t.halfwidth_ms, request_raw=req,
-                            response_raw=resp if has_resp else b""))
-    ev_rows = [dict(t_ns=T0 + int(t * 1e9), kind=k, station=s, port=0, raw=r, detail=f"{k} fixture")
+        tx_rows.append({"t_request_end_ns": t_end, "t_response_start_ns": t_resp, "station": t.station,
+                            "function": t.function, "outcome": t.outcome, "exception_code": t.exception_code,
+                            "retry": t.retry, "response_ms": rt, "response_ms_low": rt - t.halfwidth_ms,
+                            "response_ms_high": rt + t.halfwidth_ms, "request_raw": req,
+                            "response_raw": resp if has_resp else b""})
+    ev_rows = [{"t_ns": T0 + int(t * 1e9), "kind": k, "station": s, "port": 0, "raw": r, "detail": f"{k} fixture"}
                for t, k, s, r in events]
     frames = pd.DataFrame(frame_rows, columns=["t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port",
                                                "address", "function", "length", "direction", "raw"])
@@ -95,8 +95,8 @@ def tables(txs: list[Tx], events: list[tuple[float, str, int, bytes]] = ()) -> O
                                         "exception_code", "retry", "response_ms", "response_ms_low",
                                         "response_ms_high", "request_raw", "response_raw"])
     ev = pd.DataFrame(ev_rows, columns=["t_ns", "kind", "station", "port", "raw", "detail"])
-    for col in ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "length"):
-        frame_rows and frames.__setitem__(col, frames[col].astype("int64"))
+    if frame_rows:
+        frames = frames.astype({c: "int64" for c in ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "length")})
     return Output(frames, tx, ev)
 
 
