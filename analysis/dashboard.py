@@ -14,6 +14,7 @@ from pathlib import Path
 
 from buswitness.analysis.render import environment, finite, script_json, stylesheet
 from buswitness.analysis.result import AnalysisResult
+from buswitness.analysis.summary import UNTIMED_NOTE
 from buswitness.fsutil import atomic_write
 from markupsafe import Markup
 
@@ -149,7 +150,7 @@ def dashboard_data(result: AnalysisResult) -> dict:
         r["clock"] = r["utc"][11:23] if r.get("utc") else f"{r['t_s']:.3f} s"
         browser.append(r)
     damage = result.damage
-    return {"result": result, "bus": result.bus, "timeout": result.timeout, "rows": rows, "browser": browser,
+    return {"untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "result": result, "bus": result.bus, "timeout": result.timeout, "rows": rows, "browser": browser,
             "findings": finding_views(result), "damage": None if damage is None or damage.clean else damage,
             "start": result.header.start_utc, "duration_h": result.bus.duration_s / 3600.0,
             "files": [Path(p).name for p in result.paths]}

@@ -16,6 +16,7 @@ from pathlib import Path
 from buswitness.analysis.histogram import FINE, count_above
 from buswitness.analysis.render import environment, stylesheet
 from buswitness.analysis.result import AnalysisResult, StationFigures
+from buswitness.analysis.summary import UNTIMED_NOTE
 from buswitness.errors import UsageError
 from buswitness.fsutil import atomic_write
 from markupsafe import Markup
@@ -103,7 +104,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
     latency = [{"name": p.name, "latency_ms": p.latency_ms, "source": p.latency_source} for p in ports]
     latency_ms = max((p.latency_ms for p in ports if p.latency_ms is not None), default=None)
     return {
-        "s": s, "result": result, "timeout": result.timeout, "findings": findings,
+        "untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "s": s, "result": result, "timeout": result.timeout, "findings": findings,
         "caution": next((f.caution for f in findings if f.caution), ""),
         "identity": identity if identity is not None else file_identity(result.paths),
         "header": result.header, "latency": latency, "latency_ms": latency_ms,

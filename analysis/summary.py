@@ -18,6 +18,10 @@ from buswitness.fsutil import atomic_write
 
 SCHEMA_VERSION = 1
 
+#: Said wherever times are shown for an input without timestamps (raw bytes).
+UNTIMED_NOTE = ("this input has no timestamps (raw bytes): only the order of the bytes is real, so response "
+                "times, silences, utilisation and the timeout are not measurements")
+
 
 def _clean(value):
     """JSON has no NaN or infinity: they become null."""
@@ -95,6 +99,8 @@ def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
     lines = [(f"capture: {bus.duration_s / 3600:.2f} h, {bus.frames} frames, {bus.requests} requests, "
               f"line busy {0 if bus.utilisation is None else 100 * bus.utilisation:.1f}%"),
              f"master timeout: {result.timeout.explanation}"]
+    if result.header.timing == "none":
+        lines.append(UNTIMED_NOTE)
     if result.damage is not None and not result.damage.clean:
         lines.append("capture damage: " + "; ".join(result.damage.warnings[:3] or ["see the report"]))
     if result.findings:

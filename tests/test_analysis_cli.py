@@ -111,3 +111,11 @@ def test_damaged_capture_is_analysed_and_the_damage_reported(tmp_path, capsys):
     assert damage["clean"] is False and damage["truncated_tail"] is True
     assert "The capture file is damaged" in html.read_text()
     assert "capture damage:" in capsys.readouterr().out
+
+
+def test_raw_bytes_without_timestamps_are_flagged_as_untimed(tmp_path, capsys):
+    html = tmp_path / "r.html"
+    assert main(["analyze", str(SAMPLES / "tiny-poll.bin"), "--input-kind", "raw", "--baud", "19200",
+                 "--format", "8E1", "--html", str(html), "--no-progress"]) == 0
+    assert "this input has no timestamps" in capsys.readouterr().out
+    assert "No timing in this input" in html.read_text()
