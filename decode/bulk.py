@@ -15,7 +15,8 @@ import numpy as np
 
 from buswitness.decode.crc import crc16_rows
 from buswitness.decode.framer import RegionScanner, Span
-from buswitness.decode.lengths import _BC8, _FIXED, _RULES, EITHER, MAX_FRAME, MIN_FRAME, REQUEST, RESPONSE
+from buswitness.decode.lengths import (_BC8, _FIXED, _RULES, EITHER, MAX_FRAME, MIN_FRAME, REQUEST, RESPONSE,
+                                       vector_lengths)
 
 #: The walk stops this many bytes before the end so every length field it reads is present.
 LOOKAHEAD = 12
@@ -42,36 +43,55 @@ def _tables() -> tuple[list[int], list[int], list[int], list[int], list[int], li
 _RB, _RM, _RO, _SB, _SM, _SO = _tables()
 
 
-def walk(buf: bytes, p: int, end: int, expect_response: bool) -> tuple[list[int], list[int], list[int], list[int]]:
-    """Candidate frames from ``p`` on: starts, lengths, shapes and the other direction's length.
+def walk(buf: bytes, p: int, end: int, expect_response: bool) -> tuple[list[int], list[bool], int]:
+    """Candidate frames from ``p`` on: their starts, whether each was taken as a request, and where they end.
 
-    Stops at a code without a rule, an impossible length, or ``LOOKAHEAD`` bytes before ``end``.
+    The length comes from the rule of the expected direction (the other one when that has
+    none). Stops at a code without a rule, an impossible length, or ``LOOKAHEAD`` bytes
+    before ``end``. This loop is the bulk path's only per-frame Python work: keep it lean.
     """
     starts: list[int] = []
-    lens: list[int] = []
-    shapes: list[int] = []
-    alts: list[int] = []
-    add_start, add_len, add_shape, add_alt = starts.append, lens.append, shapes.append, alts.append
+    requests: list[bool] = []
+    add_start, add_kind = starts.append, requests.append
     rb, rm, ro, sb, sm, so = _RB, _RM, _RO, _SB, _SM, _SO
     stop = end - LOOKAHEAD
+    if not expect_response:
+        # The common case, a request and its answer, two frames per turn of the loop.
+        while p <= stop:
+            fc = buf[p + 1]
+            n = rb[fc] + rm[fc] * buf[p + ro[fc]]
+            q = p + n
+            if not n or n > MAX_FRAME or q > stop:
+                break
+            fc = buf[q + 1]
+            m = sb[fc] + sm[fc] * buf[q + so[fc]]
+            if m < MIN_FRAME or m > MAX_FRAME or q + m > end:
+                break
+            add_start(p)
+            add_start(q)
+            p = q + m
+        requests = [True, False] * (len(starts) // 2)
+        add_kind = requests.append
     while p <= stop:
         fc = buf[p + 1]
-        lreq = rb[fc] + rm[fc] * buf[p + ro[fc]]
-        lrsp = sb[fc] + sm[fc] * buf[p + so[fc]]
-        if (expect_response and lrsp) or not lreq:
-            length, alt, shape = lrsp, lreq, RESPONSE
-            expect_response = False
+        if expect_response:
+            n = sb[fc] + sm[fc] * buf[p + so[fc]]
+            if n:
+                expect_response = False
+            else:
+                n = rb[fc] + rm[fc] * buf[p + ro[fc]]
         else:
-            length, alt, shape = lreq, lrsp, REQUEST
-            expect_response = True
-        if length < MIN_FRAME or length > MAX_FRAME or p + length > end:
+            n = rb[fc] + rm[fc] * buf[p + ro[fc]]
+            if n:
+                expect_response = True
+            else:
+                n = sb[fc] + sm[fc] * buf[p + so[fc]]
+        if n < MIN_FRAME or n > MAX_FRAME or p + n > end:
             break
         add_start(p)
-        add_len(length)
-        add_shape(shape)
-        add_alt(alt)
-        p += length
-    return starts, lens, shapes, alts
+        add_kind(expect_response)
+        p += n
+    return starts, requests, p
 
 
 def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarray) -> int:
@@ -105,14 +125,19 @@ def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: b
     A frame whose request and response rules give the same length gets shape ``EITHER``:
     only the pairing state can say which it is (echo codes, FC01 answers of 3 bytes).
     """
-    starts, lens, shapes, alts = walk(buf, p, end, expect_response)
+    starts, requests, stop = walk(buf, p, end, expect_response)
+    if not starts:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int8), expect_response
     s = np.asarray(starts, dtype=np.int64)
-    n = np.asarray(lens, dtype=np.int64)
-    a = np.asarray(alts, dtype=np.int64)
+    n = np.diff(np.append(s, stop))
+    is_req = np.asarray(requests, dtype=bool)
+    req_len, rsp_len = vector_lengths(arr, s)
+    a = np.where(is_req, rsp_len, req_len)
     n_ok = verify(arr, s, n, a)
     if n_ok:
-        expect_response = shapes[n_ok - 1] == REQUEST
-    sh = np.where(a[:n_ok] == n[:n_ok], EITHER, np.asarray(shapes[:n_ok], dtype=np.int8)).astype(np.int8)
+        expect_response = bool(is_req[n_ok - 1])
+    shapes = np.where(is_req, REQUEST, RESPONSE)
+    sh = np.where(a[:n_ok] == n[:n_ok], EITHER, shapes[:n_ok]).astype(np.int8)
     return s[:n_ok], n[:n_ok], sh, expect_response
 
 

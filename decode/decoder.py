@@ -435,7 +435,7 @@ class Decoder:
                 run = _regular_pairs(shapes[i:], addrs[i:], fcs[i:])
                 if run:
                     j = i + 2 * run
-                    self._pair_columns(p.port, raws, lo, hi, lens, t_start, t_end, fcs, i, j, col)
+                    self._pair_columns(p.port, raws, lo, hi, lens, t_start, t_end, addrs, fcs, i, j, col)
                     directions[i:j:2] = 0
                     directions[i + 1:j:2] = 1
                     i = j
@@ -453,7 +453,7 @@ class Decoder:
         })
 
     def _pair_columns(self, port: int, raws: list, lo: np.ndarray, hi: np.ndarray, lens: np.ndarray,
-                      t_start: np.ndarray, t_end: np.ndarray, fcs: np.ndarray, i: int, j: int,
+                      t_start: np.ndarray, t_end: np.ndarray, addrs: np.ndarray, fcs: np.ndarray, i: int, j: int,
                       col: Collector) -> None:
         """Transactions of a run of request/answer pairs, as Pairing would make them, in columns."""
         pr = self.pairing
@@ -462,10 +462,12 @@ class Decoder:
         c_rsp = lens[r] * self.char_ns
         gap = t_start[r] - t_end[q]
         late = np.zeros(q.size, dtype=bool) if pr.timeout_ns is None else gap > pr.timeout_ns
-        rsp_raws = [raws[k] for k in r.tolist()]
-        req_raws = [raws[k] for k in q.tolist()]
+        rsp_raws = raws[i + 1:j:2]
+        req_raws = raws[i:j:2]
         exc = (fcs[r] & 0x80) != 0
-        codes = np.array([x[2] for x in rsp_raws], dtype=np.uint8)
+        codes = np.zeros(q.size, dtype=np.uint8)
+        if exc.any():
+            codes[exc] = [rsp_raws[k][2] for k in np.flatnonzero(exc).tolist()]
         is_exc = exc & (codes != 0) & ~late
         outcome = np.where(late, OUTCOME_CODE["late"], np.where(is_exc, OUTCOME_CODE["exception"],
                                                                 OUTCOME_CODE["ok"])).astype(np.int8)
@@ -476,10 +478,12 @@ class Decoder:
         else:
             mid = low = high = np.full(q.size, np.nan)
         failed_before = np.concatenate(([pr.last_failed], late[:-1]))
-        prev_raw = [pr.last_request.raw if pr.last_request is not None else None] + req_raws[:-1]
-        retry = failed_before & np.array([a == b for a, b in zip(prev_raw, req_raws)], dtype=bool)
+        retry = np.zeros(q.size, dtype=bool)
+        for k in np.flatnonzero(failed_before).tolist():
+            before = req_raws[k - 1] if k else (pr.last_request.raw if pr.last_request is not None else None)
+            retry[k] = before == req_raws[k]
         col.add_transaction_columns({
-            "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": [x[0] for x in req_raws],
+            "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": addrs[q],
             "function": fcs[q], "outcome": outcome, "exception_code": np.where(is_exc, codes, 0), "retry": retry,
             "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
             "request_raw": req_raws, "response_raw": rsp_raws,
