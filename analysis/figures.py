@@ -33,6 +33,7 @@ NS_PER_MIN = 60_000_000_000
 WORST_PER_STATION = 25      #: slowest answers kept per station for the frame browser
 FAILURES_PER_STATION = 25   #: first timeouts/corrupt answers kept per station as examples
 LATE_CAP = 5000             #: late answers listed per station (the count is exact beyond it)
+LATE_TOTAL_CAP = 50_000     #: late answers listed over all stations (keeps memory bounded on any bus)
 LARGEST_GAPS = 20           #: longest silences between frames kept
 DEVICE_IDS_PER_STATION = 4  #: distinct identification strings kept per station
 MIN_POLLS = 3               #: requests to a silent address before it is listed as a station
@@ -347,7 +348,7 @@ class Accumulator:
         late = outcome == _OUTCOME_INDEX["late"]
         for st in np.unique(station[late]):
             kept = self.late_rows.setdefault(int(st), [])
-            room = LATE_CAP - len(kept)
+            room = min(LATE_CAP - len(kept), LATE_TOTAL_CAP - sum(len(v) for v in self.late_rows.values()))
             if room > 0:
                 kept.extend(row(int(i)) for i in np.flatnonzero(late & (station == st))[:room])
         ident = np.isin(tx["function"].to_numpy(np.int64), [0x11, 0x2B]) & np.isin(
@@ -416,6 +417,14 @@ class Accumulator:
             for st, rows in source.items():
                 merged = sorted(target.get(st, []) + rows, key=lambda r: r["t_s"])
                 target[st] = merged[:cap]
+        excess = sum(len(v) for v in self.late_rows.values()) - LATE_TOTAL_CAP
+        for st in sorted(self.late_rows, key=lambda a: -len(self.late_rows[a])):
+            if excess <= 0:
+                break
+            drop = min(excess, len(self.late_rows[st]) - 1)
+            if drop > 0:
+                del self.late_rows[st][-drop:]
+                excess -= drop
         for st, ids in other.device_ids.items():
             mine = self.device_ids.setdefault(st, [])
             mine.extend(i for i in ids if i not in mine)

@@ -14,7 +14,6 @@ from buswitness import __version__
 from buswitness.analysis.figures import (
     EVENT_KINDS,
     FAILURES_PER_STATION,
-    LATE_CAP,
     MINUTE_COLUMNS,
     OUTCOMES,
     Accumulator,
@@ -224,7 +223,7 @@ def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: 
         events={k: int(n) for k, n in zip(EVENT_KINDS, ev) if n},
         functions={int(f): int(n) for f, n in enumerate(acc.functions[address]) if n},
         device_ids=list(acc.device_ids.get(address, [])),
-        late_listed=min(int(o[_O["late"]]), LATE_CAP))
+        late_listed=len(acc.late_rows.get(address, [])))
 
 
 def _bus_figures(acc: Accumulator) -> BusFigures:
