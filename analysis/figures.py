@@ -141,7 +141,7 @@ class Accumulator:
     late_rows: dict = field(default_factory=dict)        # station -> list of rows
     device_ids: dict = field(default_factory=dict)       # station -> list of str
     station_minutes: dict = field(default_factory=dict)  # station -> _Growing(len(MINUTE_COLUMNS))
-    station_minute_rt: dict = field(default_factory=dict)   # station -> _Growing(COARSE.count)
+    station_minute_rt: dict = field(default_factory=dict)   # station -> _Growing(COARSE.count, np.int32)
     station_minute_max: dict = field(default_factory=dict)  # station -> _Growing(1, float, nan)
     bus_minutes: _Growing = field(default_factory=lambda: _Growing(len(BUS_MINUTE_COLUMNS) + len(EVENT_KINDS),
                                                                     np.float64))
@@ -310,7 +310,7 @@ class Accumulator:
             data[m0:n_min] += counts[j]
             tsel = timed & (compact == j)
             if tsel.any():
-                hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count)).ensure(n_min)
+                hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count, np.int32)).ensure(n_min)
                 hist[m0:n_min] += np.bincount(rel[tsel] * COARSE.count + rt_bin[tsel],
                                               minlength=n_rel * COARSE.count).reshape(n_rel, COARSE.count)
                 mx = self.station_minute_max.setdefault(st, _Growing(1, np.float64, np.nan)).ensure(n_min)
