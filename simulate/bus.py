@@ -331,7 +331,8 @@ class Bus:
             code = st.exception_codes[int(u() * len(st.exception_codes))]
             raw = exception_frame(st.address, poll.function, code)
         else:
-            raw = response_frame(st.address, poll, request, self.values.take(response_data_length(poll)))
+            raw = response_frame(st.address, poll, request, self.values.take(response_data_length(poll)),
+                                 st.device_id.encode("utf-8"))
         gap_at, gap_ns = -1, 0
         if st.gap_rate and u() < st.gap_rate and len(raw) > 2:
             gap_at = 1 + int(u() * (len(raw) - 2))

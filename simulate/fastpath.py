@@ -66,8 +66,9 @@ class PlainSchedule:
         self.fixed = np.array([s.response.fixed_ms if s else 0.0 for s in st])
         self.jitter = np.array([s.response.jitter_ms if s else 0.0 for s in st])
         self.exc_rate = np.array([s.exception_rate if s else 0.0 for s in st])
-        self.resp_len = np.array([len(response_frame(p.station, p, bus.requests[i], bytes(256)))
-                                  for i, p in enumerate(polls)], dtype=np.int64)
+        self.resp_len = np.array([len(response_frame(p.station, p, bus.requests[i], bytes(256),
+                                                     s.device_id.encode("utf-8") if s else b""))
+                                  for i, (p, s) in enumerate(zip(polls, st))], dtype=np.int64)
         self.cycle = 0
         self.cycle_start = bus.t
 
@@ -145,7 +146,7 @@ class PlainSchedule:
                 for r, fr in zip(rows.tolist(), frames):
                     out[r] = fr.tobytes()
             else:
-                fixed = response_frame(st.address, poll, bus.requests[e], b"")
+                fixed = response_frame(st.address, poll, bus.requests[e], b"", st.device_id.encode("utf-8"))
                 for r in rows.tolist():
                     out[r] = fixed
             for r in np.flatnonzero((entry == e) & exc).tolist():

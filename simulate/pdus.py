@@ -19,6 +19,10 @@ def request_frame(poll: Poll) -> bytes:
         nbytes = (poll.quantity + 7) // 8
         values = bytes((poll.value >> (8 * (i % 2))) & 0xFF for i in range(nbytes))
         pdu = struct.pack(">BHHB", fc, poll.start, poll.quantity, nbytes) + values
+    elif fc == 17:
+        pdu = bytes((fc,))
+    elif fc == 43:
+        pdu = bytes((fc, 0x0E, 0x01, 0x00))  # MEI type 14, read code 01 (basic), from object 0 (MAP V1.1b3 p43)
     else:  # 16
         pdu = struct.pack(">BHHB", fc, poll.start, poll.quantity, 2 * poll.quantity) + \
             struct.pack(">H", poll.value) * poll.quantity
@@ -34,9 +38,18 @@ def response_data_length(poll: Poll) -> int:
     return 0
 
 
-def response_frame(address: int, poll: Poll, request: bytes, data: bytes) -> bytes:
-    """A normal response from ``address``; ``data`` supplies the values of a read."""
+def response_frame(address: int, poll: Poll, request: bytes, data: bytes, device_id: bytes = b"") -> bytes:
+    """A normal response from ``address``; ``data`` supplies the values of a read, ``device_id`` the
+    identification text of FC 17 and FC 43/14."""
     fc = poll.function
+    if fc == 17:
+        # byte count, server id (device specific: the text), run indicator 0xFF = ON (MAP V1.1b3 p31)
+        return append_crc(bytes((address, fc, len(device_id) + 1)) + device_id + b"\xff")
+    if fc == 43:
+        # MEI 14, read code 01, conformity 01, no more follows, next object 0, one object: 0 (vendor name)
+        # with its length and value (MAP V1.1b3 p43-44)
+        return append_crc(bytes((address, fc, 0x0E, 0x01, 0x01, 0x00, 0x00, 0x01, 0x00, len(device_id)))
+                          + device_id)
     if fc in (1, 2, 3, 4):
         n = response_data_length(poll)
         return append_crc(bytes((address, fc, n)) + data[:n])

@@ -23,7 +23,12 @@ from buswitness.errors import InputFileError, SerialFormatError, UsageError
 READ_FUNCTIONS = (1, 2, 3, 4)
 WRITE_SINGLE_FUNCTIONS = (5, 6)
 WRITE_MULTIPLE_FUNCTIONS = (15, 16)
-POLL_FUNCTIONS = READ_FUNCTIONS + WRITE_SINGLE_FUNCTIONS + WRITE_MULTIPLE_FUNCTIONS
+#: Requests a station answers with its identification text: report server ID (FC 17) and read
+#: device identification (FC 43, MEI type 14) (MAP V1.1b3 p31 and p43).
+IDENT_FUNCTIONS = (17, 43)
+POLL_FUNCTIONS = READ_FUNCTIONS + WRITE_SINGLE_FUNCTIONS + WRITE_MULTIPLE_FUNCTIONS + IDENT_FUNCTIONS
+#: Longest identification text a simulated station sends (it must fit one frame).
+MAX_DEVICE_ID_BYTES = 200
 #: Quantity limits per function code (MAP V1.1b3 p11-31).
 QUANTITY_LIMITS = {1: 2000, 2: 2000, 3: 125, 4: 125, 15: 1968, 16: 123}
 #: Exception codes a station may answer with (MAP V1.1b3 p48-49).
@@ -55,6 +60,7 @@ class Station:
     absent: bool = False
     gap_rate: float = 0.0       # fraction of responses with a silence inside the frame
     gap_chars: float = 3.0      # that silence, in character times (over t1.5 when > 1.5)
+    device_id: str = ""         # text answered to FC 17 and FC 43/14 (UTF-8 on the wire)
 
 
 @dataclass(frozen=True)
@@ -275,7 +281,7 @@ class _Checker:
     def station(self, data: Any, path: str) -> Station:
         data = self.table(data, path)
         self.known(data, path, {"address", "name", "position_m", "response", "exception_rate", "exception_codes",
-                                "bit_error_rate", "absent", "gap_rate", "gap_chars"})
+                                "bit_error_rate", "absent", "gap_rate", "gap_chars", "device_id"})
         if "address" not in data:
             raise self.fail(f"{path}.address", "every station needs an address from 1 to 247")
         address = self.integer(data, "address", path, 0, 1, 247)
@@ -292,6 +298,9 @@ class _Checker:
         absent = data.get("absent", False)
         if not isinstance(absent, bool):
             raise self.fail(f"{path}.absent", "must be true or false")
+        device_id = data.get("device_id", "")
+        if not isinstance(device_id, str) or len(device_id.encode("utf-8")) > MAX_DEVICE_ID_BYTES:
+            raise self.fail(f"{path}.device_id", f"must be text of at most {MAX_DEVICE_ID_BYTES} bytes (UTF-8)")
         return Station(
             address=address, name=name,
             position_m=self.number(data, "position_m", path, 0.0, 0.0, 10000.0),
@@ -306,6 +315,7 @@ class _Checker:
             absent=absent,
             gap_rate=self.number(data, "gap_rate", path, 0.0, 0.0, 1.0),
             gap_chars=self.number(data, "gap_chars", path, 3.0, 0.0, 1000.0),
+            device_id=device_id,
         )
 
     def master(self, data: dict, addresses: set[int]) -> Master:
