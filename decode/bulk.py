@@ -11,6 +11,9 @@ the stream is regular again. The two paths give the same frames on the same byte
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Sequence
+from typing import overload
+
 import numpy as np
 
 from buswitness.decode.crc import crc16_rows
@@ -141,29 +144,82 @@ def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: b
     return s[:n_ok], n[:n_ok], sh, expect_response
 
 
-def frame_only(payload: bytes | np.ndarray) -> int:
-    """Frame a byte stream with no timing (bulk path plus sequential fallback); return the frame count.
+class SpanTable(Sequence[Span]):
+    """Framing results as columns (``start``, ``end``, ``shape``, ``at_boundary``), viewed as Spans."""
 
-    The framing-only figure for the benchmark: CRC-valid frames found, nothing else built.
-    """
+    def __init__(self, start: np.ndarray, end: np.ndarray, shape: np.ndarray, at_boundary: np.ndarray) -> None:
+        self.start, self.end, self.shape, self.at_boundary = start, end, shape, at_boundary
+
+    def __len__(self) -> int:
+        return int(self.start.shape[0])
+
+    @overload
+    def __getitem__(self, i: int) -> Span: ...
+
+    @overload
+    def __getitem__(self, i: slice) -> "SpanTable": ...
+
+    def __getitem__(self, i: int | slice) -> "Span | SpanTable":
+        if isinstance(i, slice):
+            return SpanTable(self.start[i], self.end[i], self.shape[i], self.at_boundary[i])
+        return Span(int(self.start[i]), int(self.end[i]), int(self.shape[i]), bool(self.at_boundary[i]))
+
+    def __iter__(self) -> Iterator[Span]:
+        for a, b, sh, ab in zip(self.start.tolist(), self.end.tolist(), self.shape.tolist(),
+                                self.at_boundary.tolist()):
+            yield Span(a, b, sh, ab)
+
+    @property
+    def frame_count(self) -> int:
+        return int(np.count_nonzero(self.shape))
+
+
+def split_spans(payload: bytes | np.ndarray) -> SpanTable:
+    """Frame a byte stream with no timing: the bulk walk where traffic is regular, the sequential
+    framer elsewhere. Same spans as :meth:`RegionScanner.scan` over the whole input as one region."""
     arr = np.frombuffer(bytes(payload), dtype=np.uint8) if not isinstance(payload, np.ndarray) else payload
     buf = arr.tobytes()
     end = len(buf)
-    count, p, expect = 0, 0, False
+    starts: list[np.ndarray] = []
+    ends: list[np.ndarray] = []
+    shapes: list[np.ndarray] = []
+    bounds: list[np.ndarray] = []
+    expect = False
     scanner = RegionScanner()
-    while p < end:
-        starts, lens, _shapes, expect = bulk_spans(buf, arr, p, end, expect)
-        if starts.size:
-            count += starts.size
-            p = int(starts[-1] + lens[-1])
+    while scanner.pos < end:
+        if scanner.junk_start is None:
+            s, n, sh, expect = bulk_spans(buf, arr, scanner.pos, end, expect)
+            if s.size:
+                starts.append(s)
+                ends.append(s + n)
+                shapes.append(sh)
+                bounds.append(np.zeros(s.size, dtype=bool))
+                scanner.pos = int(s[-1] + n[-1])
+                scanner.anchored = True
+                scanner.known_addresses.update(np.unique(arr[s]).tolist())
+        before = scanner.pos
         out: list[Span] = []
-        scanner.pos, scanner.junk_start, scanner.anchored = p, None, True
         scanner.scan(buf, end, True, out, frames=2)
-        frames = [s for s in out if s.shape]
-        count += len(frames)
-        if frames:
-            expect = frames[-1].shape == REQUEST if frames[-1].shape != EITHER else not expect
-        if scanner.pos <= p:
+        if out:
+            starts.append(np.array([x.start for x in out], dtype=np.int64))
+            ends.append(np.array([x.end for x in out], dtype=np.int64))
+            shapes.append(np.array([x.shape for x in out], dtype=np.int8))
+            bounds.append(np.array([x.at_boundary for x in out], dtype=bool))
+            last = next((x.shape for x in reversed(out) if x.shape), 0)
+            if last:
+                expect = last == REQUEST if last != EITHER else not expect
+        elif scanner.pos == before:
             break
-        p = scanner.pos
-    return count
+    if not starts:
+        empty = np.zeros(0, dtype=np.int64)
+        return SpanTable(empty, empty, np.zeros(0, dtype=np.int8), np.zeros(0, dtype=bool))
+    return SpanTable(np.concatenate(starts), np.concatenate(ends), np.concatenate(shapes).astype(np.int8),
+                     np.concatenate(bounds))
+
+
+def frame_only(payload: bytes | np.ndarray) -> int:
+    """Frame a byte stream with no timing and return the number of CRC-valid frames.
+
+    The framing-only figure for the benchmark: frames found, nothing else built.
+    """
+    return split_spans(payload).frame_count

@@ -17,6 +17,7 @@ random noise from inventing stations.
 from __future__ import annotations
 
 from bisect import bisect_left
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 from buswitness.decode.crc import crc16_modbus
@@ -37,6 +38,11 @@ class Span:
     shape: int
     at_boundary: bool = False  # damaged run that ends at a certain silence (or the end of input)
     crosses: bool = False  # frame with a certain silence inside it
+
+    @property
+    def kind(self) -> str:
+        """``frame`` or ``damage``."""
+        return "frame" if self.shape else "damage"
 
 
 def _valid(buf: bytes, p: int, n: int) -> bool:
@@ -219,15 +225,15 @@ class RegionScanner:
         return False
 
 
-def split_frames(data: bytes) -> list[Span]:
+def split_frames(data: bytes) -> Sequence[Span]:
     """Frame a byte string with no timing at all (one region): frames and damage runs in order.
 
-    This is the framing-only entry point: no timestamps, no pairing.
+    The framing-only entry point: no timestamps, no pairing. The result is column-backed
+    (``.start``, ``.end``, ``.shape`` numpy arrays) and iterates as :class:`Span` objects.
     """
-    scanner = RegionScanner()
-    out: list[Span] = []
-    scanner.scan(bytes(data), len(data), True, out)
-    return out
+    from buswitness.decode.bulk import split_spans
+
+    return split_spans(data)
 
 
 def explained_fraction(data: bytes) -> float:
@@ -238,5 +244,6 @@ def explained_fraction(data: bytes) -> float:
     """
     if not data:
         return 0.0
-    covered = sum(s.end - s.start for s in split_frames(data) if s.shape)
+    spans = split_frames(data)
+    covered = sum(s.end - s.start for s in spans if s.shape)
     return covered / len(data)

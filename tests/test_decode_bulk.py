@@ -3,13 +3,15 @@
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, strategies as st
 
 from buswitness.capture.fileformat import Record, RecordBatch
 from buswitness.decode import Decoder, DecoderConfig, append_crc
 from buswitness.decode.bulk import frame_only
-from buswitness.decode.framer import split_frames
+from buswitness.decode.framer import RegionScanner, split_frames
 from buswitness.decode.tables import DecodeOutput
 
+from test_decode_properties import VECTORS
 from test_decode_wire import FMT_19200, deliver
 
 
@@ -86,8 +88,23 @@ def test_simulated_captures_decode_the_same_in_bulk_and_record_by_record(name, s
     _both_ways(list(res.batches()), DecoderConfig.from_header(res.header, response_timeout_ms=sc.master.timeout_ms))
 
 
-def test_framing_only_counts_what_the_sequential_framer_finds():
+def _sequential(data: bytes) -> list[tuple[int, int, int]]:
+    scanner = RegionScanner()
+    out: list = []
+    scanner.scan(data, len(data), True, out)
+    return [(s.start, s.end, s.shape) for s in out]
+
+
+def test_bulk_framing_gives_the_sequential_framers_spans():
     stream = b"".join(raw for _, raw in _poll_stream(5))
-    noisy = stream[:500] + b"\x13\x37\xff" + stream[500:]
-    for data in (stream, noisy):
-        assert frame_only(data) == sum(1 for s in split_frames(data) if s.shape)
+    noisy = stream[:500] + b"\x13\x37\xff" + stream[500:1200] + bytes(40) + stream[1200:]
+    for data in (stream, noisy, stream[:-3]):
+        spans = split_frames(data)
+        assert [(s.start, s.end, s.shape) for s in spans] == _sequential(data)
+        assert frame_only(data) == sum(1 for s in spans if s.kind == "frame")
+
+
+@given(st.lists(st.one_of(st.sampled_from(VECTORS), st.binary(max_size=6)), max_size=40))
+def test_bulk_framing_matches_the_sequential_framer_on_any_mix_of_frames_and_noise(parts):
+    data = b"".join(parts)
+    assert [(s.start, s.end, s.shape) for s in split_frames(data)] == _sequential(data)
