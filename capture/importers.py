@@ -34,6 +34,10 @@ from buswitness.errors import InputFileError, UsageError
 
 #: Timestamps above this are taken as UNIX epoch seconds (1973-03-03), below as relative.
 EPOCH_THRESHOLD_S = 1e8
+#: Latest first time read as a calendar time (the end of year 9999, the last a date can show).
+EPOCH_LIMIT_S = 253402300799.0
+#: Largest time since the start a line may carry: the nanoseconds must fit an int64 (about 292 years).
+MAX_OFFSET_S = 9.2e9
 BATCH_RECORDS = 65536
 RAW_RECORD_BYTES = 256
 _SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$", re.IGNORECASE)
@@ -105,7 +109,7 @@ class HexTextSource:
                 break
         serial = self.serial or SerialFormat.parse(fmt, baud)
         start_utc = ""
-        self._epoch = first_t is not None and first_t > EPOCH_THRESHOLD_S
+        self._epoch = first_t is not None and EPOCH_THRESHOLD_S < first_t <= EPOCH_LIMIT_S
         self._t0 = first_t if self._epoch else 0.0
         if self._epoch and first_t is not None:
             start_utc = datetime.fromtimestamp(first_t, timezone.utc).isoformat(timespec="microseconds")
@@ -146,7 +150,10 @@ class HexTextSource:
                 raise ValueError
         except ValueError:
             problem = f"the time {parts[0][:20]!r} is not a number of seconds"
-        else:
+            seconds = self._t0
+        if not abs(seconds - self._t0) <= MAX_OFFSET_S:
+            problem = f"the time {parts[0][:20]!r} is out of range (more than 292 years from the start)"
+        if not problem:
             t_ns = int(round((seconds - self._t0) * 1e9))
             if t_ns < last_t:
                 problem = "the time goes backwards"
