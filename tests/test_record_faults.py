@@ -3,6 +3,7 @@ a writer that falls behind, and the adapter latency timer in sysfs."""
 
 from __future__ import annotations
 
+import os
 import resource
 import shutil
 import signal
@@ -71,7 +72,7 @@ def test_output_directory_removed_mid_capture_is_reported_and_the_data_rescued(t
     rescue_dir.mkdir()
     out = outdir / "night.bwcap"
     payload = sample_bytes(5000, seed=12)
-    env = {**__import__("os").environ, "TMPDIR": str(rescue_dir)}
+    env = {**os.environ, "TMPDIR": str(rescue_dir)}
     with PtyAdapter(tmp_path / "ttyD") as adapter:
         proc = record_proc([str(adapter.link), "-o", str(out), "--quiet"], env=env)
         wait_for_file(out, proc)
@@ -176,3 +177,34 @@ def test_port_that_cannot_be_opened_at_start_raises_device_error(tmp_path):
     with pytest.raises(DeviceError, match="no such serial port"):
         Recorder(cfg).start()
     assert not (tmp_path / "n.bwcap").exists()
+
+
+def test_low_latency_on_a_port_without_the_setting_says_so_and_records_anyway(tmp_path):
+    seen: list[str] = []
+    with PtyAdapter(tmp_path / "ttyLL") as adapter:
+        cfg = RecorderConfig(devices=[str(adapter.link)], bus=SerialFormat(), output=tmp_path / "ll.bwcap",
+                             low_latency=True, sysfs_root=str(tmp_path / "sys"))
+        rec = Recorder(cfg, on_message=seen.append)
+        rec.start()
+        adapter.send(b"abc", 115200)
+        time.sleep(0.3)
+        rec.join()
+    assert any("low-latency flag" in m or "no latency timer setting" in m for m in seen), seen
+    header = CaptureReader(tmp_path / "ll.bwcap").header
+    assert header.ports[0].latency_source == "unknown" and header.ports[0].latency_ms is None
+
+
+def test_latency_from_sysfs_is_kept_in_the_header_with_a_warning_above_2_ms(tmp_path, monkeypatch):
+    seen: list[str] = []
+    with PtyAdapter(tmp_path / "ttyUSB7") as adapter:
+        # The pty's kernel name is pts/N: give the fake sysfs that name.
+        name = os.path.basename(os.path.realpath(adapter.link))
+        _fake_sysfs(tmp_path / "sys", name, "16\n")
+        cfg = RecorderConfig(devices=[str(adapter.link)], bus=SerialFormat(), output=tmp_path / "lat.bwcap",
+                             sysfs_root=str(tmp_path / "sys"))
+        rec = Recorder(cfg, on_message=seen.append)
+        rec.start()
+        rec.join()
+    port = CaptureReader(tmp_path / "lat.bwcap").header.ports[0]
+    assert (port.latency_ms, port.latency_source) == (16.0, "sysfs")
+    assert any("latency timer is 16 ms" in m and "coarse" in m for m in seen), seen
