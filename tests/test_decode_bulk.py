@@ -108,3 +108,14 @@ def test_bulk_framing_gives_the_sequential_framers_spans():
 def test_bulk_framing_matches_the_sequential_framer_on_any_mix_of_frames_and_noise(parts):
     data = b"".join(parts)
     assert [(s.start, s.end, s.shape) for s in split_frames(data)] == _sequential(data)
+
+
+def test_two_bytes_per_step_crc_matches_crcmod():
+    # crcmod's predefined "modbus" CRC as the reference; odd and even lengths
+    import crcmod.predefined
+    ref = crcmod.predefined.mkPredefinedCrcFun("modbus")
+    from buswitness.decode.bulk import crc_of_rows
+    rng = np.random.default_rng(4)
+    for length in (1, 4, 7, 8, 25, 256):
+        rows = rng.integers(0, 256, size=(50, length), dtype=np.uint8)
+        assert crc_of_rows(rows).tolist() == [ref(r.tobytes()) for r in rows]
