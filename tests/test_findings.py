@@ -357,3 +357,17 @@ def test_every_rule_and_threshold_is_documented():
         assert f"`{rule}`" in text, rule
     for f in fields(Thresholds):
         assert f.name.upper() in text, f.name
+
+
+def test_burst_hidden_under_a_duplicate_addresses_damage_is_found_on_the_other_stations():
+    def fate(st, k, t):
+        if st == 3 and k % 2 == 0:
+            return ("corrupt", 12.0)  # a chronic fault on one address, every minute alike
+        if st in (1, 2) and 240 <= t < 250:
+            return ("corrupt", 12.0)  # ten seconds of noise at 4 min
+        return None
+    fights = [(0.1 + 1.0 * i, "line_error", 3, b"\x03\xff") for i in range(600)]
+    r = result_of(polls(600, fate=fate), fights)
+    found = line.errors_clustered(r, TH)
+    assert [(f.t_start_s, f.t_end_s) for f in found] == [(240.0, 300.0)]
+    assert found[0].evidence["counted"] == "damaged answers"

@@ -114,6 +114,11 @@ def late_answers(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     return out
 
 
+def collision_budget(s: StationFigures) -> int:
+    """Polls a slow station's too-late answers can have damaged: one per late answer or timeout."""
+    return s.late + s.timeouts
+
+
 def late_collisions(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     """Late answers that overlap the next poll, damaging frames that are not the wire's fault."""
     out = []
@@ -123,18 +128,20 @@ def late_collisions(result: AnalysisResult, th: Thresholds) -> list[Finding]:
         orphans = s.events.get("orphan_response", 0) + s.events.get("unexpected_responder", 0)
         damaged_own = s.corrupt
         damaged_other = sum(o.corrupt for o in result.stations if o.address != s.address)
-        collateral = orphans + damaged_own + damaged_other
-        if collateral < th.min_events:
+        # each answer too late to count (late, or so late it reads as a timeout) overlaps at most one poll
+        explained = min(damaged_own + damaged_other, collision_budget(s))
+        if explained + orphans < th.min_events:
             continue
         t0, t1 = capture_span(result)
         out.append(Finding(
-            rule="late-collisions", severity="notice", score=share(collateral, result.bus.requests),
+            rule="late-collisions", severity="notice", score=share(explained + orphans, result.bus.requests),
             station=s.address, station_label=s.label, t_start_s=t0, t_end_s=t1,
             statement=(f"{s.late} of {s.label}'s answers came after the master had moved on and share the line "
-                       f"with the next poll: {damaged_other + damaged_own} damaged answers and {orphans} answers "
-                       f"nobody was waiting for are their consequence, not line noise."),
-            evidence={"late": s.late, "orphan_answers": orphans, "damaged_answers_this_station": damaged_own,
-                      "damaged_answers_other_stations": damaged_other},
+                       f"with the next poll: up to {explained} damaged answers and {orphans} answers nobody was "
+                       f"waiting for are their consequence, not line noise."),
+            evidence={"late": s.late, "timeouts": s.timeouts, "orphan_answers": orphans,
+                      "damaged_answers_this_station": damaged_own, "damaged_answers_other_stations": damaged_other,
+                      "damaged_answers_explained": explained},
             examples=[example(result, row) for row in result.late_answers(s.address)[:EXAMPLES]],
             causes=[Cause("The master sends its next request while this slow device is still answering.",
                           "Lengthen the master's timeout for this station (see the late-answers finding); the "

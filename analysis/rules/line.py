@@ -20,6 +20,7 @@ from buswitness.analysis.rules.common import (
     polled,
     share,
 )
+from buswitness.analysis.rules.lateness import collision_budget
 from buswitness.analysis.rules.thresholds import Thresholds
 
 
@@ -74,7 +75,8 @@ def unreadable_line(result: AnalysisResult, th: Thresholds) -> list[Finding]:
 
 
 def _late_budget(result: AnalysisResult, th: Thresholds) -> int:
-    return sum(s.late for s in polled(result, th) if s.late >= th.late_min_count)
+    """Damaged answers the slow stations' late answers can account for (see lateness.collision_budget)."""
+    return sum(collision_budget(s) for s in polled(result, th) if s.late >= th.late_min_count)
 
 
 def errors_bus_wide(result: AnalysisResult, th: Thresholds) -> list[Finding]:
@@ -192,6 +194,7 @@ def station_errors(result: AnalysisResult, th: Thresholds) -> list[Finding]:
 
 
 def _minute_damage(result: AnalysisResult) -> tuple[list[int], list[int]]:
+    """Damage events on the whole line per minute, and frames per minute."""
     series = result.bus_series()
     n = len(series["frames"])
     counts = [0] * n
@@ -201,20 +204,54 @@ def _minute_damage(result: AnalysisResult) -> tuple[list[int], list[int]]:
     return counts, series["frames"]
 
 
-def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
-    """Damage that keeps to a few minutes: an external noise source switching on."""
-    counts, frames = _minute_damage(result)
-    active = [m for m in range(len(counts)) if frames[m] or counts[m]]
-    total = sum(counts)
+def _minute_damaged_answers(result: AnalysisResult, th: Thresholds) -> list[int]:
+    """Damaged answers per minute of the stations without a chronic fault of their own.
+
+    A station that garbles a third of its answers all night (two devices on one address)
+    buries a short burst in the line's event counts; leaving it out lets the burst show.
+    """
+    counts = [0] * result.minutes()
+    for s in polled(result, th):
+        if damaged_share(s) >= th.duplicate_damaged_share:
+            continue
+        for m, v in enumerate(result.station_series(s.address)["corrupt"]):
+            counts[m] += int(v)
+    return counts
+
+
+def _bursts(counts: list[int], active: list[int], th: Thresholds) -> tuple[list[int], int, int, int] | None:
+    """(burst minutes, events in them, all events, baseline) when the counts keep to a few minutes."""
+    total = sum(counts[m] for m in active)
     if total < th.cluster_min_events or len(active) < 2:
-        return []
+        return None
     ordered = sorted(counts[m] for m in active)
     baseline = ordered[len(ordered) // 4]
     level = max(th.cluster_min_events, th.cluster_factor * (baseline + 1))
     bursts = [m for m in active if counts[m] >= level]
     in_bursts = sum(counts[m] for m in bursts)
     if not bursts or in_bursts < th.cluster_share * total or len(bursts) > th.cluster_max_minute_share * len(active):
+        return None
+    return bursts, in_bursts, total, baseline
+
+
+def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """Damage that keeps to a few minutes: an external noise source switching on.
+
+    Judged on the line's damage events per minute, else on the damaged answers of the stations
+    without a chronic fault of their own.
+    """
+    counts, frames = _minute_damage(result)
+    active = [m for m in range(len(counts)) if frames[m] or counts[m]]
+    what = "damage events"
+    found = _bursts(counts, active, th)
+    if found is None:
+        counts = _minute_damaged_answers(result, th)
+        counts += [0] * (len(frames) - len(counts))
+        what = "damaged answers"
+        found = _bursts(counts, active, th)
+    if found is None:
         return []
+    bursts, in_bursts, total, baseline = found
     clusters: list[list[int]] = []
     for m in bursts:
         if clusters and m == clusters[-1][-1] + 1:
@@ -234,10 +271,10 @@ def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     return [Finding(
         rule="errors-clustered", severity="warning", score=share(in_bursts, total),
         t_start_s=spans[0][0], t_end_s=spans[-1][1],
-        statement=(f"Line errors come in bursts: {in_bursts} of {total} damage events fall in {len(bursts)} "
+        statement=(f"Line errors come in bursts: {in_bursts} of {total} {what} fall in {len(bursts)} "
                    f"minute(s) (at {times}){every}; the line is clean in between: an external noise source "
                    f"switching on is the likely cause."),
-        evidence={"damage_events": total, "in_bursts": in_bursts, "baseline_per_minute": baseline,
+        evidence={"counted": what, "total": total, "in_bursts": in_bursts, "baseline_per_minute": baseline,
                   "bursts": [{"t_start_s": a, "t_end_s": b, "events": sum(counts[m] for m in c)}
                              for (a, b), c in zip(spans, clusters)],
                   "period_min": round(sum(steps) / len(steps), 1) if recurring else None},
