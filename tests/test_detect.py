@@ -143,3 +143,24 @@ def test_port_sampler_reads_what_arrives_at_each_setting(tmp_path):
         feeder.join()
     assert b"".join(r.data for r in records) == frame * 20
     assert detect.score_observation(SerialFormat.parse("8E1", 19200), detect.Observation.of(records)).value == 1.0
+
+
+def test_detect_command_on_a_port_prints_the_ranking_and_best_guess(tmp_path):
+    frame = append_crc(bytes([7, 3, 0, 10, 0, 2]))
+    with PtyAdapter(tmp_path / "ttyDC") as adapter:
+        proc = subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "detect", str(adapter.link),
+                                 "--bauds", "19200", "--formats", "8E1", "--seconds", "1.5"],
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+        def feed() -> None:  # keep the bus busy until detect has listened (start-up time varies)
+            while proc.poll() is None:
+                adapter.send(frame * 2, 19200)
+                time.sleep(0.05)
+
+        feeder = threading.Thread(target=feed)
+        feeder.start()
+        out, err = proc.communicate(timeout=60)
+        feeder.join()
+    assert proc.returncode == 0, err
+    assert "listen-only" in err
+    assert "19200 8E1" in out and "best guess: 19200 8E1" in out

@@ -15,6 +15,8 @@ import serial
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR
 from buswitness.capture.parmrk import ParmrkParser
 from buswitness.capture.serialport import enable_error_marking, is_pty
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 # (escaped input, expected segments) — termios(3) PARMRK rules.
 VECTORS = (
@@ -137,3 +139,47 @@ def test_real_pty_with_parity_keeps_marking_after_reconfiguration():
         ser.close()
         os.close(master)
         os.close(slave)
+
+
+def _escape(items):
+    """What the tty layer delivers for (byte, kind) items, kind in good/bad/break (termios(3) PARMRK)."""
+    out = bytearray()
+    for value, kind in items:
+        if kind == "break":
+            out += b"\xff\x00\x00"
+        elif kind == "bad":
+            out += bytes((0xFF, 0x00, value))
+        elif value == 0xFF:
+            out += b"\xff\xff"
+        else:
+            out.append(value)
+    return bytes(out)
+
+
+_items = st.lists(st.tuples(st.integers(0, 255), st.sampled_from(["good", "good", "good", "bad", "break"])),
+                  max_size=60)
+
+
+@settings(max_examples=300, deadline=None)
+@given(items=_items, cuts=st.lists(st.integers(0, 200), max_size=8))
+def test_any_stream_cut_anywhere_gives_back_its_bytes_marks_and_breaks(items, cuts):
+    raw = _escape(items)
+    parser = ParmrkParser()
+    segments = []
+    pos = 0
+    for cut in sorted(c for c in cuts if c <= len(raw)):
+        segments += parser.feed(raw[pos:cut])
+        pos = cut
+    segments += parser.feed(raw[pos:])
+    assert not parser.pending
+    expected = []
+    for value, kind in items:
+        if kind == "break":
+            expected.append((b"", FLAG_BREAK))
+        elif kind == "bad" and value != 0:
+            expected.append((bytes((value,)), FLAG_LINE_ERROR))
+        elif kind == "bad":
+            expected.append((b"", FLAG_BREAK))  # a marked NUL reads as FF 00 00, the same as a break
+        else:
+            expected.append((bytes((value,)), 0))
+    assert _merge(segments) == _merge(expected)
