@@ -371,3 +371,14 @@ def test_burst_hidden_under_a_duplicate_addresses_damage_is_found_on_the_other_s
     found = line.errors_clustered(r, TH)
     assert [(f.t_start_s, f.t_end_s) for f in found] == [(240.0, 300.0)]
     assert found[0].evidence["counted"] == "damaged answers"
+
+
+def test_an_empty_capture_has_no_findings():
+    assert evaluate(analyze_tables(header(), [])) == []
+
+
+def test_answers_at_twice_t35_are_not_suspected_of_a_short_turnaround():
+    txs = polls(120, stations=(1, 2), fate=lambda st, k, t: ("ok", 4.0) if st == 1 else None)  # 2 x t3.5 = 4.01 ms
+    for t in txs:
+        t.halfwidth_ms = 4.0
+    assert timing.possible_short_turnaround(result_of(txs), TH) == []

@@ -117,8 +117,9 @@ TURNAROUND_MIN_SHARE = 0.01
 GAP_MIN_SHARE = 0.05
 GAP_OVER_OTHERS = 3.0
 #: A median response time under this many t3.5 with timestamps too coarse to tell is reported as a
-#: possible short turnaround (common practice).
-TURNAROUND_SUSPECT_FACTOR = 2.0
+#: possible short turnaround (common practice: a device answering in 2 x t3.5 or more keeps t3.5
+#: with room to spare; between 1 and 1.5 x t3.5 its faster answers may not).
+TURNAROUND_SUSPECT_FACTOR = 1.5
 
 # -- exceptions -------------------------------------------------------------------------------------
 #: Share of requests answered with an exception that makes it a warning (common practice).
