@@ -183,9 +183,12 @@ def summary(rec: Recorder) -> str:
     elapsed = (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
     lines = []
     if w is not None:
-        parts = ", ".join(str(p) for p in w.parts) or "no file (nothing kept; -o records)"
-        lines.append(f"recorded {w.bytes_written} bytes in {w.records_written} records over "
-                     f"{_hms(elapsed)} into {parts}")
+        if w.parts:
+            lines.append(f"recorded {w.bytes_written} bytes in {w.records_written} records over "
+                         f"{_hms(elapsed)} into {', '.join(str(p) for p in w.parts)}")
+        else:
+            lines.append(f"received {w.bytes_written} bytes in {w.records_written} records over {_hms(elapsed)} "
+                         f"(nothing kept: give -o FILE to record as well)")
     for s in rec.stats:
         extra = []
         if s.line_errors:

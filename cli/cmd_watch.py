@@ -38,22 +38,24 @@ def _ms(value: float | None) -> str:
 
 
 def station_table(figures: RollingStations, rec: Recorder | None = None, note: str | None = None) -> object:
-    """The live table: one row per station, then the ports' byte counts."""
+    """The live table: one row per station; the ports' byte counts and any note underneath."""
     from rich.table import Table
 
-    table = Table(title="stations (live)", caption=note)
-    for col in ("station", "requests", "answered", "timeouts", "exceptions", "CRC failures", "last ms", "p95 ms"):
+    lines = []
+    if rec is not None:
+        elapsed = (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
+        for s in rec.stats:
+            rate = f", {s.bytes / elapsed:.0f} B/s" if elapsed > 0 else ""
+            state = " (gone, retrying)" if not s.connected else ""
+            lines.append(f"{s.name}: {s.bytes} B{rate}{state}")
+    if note:
+        lines.append(note)
+    table = Table(title="stations (live)", caption="\n".join(lines) or None)
+    for col in ("station", "requests", "answered", "timeouts", "exc.", "CRC err", "last ms", "p95 ms"):
         table.add_column(col, justify="right")
     for st in figures.rows():
         table.add_row(str(st.station), str(st.requests), str(st.answered), str(st.timeouts), str(st.exceptions),
                       str(st.crc_errors), _ms(st.last_response_ms), _ms(st.p95_ms))
-    if rec is not None:
-        elapsed = max(1e-9, (time.monotonic_ns() - rec.start_ns) / 1e9) if rec.start_ns else 0.0
-        for s in rec.stats:
-            state = "" if s.connected else " (gone, retrying)"
-            table.add_section()
-            table.add_row(s.name, f"{s.bytes} B", f"{s.bytes / elapsed:.0f} B/s" if elapsed else "-", "", "", "",
-                          "", state)
     return table
 
 
