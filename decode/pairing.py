@@ -6,8 +6,8 @@ Invariants (they hold after every input):
    so a new request ends the wait for the previous one (the master moved on).
 2. Every request frame becomes exactly one transaction; a retry is a transaction of its own.
 3. A transaction leaves the machine (is emitted) in request order, and only once its outcome
-   can no longer change. A ``timeout`` may still turn ``late`` while it is among the last
-   :data:`LATE_WINDOW` requests; after that it is final.
+   can no longer change. A ``timeout`` may still turn ``late`` for :data:`LATE_WINDOW_NS`
+   (ten response timeouts when that is longer) and at most :data:`LATE_WINDOW` requests.
 4. A response is credited to a request only when station and function agree; anything else
    is an event (``unexpected_responder`` or ``orphan_response``), never a guess.
 5. Frames arrive here in time order, with their direction already fixed by the port or
@@ -45,8 +45,10 @@ from dataclasses import dataclass, replace
 from buswitness.decode.events import Damage, Frame, Transaction
 from buswitness.decode.lengths import REQUEST, RESPONSE
 
-#: How many later requests a timed-out transaction waits for a late answer before it is final.
-LATE_WINDOW = 4
+#: How long (and for how many later requests at most) a timed-out transaction waits for a
+#: late answer before it is final: slow stations answer up to seconds late.
+LATE_WINDOW_NS = 5_000_000_000
+LATE_WINDOW = 64
 
 #: Damage kinds that mean "an answer was on the line but unusable" when they follow a request.
 ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision", "stray_bytes", "line_error", "break"})
@@ -144,9 +146,10 @@ class Pairing:
         retry = (self.last_request is not None and self.last_failed and self.last_request.raw == req.raw)
         self.last_request = req
         self.last_failed = False
+        window = max(LATE_WINDOW_NS, 10 * (self.timeout_ns or 0))
         for slot in self.slots:
             slot.age += 1
-            if slot.age >= LATE_WINDOW:
+            if slot.age >= LATE_WINDOW or req.t_end_ns - slot.txn.t_request_end_ns > window:
                 slot.final = True
         if req.address == 0:
             self.slots.append(_Slot(Transaction(0, req.function, "broadcast", req.t_end_ns, req.raw,

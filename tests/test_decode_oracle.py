@@ -78,10 +78,7 @@ def test_pumpstation_frames_outcomes_and_response_times_match_truth(latency_ms):
     differ = (ours != t.outcome.to_numpy()) & ~_sniffer_saw_it_intact(t, truth.frames)
     print(f"\npumpstation {latency_ms} ms: {len(t)} transactions, outcomes differ in {differ.sum()}: "
           f"{Counter(zip(t.outcome[differ], ours[differ]))}")
-    # The only other difference left: an answer after the master's retry, which truth credits to the
-    # first attempt (late) and the wire alone cannot place.
-    assert set(zip(t.outcome[differ], ours[differ])) <= {("late", "timeout")}
-    assert differ.sum() <= 0.002 * len(t)
+    assert differ.sum() == 0
     med, p95, covered = _report(f"pumpstation {latency_ms} ms", t, txns, j)
     assert covered >= 0.95
     assert med <= (3.0 if latency_ms > 2 else 0.25)
@@ -99,3 +96,17 @@ def test_noisy_hour_invents_no_frame_and_loses_none():
     differ = (ours != t.outcome.to_numpy()) & ~_sniffer_saw_it_intact(t, truth.frames)
     assert differ.sum() == 0
     _report("noisy 1 h, 16 ms", t, txns, j)
+
+
+def test_late_answers_are_credited_to_their_request():
+    # A station answering up to a second late, after the master's 200 ms timeout and its retry.
+    truth, frames, txns = _run("fault-late", 300, 16.0)
+    t, j = _match(truth.transactions, txns)
+    ours = txns.outcome.astype(str).to_numpy()[j]
+    differ = (ours != t.outcome.to_numpy()) & ~_sniffer_saw_it_intact(t, truth.frames)
+    print(f"\nfault-late: {len(t)} transactions, outcomes differ in {differ.sum()}: "
+          f"{Counter(zip(t.outcome[differ], ours[differ]))}")
+    # An answer arriving after an identical retry may answer either attempt; truth knows, the wire
+    # does not. Everything else must agree.
+    assert (t.outcome == "late").sum() > 50
+    assert differ.sum() <= 0.01 * len(t)
