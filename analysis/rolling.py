@@ -121,6 +121,10 @@ class RollingStations:
         return [self.stations[k] for k in sorted(self.stations)]
 
 
+#: Records waiting for the live decoder beyond which it is switched off (it cannot keep up).
+MAX_PENDING_RECORDS = 200_000
+
+
 class LiveDecoder:
     """Feed recorded records to the project's decoder, if this build has one, and keep rolling counts.
 
@@ -153,6 +157,10 @@ class LiveDecoder:
         if self.disabled_reason is None:
             with self._lock:
                 self._pending.append(self._record_cls(port, t_ns, data, flags))
+                if len(self._pending) > MAX_PENDING_RECORDS:
+                    self._pending = []
+                    self.disabled_reason = ("live station figures stopped: the decoder could not keep up with "
+                                            "the traffic (the recording is not affected)")
 
     def update(self) -> None:
         """Decode what was queued since the last call and add it to the figures."""

@@ -91,3 +91,17 @@ def test_watch_shows_the_stations_it_hears_and_records_at_the_same_time(tmp_path
     row = next(line for line in stdout.splitlines() if line.strip("│ ").startswith("9 "))
     cells = [c.strip() for c in row.strip("│").split("│")]
     assert cells[:4] == ["9", "6", "6", "0"]
+
+
+def test_live_decoder_that_falls_behind_switches_itself_off(monkeypatch):
+    from buswitness.analysis import rolling
+
+    header = CaptureHeader.new(SerialFormat.parse("8E1", 19200), [PortInfo(0, "p")])
+    dec = LiveDecoder.create(header)
+    if dec is None:
+        pytest.skip("the decoder is not in this build")
+    monkeypatch.setattr(rolling, "MAX_PENDING_RECORDS", 10)
+    for i in range(11):
+        dec.add(0, header.start_monotonic_ns + i, b"\x01", 0)
+    assert dec.disabled_reason is not None and "could not keep up" in dec.disabled_reason
+    dec.update()  # nothing left to decode, no error
