@@ -430,14 +430,18 @@ class ReadReport:
     bad_block_records: int = 0            #: records in damaged blocks (lost), where the count was readable
     bytes_skipped: int = 0                #: file bytes passed over while resynchronising
     missing_parts: list[int] = field(default_factory=list)
+    lines_skipped: int = 0                #: malformed hex-text lines skipped (--on-bad-line skip)
     warnings: list[str] = field(default_factory=list)
 
     @property
     def clean(self) -> bool:
-        return not (self.truncated_tail or self.bad_blocks or self.bytes_skipped or self.missing_parts)
+        return not (self.truncated_tail or self.bad_blocks or self.bytes_skipped or self.missing_parts
+                    or self.lines_skipped)
 
     def summary(self) -> str:
         lines = [f"{self.records} records, {self.data_bytes} bytes in {self.blocks} blocks, {len(self.files)} file(s)"]
+        if self.lines_skipped:
+            lines.append(f"{self.lines_skipped} malformed line{'s' if self.lines_skipped != 1 else ''} skipped")
         lines.extend(self.warnings)
         return "\n".join(lines)
 

@@ -44,6 +44,8 @@ _SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$
 _HEX_TOKEN = re.compile(r"^(?:0x)?([0-9A-Fa-f]{2})+$")
 
 ON_BAD_LINE = ("stop", "skip")
+#: Skipped lines described one by one in the report; past this only the count grows.
+MAX_LINE_WARNINGS = 20
 
 
 @dataclass
@@ -140,6 +142,10 @@ class HexTextSource:
                     t_list, lengths, payload = [], [], bytearray()
         if t_list:
             yield self._batch(t_list, lengths, payload)
+        more = self.report.lines_skipped - MAX_LINE_WARNINGS
+        if more > 0:
+            self.report.warnings.append(f"{self.path}: {more} more malformed line{'s' if more != 1 else ''} "
+                                        f"skipped ({self.report.lines_skipped} in all)")
 
     def _parse_line(self, s: str, lineno: int, last_t: int) -> tuple[int, bytes] | None:
         parts = s.split()
@@ -174,7 +180,9 @@ class HexTextSource:
         message = f"line {lineno}: {problem}"
         if self.on_bad_line == "stop":
             raise InputFileError(self.path, message, "fix the line, or pass --on-bad-line skip to skip bad lines")
-        self.report.warnings.append(f"{self.path}: {message}; line skipped")
+        self.report.lines_skipped += 1
+        if self.report.lines_skipped <= MAX_LINE_WARNINGS:
+            self.report.warnings.append(f"{self.path}: {message}; line skipped")
         self.report.bytes_skipped += len(s)
         return None
 
