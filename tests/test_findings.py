@@ -51,11 +51,6 @@ def rules_of(findings) -> list[str]:
     return [f.rule for f in findings]
 
 
-def every(n: int):
-    """A fate: every n-th poll of a station (by poll number)."""
-    return lambda k: k % n == 0
-
-
 # -- late answers ---------------------------------------------------------------------------------------
 
 def _late_fate(station: int, share_every: int, late_ms: float = 260.0):
@@ -282,14 +277,14 @@ def test_gaps_inside_one_stations_frames_are_reported_above_the_others():
 
 # -- exceptions and load --------------------------------------------------------------------------------
 
-def _exceptions(code: int, every_n: int):
+def _exceptions(every_n: int):
     return lambda st, k, t: ("exception", 11.0) if st == 2 and k % every_n == 0 else None
 
 
 def test_exceptions_are_named_by_code_and_02_means_a_register_map_mismatch():
     r = analyze_tables(header(), [tables([Tx(t.t_s, t.station, t.outcome, t.response_ms,
                                              exception_code=2 if t.outcome == "exception" else 0)
-                                          for t in polls(300, fate=_exceptions(2, 50))])],
+                                          for t in polls(300, fate=_exceptions(50))])],
                        AnalysisOptions(timeout_ms=200))
     (f,) = exception_codes.exceptions(r, TH)
     assert f.severity == "warning" and "code 02 illegal data address" in f.statement  # MAP p48
@@ -299,7 +294,7 @@ def test_exceptions_are_named_by_code_and_02_means_a_register_map_mismatch():
 @pytest.mark.parametrize(("code", "every_n", "severity"), [(6, 250, "notice"), (4, 250, "warning"), (6, 90, "warning")])
 def test_exception_severity_follows_rate_and_device_fault_codes(code, every_n, severity):
     txs = [Tx(t.t_s, t.station, t.outcome, t.response_ms, exception_code=code if t.outcome == "exception" else 0)
-           for t in polls(600, fate=_exceptions(code, every_n))]
+           for t in polls(600, fate=_exceptions(every_n))]
     (f,) = exception_codes.exceptions(analyze_tables(header(), [tables(txs)], AnalysisOptions(timeout_ms=200)), TH)
     assert f.severity == severity
 

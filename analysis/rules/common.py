@@ -29,6 +29,7 @@ def pct(x: float) -> str:
 
 
 def ms(v: float | None) -> str:
+    """A time in ms as a statement writes it: 0.7 ms, 58 ms, "-" when unknown."""
     if v is None:
         return "-"
     return f"{v:.0f} ms" if v >= 10 else f"{v:.1f} ms"
@@ -41,6 +42,7 @@ def clock(result: AnalysisResult, t_s: float) -> str:
 
 
 def span_text(result: AnalysisResult, t0: float, t1: float) -> str:
+    """"22:01 UTC to 22:03 UTC" (or minutes into the capture when it has no UTC anchor)."""
     return f"{clock(result, t0)} to {clock(result, t1)}"
 
 
@@ -55,10 +57,12 @@ def damaged_share(s: StationFigures) -> float:
 
 
 def line_damage_events(events: dict) -> int:
+    """Damage events of the LINE_DAMAGE_KINDS in an event-count dict."""
     return int(sum(events.get(k, 0) for k in LINE_DAMAGE_KINDS))
 
 
 def adapter_latency_ms(result: AnalysisResult) -> float | None:
+    """The capture's adapter latency timer (the largest over its ports), None when unknown."""
     values = [p.latency_ms for p in result.header.ports if p.latency_ms is not None]
     return max(values) if values else None
 
