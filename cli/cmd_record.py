@@ -189,6 +189,10 @@ def summary(rec: Recorder) -> str:
         else:
             lines.append(f"received {w.bytes_written} bytes in {w.records_written} records over {_hms(elapsed)} "
                          f"(nothing kept: give -o FILE to record as well)")
+    if w is not None and rec.error is not None:
+        unwritten = sum(s.bytes for s in rec.stats) - w.bytes_written
+        lines.append(f"at most {unwritten} byte(s) received after the last complete block are missing "
+                     f"(lost to the output fault)")
     for s in rec.stats:
         extra = []
         if s.line_errors:

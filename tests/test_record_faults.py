@@ -58,6 +58,7 @@ def test_disk_full_exits_3_with_one_clear_line_and_the_file_reads_back(tmp_path)
         adapter.kill()  # it is blocked writing into a pty that nobody reads any more
     assert proc.returncode == 3, err
     assert "cannot write the capture (File too large)" in err
+    assert "are missing (lost to the output fault)" in err
     assert "Traceback" not in err
     reader = CaptureReader(out)
     data = b"".join(r.data for r in reader.iter_records())
@@ -82,6 +83,7 @@ def test_output_directory_removed_mid_capture_is_reported_and_the_data_rescued(t
         _, err = proc.communicate(timeout=30)
     assert proc.returncode == 3, err
     assert "was removed while recording" in err
+    assert "at most 0 byte(s)" in err  # the rescued copy holds everything
     rescued = list(rescue_dir.glob("night.rescued-*.bwcap"))
     assert len(rescued) == 1 and str(rescued[0]) in err
     reader = CaptureReader(rescued[0])
