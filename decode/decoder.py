@@ -32,6 +32,8 @@ from buswitness.errors import UsageError
 DEFAULT_LATENCY_MS = 16.0
 DEFAULT_HOST_DELAY_MS = 1.0
 PORT_ROLES = ("master", "slaves", "both")
+#: Runs of flag-free records shorter than this go record by record.
+BULK_MIN_BYTES = 2048
 PROTOCOLS = ("rtu", "ascii")
 
 _GAP_FLAGS = FLAG_REOPENED | FLAG_PAUSED | FLAG_DISCONNECTED
@@ -382,6 +384,8 @@ class Decoder:
         edges = np.flatnonzero(np.diff(np.concatenate(([0], plain.astype(np.int8), [0]))))
         pos = 0
         for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):
+            if int(offsets[run_end - 1] + lengths[run_end - 1] - offsets[run_start]) < BULK_MIN_BYTES:
+                continue  # numpy's fixed cost per call outweighs the gain on short runs
             self._records(batch, payload, offsets, pos, run_start, col)
             self._bulk_run(port, batch, payload, offsets, run_start, run_end, col)
             pos = run_end

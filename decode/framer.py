@@ -20,7 +20,7 @@ from bisect import bisect_left
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from buswitness.decode.crc import crc16_modbus
+from buswitness.decode.crc import CRC_TABLE, crc16_modbus
 from buswitness.decode.lengths import (EITHER, MAX_FRAME, MIN_FRAME, PUBLIC_CODES, SEARCH_CODES,
                                        candidate_lengths, plausible)
 
@@ -49,6 +49,16 @@ def _valid(buf: bytes, p: int, n: int) -> bool:
     return crc16_modbus(buf[p:p + n]) == 0
 
 
+_TABLE = CRC_TABLE.tolist()
+_INVERSE = {v >> 8: i for i, v in enumerate(_TABLE)}  # the table's high bytes are all distinct
+
+
+def _unstep(crc: int, byte: int) -> int:
+    """The CRC register before the step that took in ``byte`` and gave ``crc``."""
+    i = _INVERSE[crc >> 8]
+    return (((crc ^ _TABLE[i]) << 8) & 0xFF00) | ((i ^ byte) & 0xFF)
+
+
 class RegionScanner:
     """The sequential framer over a buffer, resumable as bytes arrive.
 
@@ -64,9 +74,14 @@ class RegionScanner:
         self.anchored = True
         self.known_addresses: set[int] = set()
         self.boundaries: list[int] = []
+        self._search_at = -1  # position, bytes done and CRC register of a CRC search waiting for bytes
+        self._search_len = 0
+        self._search_crc = 0xFFFF
 
     def shift(self, n: int) -> None:
         self.pos -= n
+        if self._search_at >= 0:
+            self._search_at -= n
         if self.junk_start is not None:
             self.junk_start -= n
         self.boundaries = [b - n for b in self.boundaries if b - n > 0]
@@ -189,17 +204,33 @@ class RegionScanner:
         return length << 2 | shape
 
     def _search(self, buf: bytes, p: int, end: int, final: bool) -> int:
-        """CRC search for a code without a length rule: the shortest valid, supported split."""
+        """CRC search for a code without a length rule: the shortest valid, supported split.
+
+        The CRC register runs once over the bytes (one table step per byte, residue 0 marks a
+        valid length); when the search must wait for bytes it keeps its place, so each byte
+        is stepped at most once however the input is chunked.
+        """
+        if self._search_at == p:
+            length, crc = self._search_len, self._search_crc
+        else:
+            length, crc = 0, 0xFFFF
         top = min(MAX_FRAME, end - p)
-        for length in range(MIN_FRAME, top + 1):
-            if _valid(buf, p, length):
+        table = _TABLE
+        while length < top:
+            crc = (crc >> 8) ^ table[(crc ^ buf[p + length]) & 0xFF]
+            length += 1
+            if crc == 0 and length >= MIN_FRAME:
                 sup = self._support(buf, p + length, end, final)
                 if sup is None:
+                    self._search_at, self._search_len, self._search_crc = p, length - 1, _unstep(crc, buf[p + length - 1])
                     return _NEED
                 if sup:
+                    self._search_at = -1
                     return length << 2 | EITHER
         if top < MAX_FRAME and not final:
+            self._search_at, self._search_len, self._search_crc = p, length, crc
             return _NEED
+        self._search_at = -1
         return _NO
 
     def _support(self, buf: bytes, q: int, end: int, final: bool) -> bool | None:
