@@ -79,7 +79,7 @@ class Timeline:
         if self.untimed or lo == float("-inf"):
             lo = hi
         lo = min(lo, hi)
-        return int(round(lo)), int(round(hi))
+        return round(lo), round(hi)
 
     def drop_before(self, pos: int) -> None:
         """Forget records whose bytes all lie before absolute position ``pos``."""

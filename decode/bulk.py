@@ -15,11 +15,19 @@ from collections.abc import Iterator, Sequence
 from typing import overload
 
 import numpy as np
-
 from buswitness.decode.crc import CRC_TABLE
 from buswitness.decode.framer import RegionScanner, Span
-from buswitness.decode.lengths import (_BC8, _FIXED, _RULES, EITHER, MAX_FRAME, MIN_FRAME, REQUEST, RESPONSE,
-                                       vector_lengths)
+from buswitness.decode.lengths import (
+    _BC8,
+    _FIXED,
+    _RULES,
+    EITHER,
+    MAX_FRAME,
+    MIN_FRAME,
+    REQUEST,
+    RESPONSE,
+    vector_lengths,
+)
 
 #: The walk stops this many bytes before the end so every length field it reads is present.
 LOOKAHEAD = 12
@@ -112,8 +120,8 @@ def crc_of_rows(rows: np.ndarray) -> np.ndarray:
     """CRC-16/MODBUS of each row of a 2-D ``uint8`` array, two bytes per step (same values as crc16_rows)."""
     n, length = rows.shape
     crc = np.full(n, 0xFFFF, dtype=np.uint16)
-    words = rows[:, :length - length % 2].astype(np.uint16)
-    words = words[:, 0::2] | (words[:, 1::2] << 8)
+    pairs = rows[:, :length - length % 2].astype(np.uint16)
+    words = (pairs[:, 0::2] | (pairs[:, 1::2] << 8)).astype(np.uint16)
     for col in range(words.shape[1]):
         crc = _T2[crc ^ words[:, col]]
     if length % 2:
@@ -182,9 +190,9 @@ class SpanTable(Sequence[Span]):
     def __getitem__(self, i: int) -> Span: ...
 
     @overload
-    def __getitem__(self, i: slice) -> "SpanTable": ...
+    def __getitem__(self, i: slice) -> SpanTable: ...
 
-    def __getitem__(self, i: int | slice) -> "Span | SpanTable":
+    def __getitem__(self, i: int | slice) -> Span | SpanTable:
         if isinstance(i, slice):
             return SpanTable(self.start[i], self.end[i], self.shape[i], self.at_boundary[i])
         return Span(int(self.start[i]), int(self.end[i]), int(self.shape[i]), bool(self.at_boundary[i]))

@@ -10,22 +10,35 @@ closes whatever is still open at the end of the input.
 from __future__ import annotations
 
 import heapq
+from collections.abc import Iterator
 from dataclasses import dataclass, field
-from typing import Iterator
 
 import numpy as np
-
-from buswitness.capture.fileformat import (FLAG_BREAK, FLAG_DISCONNECTED, FLAG_LINE_ERROR, FLAG_LOST,
-                                           FLAG_PAUSED, FLAG_REOPENED, CaptureHeader, RecordBatch)
+from buswitness.capture.fileformat import (
+    FLAG_BREAK,
+    FLAG_DISCONNECTED,
+    FLAG_LINE_ERROR,
+    FLAG_LOST,
+    FLAG_PAUSED,
+    FLAG_REOPENED,
+    CaptureHeader,
+    RecordBatch,
+)
 from buswitness.decode.arrival import Timeline
 from buswitness.decode.ascii import AsciiScanner, decode_ascii_frame
 from buswitness.decode.bulk import bulk_spans
-from buswitness.decode.events import Damage, Frame, Transaction
+from buswitness.decode.events import Damage, Frame
 from buswitness.decode.framer import JUNK, RegionScanner, Span
 from buswitness.decode.lengths import EITHER, MIN_FRAME, PUBLIC_CODES, REQUEST, RESPONSE, candidate_lengths
 from buswitness.decode.pairing import Pairing
-from buswitness.decode.tables import (OUTCOME_CODE, Collector, DecodeOutput, events_table, frames_table,
-                                      transactions_table)
+from buswitness.decode.tables import (
+    OUTCOME_CODE,
+    Collector,
+    DecodeOutput,
+    events_table,
+    frames_table,
+    transactions_table,
+)
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import UsageError
 
@@ -75,7 +88,7 @@ class DecoderConfig:
     @classmethod
     def from_header(cls, header: CaptureHeader, response_timeout_ms: float | None = None,
                     host_delay_ms: float | None = None, protocol: str | None = None,
-                    port_roles: dict[int, str] | None = None) -> "DecoderConfig":
+                    port_roles: dict[int, str] | None = None) -> DecoderConfig:
         """Settings from a capture header; anything the header lacks gets the documented default.
 
         Port roles come from ``port_roles``, else from ``header.extra["port_roles"]``, else
@@ -170,12 +183,12 @@ class _Port:
             if kind not in present and (data or t_ns - run[1] > self._merge_ns):
                 self._close_mark(kind)
         for kind in present:
-            run = self._marks.get(kind)
-            if run is not None and t_ns - run[1] <= self._merge_ns:
-                run[1] = t_ns
-                run[2] += data if kind == "line_error" else b""
+            pending = self._marks.get(kind)
+            if pending is not None and t_ns - pending[1] <= self._merge_ns:
+                pending[1] = t_ns
+                pending[2] += data if kind == "line_error" else b""
             else:
-                if run is not None:
+                if pending is not None:
                     self._close_mark(kind)
                 self._marks[kind] = [t_ns, t_ns, bytearray(data if kind == "line_error" else b""),
                                      self.base + len(self.buf)]
@@ -309,11 +322,11 @@ class _Port:
         lo, hi = self.timeline.end_bounds(a, b - 1)
         if span.shape == JUNK:
             # Damaged bytes are mostly one talker's back-to-back bytes: bound them like a frame.
-            t = (lo + hi) // 2 - int(round(len(raw) * self.char_ns))
+            t = (lo + hi) // 2 - round(len(raw) * self.char_ns)
             kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
         gaps = [s for pos, s in self.silences.items() if a < pos < b]
-        t_start = (lo + hi) // 2 - int(round(len(raw) * self.char_ns))
+        t_start = (lo + hi) // 2 - round(len(raw) * self.char_ns)
         wire = 0
         if self.ascii:
             wire = len(raw)
@@ -422,7 +435,7 @@ class Decoder:
             else:
                 self._bulk_frames(p, piece, col)
 
-    def _bulk_frames(self, p: "_Port", piece: tuple, col: Collector) -> None:
+    def _bulk_frames(self, p: _Port, piece: tuple, col: Collector) -> None:
         """Frames from the bulk path: times in columns, pairing in columns where traffic is regular."""
         _tag, lo, hi, lens, shapes, addrs, fcs, raws = piece
         c = self.char_ns
@@ -508,7 +521,7 @@ class Decoder:
         return DecodeOutput.from_objects(self.flush_events())
 
     # -- internals ----------------------------------------------------------------------------
-    def _port(self, port: int) -> "_Port":
+    def _port(self, port: int) -> _Port:
         p = self.ports.get(port)
         if p is None:
             p = self.ports[port] = _Port(port, self.config)
@@ -521,7 +534,7 @@ class Decoder:
         p.add(t_ns, data, flags, items)
         self._enqueue(p, items)
 
-    def _enqueue(self, port: "_Port", items: list) -> None:
+    def _enqueue(self, port: _Port, items: list) -> None:
         # Keys never go back within one port: its items keep their stream order.
         for key, item in items:
             port.last_key = max(port.last_key, key)
@@ -530,9 +543,7 @@ class Decoder:
 
     def _release(self, now_ns: int | None, out: list) -> None:
         """Hand items to pairing in time order, once no port can still produce an earlier one."""
-        if now_ns is None:
-            limit = None
-        elif len(self.ports) == 1:
+        if now_ns is None or len(self.ports) == 1:
             limit = None
         else:
             opens = [t for t in (p.first_open_time() for p in self.ports.values()) if t is not None]
@@ -588,5 +599,12 @@ def decode_source(source, config: DecoderConfig | None = None) -> Iterator[Decod
     yield dec.flush()
 
 
-__all__ = ["Decoder", "DecoderConfig", "DecodeOutput", "decode_source", "events_table", "frames_table",
-           "transactions_table"]
+__all__ = [
+    "DecodeOutput",
+    "Decoder",
+    "DecoderConfig",
+    "decode_source",
+    "events_table",
+    "frames_table",
+    "transactions_table",
+]

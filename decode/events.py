@@ -66,7 +66,7 @@ class Frame:
     @property
     def t_start_ns(self) -> int:
         """Start of the first bit: the bytes of one frame are back to back."""
-        return self.t_end_ns - int(round(self.wire_length * self.char_ns))
+        return self.t_end_ns - round(self.wire_length * self.char_ns)
 
 
 @dataclass(frozen=True)

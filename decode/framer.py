@@ -21,8 +21,15 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from buswitness.decode.crc import CRC_TABLE, crc16_modbus
-from buswitness.decode.lengths import (EITHER, MAX_FRAME, MIN_FRAME, PUBLIC_CODES, SEARCH_CODES,
-                                       candidate_lengths, plausible)
+from buswitness.decode.lengths import (
+    EITHER,
+    MAX_FRAME,
+    MIN_FRAME,
+    PUBLIC_CODES,
+    SEARCH_CODES,
+    candidate_lengths,
+    plausible,
+)
 
 JUNK = 0
 _NEED = -1

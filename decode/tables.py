@@ -11,7 +11,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
 
 FRAME_COLUMNS = ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port", "address", "function", "length",
@@ -111,7 +110,7 @@ class DecodeOutput:
     events: pd.DataFrame
 
     @classmethod
-    def from_objects(cls, items: list) -> "DecodeOutput":
+    def from_objects(cls, items: list) -> DecodeOutput:
         col = Collector()
         col.add_objects(items)
         return col.output()

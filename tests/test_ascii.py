@@ -1,6 +1,6 @@
 """Modbus ASCII framing (MSL V1.02 section 2.5.2) through the same events as RTU."""
 
-from buswitness.decode import Damage, Decoder, DecoderConfig, Frame, Transaction, SerialFormat, lrc
+from buswitness.decode import Damage, Decoder, DecoderConfig, Frame, SerialFormat, Transaction, lrc
 from buswitness.decode.ascii import decode_ascii_frame
 
 

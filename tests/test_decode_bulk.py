@@ -3,14 +3,13 @@
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import given, strategies as st
-
 from buswitness.capture.fileformat import Record, RecordBatch
 from buswitness.decode import Decoder, DecoderConfig, append_crc
 from buswitness.decode.bulk import frame_only
 from buswitness.decode.framer import RegionScanner, split_frames
 from buswitness.decode.tables import DecodeOutput
-
+from hypothesis import given
+from hypothesis import strategies as st
 from test_decode_properties import VECTORS
 from test_decode_wire import FMT_19200, deliver
 

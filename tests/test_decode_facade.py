@@ -1,11 +1,9 @@
 """The decoder facade end to end: records in, frames and transactions out, objects and tables alike."""
 
 import pytest
-
 from buswitness.capture.fileformat import Record, RecordBatch
 from buswitness.decode import Decoder, DecoderConfig, Frame, Transaction, append_crc
 from buswitness.errors import UsageError
-
 from test_decode_wire import FMT_19200, decode_records, deliver, of_type
 
 C_NS = FMT_19200.char_time_s * 1e9

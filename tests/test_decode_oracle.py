@@ -12,7 +12,6 @@ from collections import Counter
 import numpy as np
 import pandas as pd
 import pytest
-
 from buswitness.decode import Decoder, DecoderConfig
 from buswitness.simulate import load_scenario, simulate
 
@@ -79,7 +78,7 @@ def test_pumpstation_frames_outcomes_and_response_times_match_truth(latency_ms):
     print(f"\npumpstation {latency_ms} ms: {len(t)} transactions, outcomes differ in {differ.sum()}: "
           f"{Counter(zip(t.outcome[differ], ours[differ]))}")
     assert differ.sum() == 0
-    med, p95, covered = _report(f"pumpstation {latency_ms} ms", t, txns, j)
+    med, _p95, covered = _report(f"pumpstation {latency_ms} ms", t, txns, j)
     assert covered >= 0.95
     assert med <= (3.0 if latency_ms > 2 else 0.25)
 
@@ -100,7 +99,7 @@ def test_noisy_hour_invents_no_frame_and_loses_none():
 
 def test_late_answers_are_credited_to_their_request():
     # A station answering up to a second late, after the master's 200 ms timeout and its retry.
-    truth, frames, txns = _run("fault-late", 300, 16.0)
+    truth, _frames, txns = _run("fault-late", 300, 16.0)
     t, j = _match(truth.transactions, txns)
     ours = txns.outcome.astype(str).to_numpy()[j]
     differ = (ours != t.outcome.to_numpy()) & ~_sniffer_saw_it_intact(t, truth.frames)

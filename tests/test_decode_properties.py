@@ -2,13 +2,13 @@
 
 import os
 import time
-
-from hypothesis import HealthCheck, assume, given, settings, strategies as st
+from itertools import pairwise
 
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, FLAG_LOST, Record, RecordBatch
 from buswitness.decode import Damage, Decoder, DecoderConfig, Frame, Transaction, append_crc
 from buswitness.decode.events import EVENT_KINDS, OUTCOMES
-
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
 from test_decode_wire import FMT_19200
 
 # Spec vectors as RTU frames on station 1 (MAP V1.1b3 examples; CRC by crcmod).
@@ -33,7 +33,7 @@ def frames_of(chunks: list[bytes], config: DecoderConfig = UNTIMED) -> list[byte
 
 def chunked(data: bytes, cuts: list[int]) -> list[bytes]:
     points = sorted({c % (len(data) + 1) for c in cuts} | {0, len(data)})
-    return [data[a:b] for a, b in zip(points, points[1:])]
+    return [data[a:b] for a, b in pairwise(points)]
 
 
 def test_every_vector_decodes_whole_and_byte_by_byte():

@@ -3,7 +3,6 @@
 import os
 
 import numpy as np
-
 from buswitness.decode import explained_fraction, split_frames
 from buswitness.decode.crc import append_crc
 from buswitness.decode.lengths import REQUEST, RESPONSE

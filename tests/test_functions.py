@@ -1,7 +1,6 @@
 """Function-code fields against the MAP examples, and against frames pymodbus encodes independently."""
 
 import pytest
-
 from buswitness.decode import append_crc, decode_fields, exception_name, split_frames
 from buswitness.decode.lengths import EITHER, REQUEST, RESPONSE
 
@@ -92,17 +91,26 @@ def test_short_or_odd_frames_never_raise():
 # --- pymodbus as an independent encoder -------------------------------------------------------
 
 pymodbus = pytest.importorskip("pymodbus")
-from pymodbus.framer import FramerRTU  # noqa: E402
-from pymodbus.pdu import ExceptionResponse  # noqa: E402
-from pymodbus.pdu.bit_message import (ReadCoilsRequest, ReadCoilsResponse, WriteMultipleCoilsRequest,  # noqa: E402
-                                      WriteSingleCoilRequest)
-from pymodbus.pdu.decoders import DecodePDU  # noqa: E402
-from pymodbus.pdu.mei_message import ReadDeviceInformationRequest  # noqa: E402
-from pymodbus.pdu.other_message import ReportDeviceIdResponse  # noqa: E402
-from pymodbus.pdu.register_message import (MaskWriteRegisterRequest, ReadHoldingRegistersRequest,  # noqa: E402
-                                           ReadHoldingRegistersResponse, ReadWriteMultipleRegistersRequest,
-                                           WriteMultipleRegistersRequest, WriteMultipleRegistersResponse,
-                                           WriteSingleRegisterRequest)
+from pymodbus.framer import FramerRTU
+from pymodbus.pdu import ExceptionResponse
+from pymodbus.pdu.bit_message import (
+    ReadCoilsRequest,
+    ReadCoilsResponse,
+    WriteMultipleCoilsRequest,
+    WriteSingleCoilRequest,
+)
+from pymodbus.pdu.decoders import DecodePDU
+from pymodbus.pdu.mei_message import ReadDeviceInformationRequest
+from pymodbus.pdu.other_message import ReportDeviceIdResponse
+from pymodbus.pdu.register_message import (
+    MaskWriteRegisterRequest,
+    ReadHoldingRegistersRequest,
+    ReadHoldingRegistersResponse,
+    ReadWriteMultipleRegistersRequest,
+    WriteMultipleRegistersRequest,
+    WriteMultipleRegistersResponse,
+    WriteSingleRegisterRequest,
+)
 
 PYMODBUS_CASES = [
     (ReadHoldingRegistersRequest(address=0x6B, count=3, dev_id=17), "request", {"start": 0x6B, "quantity": 3}),

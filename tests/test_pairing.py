@@ -1,9 +1,7 @@
 """Pairing requests with responses: outcomes, retries, echoes and direction on a two-wire bus."""
 
 import pytest
-
 from buswitness.decode import Damage, DecoderConfig, Transaction, append_crc
-
 from test_decode_wire import FMT_19200, decode_records, deliver, of_type
 
 C_NS = FMT_19200.char_time_s * 1e9
