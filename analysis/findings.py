@@ -21,6 +21,7 @@ Rule = Callable[[AnalysisResult, Thresholds], list[Finding]]
 #: Every rule, by the id its findings carry.
 RULES: dict[str, Rule] = {
     "unreadable-line": line.unreadable_line,
+    "sniffer-format": line.sniffer_format,
     "no-answers": absence.no_answers,
     "never-present": absence.never_present,
     "silent-period": absence.silent_period,
@@ -49,8 +50,10 @@ SUPERSEDES: dict[str, frozenset[str]] = {
     "no-answers": frozenset({"never-present", "silent-period", "missed-polls", "timeout-headroom"}),
     "duplicate-address": frozenset({"station-errors", "far-station-errors", "errors-bus-wide", "missed-polls",
                                     "late-collisions", "gap-in-frame", "idle-stray-bytes"}),
+    "sniffer-format": frozenset({"turnaround-short", "possible-short-turnaround", "gap-in-frame",
+                                 "timing-not-observable", "idle-stray-bytes", "errors-bus-wide"}),
     "silent-period": frozenset({"missed-polls"}),
-    "errors-clustered": frozenset({"errors-bus-wide", "idle-stray-bytes"}),
+    "errors-clustered": frozenset({"errors-bus-wide", "idle-stray-bytes", "sniffer-format"}),
     "far-station-errors": frozenset({"station-errors", "errors-bus-wide"}),
 }
 

@@ -191,6 +191,17 @@ def test_line_the_sniffer_cannot_read_is_critical_and_swapped_wires_come_first_w
     assert line.unreadable_line(result_of(polls(60)), TH) == []
 
 
+def test_parity_errors_on_frames_with_good_crcs_mean_the_sniffers_format_is_wrong():
+    txs = polls(120)
+    marks = [(t.t_s + 0.001, "line_error", -1, b"\x00") for t in txs[::5]]  # one frame in ten
+    turn = [(t.t_s + 0.002, "turnaround_short", 1, b"\x01\x03") for t in txs[::3][:30]]
+    found = evaluate(result_of(txs, marks + turn))
+    assert found[0].rule == "sniffer-format" and "8E1" in found[0].causes[0].cause
+    assert "turnaround-short" not in rules_of(found)  # byte times are wrong, so is that finding
+    fewer = [(t.t_s + 0.001, "line_error", -1, b"\x00") for t in txs[::25]]  # one frame in fifty
+    assert line.sniffer_format(result_of(txs, fewer), TH) == []
+
+
 def test_damage_on_every_station_alike_is_bus_wide():
     r = result_of(polls(600, fate=_corrupt_every({1: 50, 2: 50, 3: 50})))  # 2% each
     (f,) = line.errors_bus_wide(r, TH)

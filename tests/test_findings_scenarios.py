@@ -41,7 +41,7 @@ def analysed(tmp_path_factory):
     cache: dict = {}
 
     def get(name: str, latency_ms: float | None = None, edit=None):
-        key = (name, latency_ms, edit is not None)
+        key = (name, latency_ms, None if edit is None else edit.__name__)
         if key not in cache:
             if edit is None:
                 sc = load_scenario(name)
@@ -137,6 +137,14 @@ def test_sniffer_at_the_wrong_baud_rate_cannot_read_the_line_and_says_settings_f
     found = analysed("fault-wrong-baud").findings
     assert [f.rule for f in found] == ["unreadable-line"]
     assert "wrong settings (9600 8E1)" in found[0].causes[0].cause
+
+
+def test_sniffer_without_parity_on_an_even_parity_bus_says_its_format_is_wrong(analysed):
+    def sniffer_8n1(data: dict) -> None:
+        data["sniffer"] = {"baud": data["bus"]["baud"], "format": "8N1"}
+    found = analysed("clean", edit=sniffer_8n1).findings
+    assert found[0].rule == "sniffer-format" and "8N1" in found[0].statement
+    assert {f.severity for f in found[1:]} <= {"info"}
 
 
 def test_exceptions_are_reported_by_code_for_their_station(analysed):

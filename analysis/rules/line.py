@@ -74,6 +74,29 @@ def unreadable_line(result: AnalysisResult, th: Thresholds) -> list[Finding]:
         caution=WIRING_CAUTION)]
 
 
+def sniffer_format(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """Frames with good CRCs but parity or framing errors throughout: the sniffer's character format is wrong."""
+    ev, frames = result.bus.events, result.bus.frames
+    errors = ev.get("line_error", 0)
+    damaged = ev.get("crc_error", 0) + ev.get("truncated", 0)
+    if (frames < th.min_requests or errors < th.min_events or share(errors, frames) < th.format_line_errors_per_frame
+            or share(damaged, frames) > th.format_max_damaged_share):
+        return []
+    serial = result.header.serial
+    t0, t1 = capture_span(result)
+    return [Finding(
+        rule="sniffer-format", severity="warning", score=share(errors, frames), t_start_s=t0, t_end_s=t1,
+        statement=(f"{errors} parity or framing errors on {frames} frames whose CRCs are valid: the sniffer's "
+                   f"character format ({serial.short_form}) differs from the bus's, so the bytes come through but "
+                   f"byte times, and every timing figure built on them, are off."),
+        evidence={"line_errors": errors, "frames": frames, "damaged_frames": damaged,
+                  "sniffer_serial": str(serial), "line_errors_per_frame": round(share(errors, frames), 4)},
+        causes=[Cause(f"The sniffer listens at {serial.short_form}; the bus uses another parity or number of stop "
+                      "bits.",
+                      "Take the format from the master's configuration and record again; Modbus RTU's default is "
+                      "8E1, and no parity needs two stop bits (MSL §2.5.1 p12).")])]
+
+
 def _late_budget(result: AnalysisResult, th: Thresholds) -> int:
     """Damaged answers the slow stations' late answers can account for (see lateness.collision_budget)."""
     return sum(collision_budget(s) for s in polled(result, th) if s.late >= th.late_min_count)

@@ -57,6 +57,14 @@ UNREADABLE_DAMAGE_SHARE = 0.75
 #: holds the receiver at space, which a UART reports as a break (common practice).
 POLARITY_BREAK_SHARE = 0.05
 
+# -- the sniffer's character format ----------------------------------------------------------------
+#: Parity or framing errors per valid frame that show the sniffer's character format differs from
+#: the bus's: the bytes (and CRCs) come through, the parity or stop bit does not (common practice:
+#: noise that marks one frame in ten also breaks CRCs).
+FORMAT_LINE_ERRORS_PER_FRAME = 0.1
+#: ... while no more than this share of frames fails its CRC (common practice).
+FORMAT_MAX_DAMAGED_SHARE = 0.02
+
 # -- damaged answers --------------------------------------------------------------------------------
 #: Share of a station's answers damaged that is worth a notice (common practice: a healthy RS-485
 #: segment shows practically no CRC failures; one in five hundred already means something).
@@ -150,6 +158,8 @@ class Thresholds:
     silent_critical_s: float = SILENT_CRITICAL_S
     unreadable_damage_share: float = UNREADABLE_DAMAGE_SHARE
     polarity_break_share: float = POLARITY_BREAK_SHARE
+    format_line_errors_per_frame: float = FORMAT_LINE_ERRORS_PER_FRAME
+    format_max_damaged_share: float = FORMAT_MAX_DAMAGED_SHARE
     error_notice_share: float = ERROR_NOTICE_SHARE
     error_warning_share: float = ERROR_WARNING_SHARE
     bus_wide_station_share: float = BUS_WIDE_STATION_SHARE
