@@ -88,9 +88,10 @@ def test_watch_shows_the_stations_it_hears_and_records_at_the_same_time(tmp_path
     assert proc.returncode == 0, stderr
     data = b"".join(r.data for r in CaptureReader(out).iter_records())
     assert data == (req + rsp) * 6
-    row = next(line for line in stdout.splitlines() if line.strip("│ ").startswith("9 "))
-    cells = [c.strip() for c in row.strip("│").split("│")]
-    assert cells[:4] == ["9", "6", "6", "0"]
+    rows = [line for line in stdout.splitlines() if line.strip("│ ").startswith("9 ")]
+    assert rows, stdout + stderr
+    cells = [c.strip() for c in rows[0].strip("│").split("│")]
+    assert cells[:4] == ["9", "6", "6", "0"], stdout + stderr
 
 
 def test_live_decoder_that_falls_behind_switches_itself_off(monkeypatch):
