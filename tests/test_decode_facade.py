@@ -1,5 +1,6 @@
 """The decoder facade end to end: records in, frames and transactions out, objects and tables alike."""
 
+import pandas as pd
 import pytest
 from buswitness.capture.fileformat import Record, RecordBatch
 from buswitness.decode import Decoder, DecoderConfig, Frame, Transaction, append_crc
@@ -52,3 +53,31 @@ def test_batch_tables_match_the_object_view():
 def test_unknown_port_role_is_a_clear_error():
     with pytest.raises(UsageError, match="role 'boss' is not one of"):
         DecoderConfig(port_roles={0: "boss"})
+
+
+def test_untimed_capture_pairs_but_states_no_response_time():
+    # raw imports have synthetic times (header timing "none"): order is real, intervals are not
+    frames, _ = polls(5)
+    records = deliver(frames, C_NS, 16e6)
+    batch = RecordBatch.from_records([Record(0, i, d) for i, (_t, d) in enumerate(records)])
+    dec = Decoder(DecoderConfig(serial=FMT_19200, untimed=True))
+    txns = pd.concat([dec.feed_batch(batch).transactions, dec.flush().transactions])
+    assert list(txns.outcome.astype(str)) == ["ok"] * 5
+    assert txns.response_ms.isna().all()
+
+
+def test_flush_closes_a_request_still_waiting_as_a_timeout():
+    dec = Decoder(DecoderConfig(serial=FMT_19200))
+    early = dec.feed(0, 1_000_000_000, REQ)
+    out = dec.flush()
+    assert list(out.transactions.outcome.astype(str)) == ["timeout"]
+    assert len(of_type(early, Frame)) + len(out.frames) == 1
+
+
+def test_config_from_a_header_takes_latency_and_defaults():
+    from buswitness.capture.fileformat import CaptureHeader, PortInfo
+    header = CaptureHeader(serial=FMT_19200, ports=[PortInfo(0, "a", latency_ms=1.0), PortInfo(1, "b")],
+                           timing="none")
+    cfg = DecoderConfig.from_header(header, response_timeout_ms=250)
+    assert (cfg.latency_for(0), cfg.latency_for(1), cfg.host_delay_ms) == (1.0, 16.0, 1.0)
+    assert cfg.untimed and cfg.response_timeout_ms == 250 and cfg.role_for(0) == "both"
