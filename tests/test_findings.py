@@ -258,6 +258,14 @@ def test_one_address_garbled_with_framing_errors_is_a_duplicate_address():
     assert duplicate.duplicate_address(result_of(polls(300, fate=fate)), TH) == []  # no fighting drivers
 
 
+def test_a_second_valid_answer_to_most_polls_is_a_duplicate_address_too():
+    seconds = [(0.1 + 0.5 * k + 0.05, "orphan_response", 2, b"\x02\x03\x00") for k in range(0, 600, 2)]  # 50%
+    (f,) = duplicate.duplicate_address(result_of(polls(300), seconds), TH)
+    assert f.station == 2 and "came when none was awaited" in f.statement
+    few = seconds[::20]  # 2.5% of its polls: what a slow device's late answers leave
+    assert duplicate.duplicate_address(result_of(polls(300), few), TH) == []
+
+
 # -- timing -----------------------------------------------------------------------------------------------
 
 def test_answers_certainly_under_t35_are_a_turnaround_violation():

@@ -11,29 +11,36 @@ from buswitness.analysis.rules.thresholds import Thresholds
 
 
 def duplicate_address(result: AnalysisResult, th: Thresholds) -> list[Finding]:
-    """Overlapping answers on one address only: framing errors and breaks where two drivers fight."""
+    """One address answered twice: garbled where two drivers overlap, or a second valid answer nobody awaits."""
     stations = polled(result, th)
     out = []
     for s in stations:
         own = damaged_share(s)
         others = [damaged_share(o) for o in stations if o.address != s.address]
-        if own < th.duplicate_damaged_share or not others or median(others) >= th.duplicate_others_max:
+        if not others or median(others) >= th.duplicate_others_max:
             continue
         overlap = s.events.get("line_error", 0) + s.events.get("break", 0) + s.collisions
-        per_answer = share(overlap, s.corrupt)
-        if per_answer < th.duplicate_overlap_per_answer:
+        orphans = s.events.get("orphan_response", 0)
+        fighting = own >= th.duplicate_damaged_share and share(overlap, s.corrupt) >= th.duplicate_overlap_per_answer
+        twice = share(orphans, s.requests) >= th.duplicate_orphan_share and s.late < th.late_min_count
+        if not (fighting or twice):
             continue
+        marks = []
+        if fighting:
+            marks.append(f"{pct(own)} of its answers are garbled ({s.corrupt} of {s.requests}, {overlap} framing "
+                         f"errors and breaks, the marks of two drivers talking at once)")
+        if orphans and share(orphans, s.requests) >= 0.1 * th.duplicate_orphan_share:
+            marks.append(f"{orphans} valid answers from it came when none was awaited (a second answer to the "
+                         f"same poll)")
         t0, t1 = capture_span(result)
         out.append(Finding(
-            rule="duplicate-address", severity="critical", score=own, station=s.address, station_label=s.label,
-            t_start_s=t0, t_end_s=t1,
-            statement=(f"Two devices probably answer as {s.label}: {pct(own)} of its answers are garbled "
-                       f"({s.corrupt} of {s.requests}, {overlap} framing errors and breaks, the marks of two "
-                       f"drivers talking at once) while the other stations have {pct(median(others))}."),
+            rule="duplicate-address", severity="critical", score=max(own, share(orphans, s.requests)),
+            station=s.address, station_label=s.label, t_start_s=t0, t_end_s=t1,
+            statement=(f"Two devices probably answer as {s.label}: {'; '.join(marks)}; the other stations have "
+                       f"{pct(median(others))} of their answers damaged."),
             evidence={"requests": s.requests, "damaged": s.corrupt, "answered": s.answered,
                       "damaged_share": round(own, 5), "others_median_share": round(median(others), 5),
-                      "framing_errors_and_breaks": overlap, "crc_errors": s.crc_errors,
-                      "orphan_answers": s.events.get("orphan_response", 0)},
+                      "framing_errors_and_breaks": overlap, "crc_errors": s.crc_errors, "orphan_answers": orphans},
             examples=failure_examples(result, s.address, outcomes=("corrupt",)),
             causes=[Cause(f"A second device is set to address {s.address} (a replacement or spare left at its "
                           f"factory address is the usual way).",

@@ -114,6 +114,10 @@ DUPLICATE_OTHERS_MAX = 0.05
 #: Framing errors and breaks per damaged answer that show two drivers fighting (common practice:
 #: overlapping drivers make most characters unreadable, noise only a few).
 DUPLICATE_OVERLAP_PER_ANSWER = 0.5
+#: Valid answers from one address that nobody waited for, as a share of its polls, that show a
+#: second device answering after the first without overlapping it (common practice: a slow
+#: device's late answers make a few percent).
+DUPLICATE_ORPHAN_SHARE = 0.3
 
 # -- timing violations ------------------------------------------------------------------------------
 #: Share of a station's answers starting under t3.5 after the request before it is reported
@@ -177,6 +181,7 @@ class Thresholds:
     duplicate_damaged_share: float = DUPLICATE_DAMAGED_SHARE
     duplicate_others_max: float = DUPLICATE_OTHERS_MAX
     duplicate_overlap_per_answer: float = DUPLICATE_OVERLAP_PER_ANSWER
+    duplicate_orphan_share: float = DUPLICATE_ORPHAN_SHARE
     turnaround_min_share: float = TURNAROUND_MIN_SHARE
     gap_min_share: float = GAP_MIN_SHARE
     gap_over_others: float = GAP_OVER_OTHERS
