@@ -63,27 +63,30 @@ def walk(buf: bytes, p: int, end: int, expect_response: bool) -> tuple[list[int]
     """
     starts: list[int] = []
     requests: list[bool] = []
-    add_start, add_kind = starts.append, requests.append
+    add_start = starts.append
     rb, rm, ro, sb, sm, so = _RB, _RM, _RO, _SB, _SM, _SO
     stop = end - LOOKAHEAD
-    if not expect_response:
-        # The common case, a request and its answer, two frames per turn of the loop.
-        while p <= stop:
-            fc = buf[p + 1]
-            n = rb[fc] + rm[fc] * buf[p + ro[fc]]
-            q = p + n
-            if not n or n > MAX_FRAME or q > stop:
-                break
-            fc = buf[q + 1]
-            m = sb[fc] + sm[fc] * buf[q + so[fc]]
-            if m < MIN_FRAME or m > MAX_FRAME or q + m > end:
-                break
-            add_start(p)
-            add_start(q)
-            p = q + m
-        requests = [True, False] * (len(starts) // 2)
-        add_kind = requests.append
-    while p <= stop:
+    while True:
+        if not expect_response:
+            # The common case, a request and its answer, two frames per turn of the loop.
+            first = len(starts)
+            while p <= stop:
+                fc = buf[p + 1]
+                n = rb[fc] + rm[fc] * buf[p + ro[fc]]
+                q = p + n
+                if not n or n > MAX_FRAME or q > stop:
+                    break
+                fc = buf[q + 1]
+                m = sb[fc] + sm[fc] * buf[q + so[fc]]
+                if m < MIN_FRAME or m > MAX_FRAME or q + m > end:
+                    break
+                add_start(p)
+                add_start(q)
+                p = q + m
+            requests.extend([True, False] * ((len(starts) - first) // 2))
+        # One frame the pair loop could not take, in either direction.
+        if p > stop:
+            break
         fc = buf[p + 1]
         if expect_response:
             n = sb[fc] + sm[fc] * buf[p + so[fc]]
@@ -100,7 +103,7 @@ def walk(buf: bytes, p: int, end: int, expect_response: bool) -> tuple[list[int]
         if n < MIN_FRAME or n > MAX_FRAME or p + n > end:
             break
         add_start(p)
-        add_kind(expect_response)
+        requests.append(expect_response)
         p += n
     return starts, requests, p
 
