@@ -78,6 +78,12 @@ def test_late_share_under_one_percent_is_a_notice_and_over_is_a_warning():
     assert lateness.late_answers(above, TH)[0].severity == "warning"
 
 
+def test_answers_over_a_given_timeout_that_the_master_took_are_reported_as_such():
+    r = result_of(polls(300, fate=lambda st, k, t: ("ok", 240.0) if st == 3 and k % 20 == 0 else None))
+    (f,) = lateness.late_answers(r, TH)
+    assert f.severity == "notice" and "which the master still took" in f.statement
+
+
 def test_fewer_late_answers_than_the_minimum_make_no_late_finding():
     txs = polls(60)
     txs[3].outcome, txs[3].response_ms = "late", 250.0
