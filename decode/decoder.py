@@ -142,6 +142,7 @@ class _Port:
         self.timeline = Timeline(self.char_ns, cfg.latency_for(port) * 1e6, cfg.host_delay_ms * 1e6,
                                  cfg.packet_bytes, cfg.untimed)
         self.untimed = cfg.untimed
+        self.role = cfg.role_for(port)
         self.buf = bytearray()
         self.base = 0  # absolute stream position of buf[0]
         self.silences: dict[int, float] = {}  # absolute position of a record start -> least silence before it
@@ -326,7 +327,10 @@ class _Port:
             kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
         gaps = [s for pos, s in self.silences.items() if a < pos < b]
-        t_start = (lo + hi) // 2 - round(len(raw) * self.char_ns)
+        # Sort key among ports: a master's frame by its earliest start, a station's by its latest,
+        # so an answer never sorts before the request it answers, however coarse the timestamps.
+        base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
+        t_start = base - round(len(raw) * self.char_ns)
         wire = 0
         if self.ascii:
             wire = len(raw)

@@ -20,7 +20,9 @@ state    input                            action -> next state
 ======== ================================ ==================================================
 IDLE     request, station 0               emit ``broadcast`` -> IDLE
 IDLE     request, station N               -> AWAIT(N)
-IDLE     response                         a recent ``timeout`` matches: make it ``late``;
+IDLE     response                         a recent ``timeout`` matches: make it ``late``
+                                          (``ok`` when timing cannot put it after the
+                                          next request / within the configured timeout);
                                           else event ``orphan_response`` -> IDLE
 IDLE     damage                           -> IDLE
 AWAIT    request                          close the wait: ``corrupt`` if damage came,
@@ -68,6 +70,8 @@ class _Slot:
     final: bool
     age: int = 0
     request: Frame | None = None
+    moved_on_hi_ns: int = 0  # latest end of the request that ended the wait
+    moved_on_port: int = -1
 
 
 @dataclass
@@ -117,7 +121,7 @@ class Pairing:
     def on_frame(self, frame: Frame) -> tuple[list[Transaction], list[Damage]]:
         events: list[Damage] = []
         if frame.direction == "request":
-            self._close_wait()
+            self._close_wait(frame)
             self._start(frame)
         else:
             self._on_response(frame, events)
@@ -158,7 +162,7 @@ class Pairing:
         self.waiting = _Await(req)
         self._retry_flag = retry
 
-    def _close_wait(self) -> None:
+    def _close_wait(self, next_request: Frame | None = None) -> None:
         w = self.waiting
         if w is None:
             return
@@ -170,7 +174,9 @@ class Pairing:
             self.slots.append(_Slot(txn, True))
         else:
             txn = Transaction(req.address, req.function, "timeout", req.t_end_ns, req.raw, retry=self._retry_flag)
-            self.slots.append(_Slot(txn, False, request=req))
+            moved_on = next_request.t_end_hi_ns if next_request is not None else 1 << 62
+            port = next_request.port if next_request is not None else -1
+            self.slots.append(_Slot(txn, False, request=req, moved_on_hi_ns=moved_on, moved_on_port=port))
         self.last_failed = True
 
     def _times(self, req: Frame, rsp: Frame) -> tuple[int, float, float, float]:
@@ -235,7 +241,14 @@ class Pairing:
             t = slot.txn
             if (not slot.final and slot.request is not None and t.outcome == "timeout"
                     and t.station == rsp.address and t.function == fc):
-                slot.txn = self._answer(slot.request, rsp, t.retry, True)
+                if self.timeout_ns is not None:
+                    late = rsp.t_start_ns - slot.request.t_end_ns > self.timeout_ns
+                elif slot.moved_on_port == rsp.port:
+                    late = True  # one byte stream: the answer came after the next request
+                else:
+                    # two ports: late only if the answer surely began after the next request ended
+                    late = rsp.t_end_lo_ns - rsp.wire_length * rsp.char_ns > slot.moved_on_hi_ns
+                slot.txn = self._answer(slot.request, rsp, t.retry, late)
                 slot.final = True
                 return
         if w is not None and fc == w.request.function:

@@ -119,3 +119,35 @@ def test_two_ports_take_direction_from_the_port():
     out += dec.feed(1, t + 60_000_000, req(3, READ_OK))
     out += dec.flush_events()
     assert [(x.function, x.outcome) for x in of_type(out, Transaction)] == [(6, "ok"), (3, "ok")]
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_four_wire_capture_with_one_adapter_per_direction_pairs_in_time_order(latency_ms):
+    # port 0 hears the master, port 1 the stations; each adapter has its own packet timing
+    from buswitness.capture.fileformat import Record, RecordBatch
+    from buswitness.decode import Decoder
+    master, stations, expected, t = [], [], [], 1e9
+    for i in range(60):
+        station = 1 + i % 3
+        q = req(station, READ)
+        master.append((t, q))
+        t += len(q) * C_NS
+        if i % 7 == 3:
+            expected.append("timeout")
+            t += 250 * MS
+            continue
+        t += (3 + i % 5) * MS
+        a = req(station, READ_OK)
+        stations.append((t, a))
+        expected.append("ok")
+        t += len(a) * C_NS + 20 * MS
+    recs = [Record(0, ts, d) for ts, d in deliver(master, C_NS, latency_ms * MS, phase_ns=0.3 * MS)]
+    recs += [Record(1, ts, d) for ts, d in deliver(stations, C_NS, latency_ms * MS, phase_ns=0.7 * MS)]
+    recs.sort(key=lambda r: r.t_ns)
+    cfg = DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms, 1: latency_ms},
+                        port_roles={0: "master", 1: "slaves"}, response_timeout_ms=200)
+    dec = Decoder(cfg)
+    outs = [dec.feed_batch(RecordBatch.from_records(recs[i:i + 25])) for i in range(0, len(recs), 25)]
+    outs.append(dec.flush())
+    outcomes = [o for out in outs for o in out.transactions.outcome.astype(str)]
+    assert outcomes == expected
