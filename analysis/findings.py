@@ -13,7 +13,16 @@ from collections.abc import Callable
 
 from buswitness.analysis.finding import Finding, ranked
 from buswitness.analysis.result import AnalysisResult
-from buswitness.analysis.rules import absence, duplicate, exception_codes, lateness, line, load, timing
+from buswitness.analysis.rules import (
+    absence,
+    duplicate,
+    exception_codes,
+    lateness,
+    layout,
+    line,
+    load,
+    timing,
+)
 from buswitness.analysis.rules.thresholds import Thresholds
 
 Rule = Callable[[AnalysisResult, Thresholds], list[Finding]]
@@ -40,6 +49,8 @@ RULES: dict[str, Rule] = {
     "gap-in-frame": timing.gap_in_frame,
     "timing-not-observable": timing.timing_not_observable,
     "exceptions": exception_codes.exceptions,
+    "device-count": layout.device_count,
+    "cable-length": layout.cable_length,
     "bus-load": load.bus_load,
 }
 
@@ -54,7 +65,7 @@ SUPERSEDES: dict[str, frozenset[str]] = {
                                  "timing-not-observable", "idle-stray-bytes", "errors-bus-wide"}),
     "silent-period": frozenset({"missed-polls"}),
     "errors-clustered": frozenset({"errors-bus-wide", "idle-stray-bytes", "sniffer-format"}),
-    "far-station-errors": frozenset({"station-errors", "errors-bus-wide"}),
+    "far-station-errors": frozenset({"station-errors", "errors-bus-wide", "cable-length"}),
 }
 
 

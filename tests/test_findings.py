@@ -15,6 +15,7 @@ from buswitness.analysis.rules import (
     duplicate,
     exception_codes,
     lateness,
+    layout,
     line,
     load,
     thresholds,
@@ -330,6 +331,22 @@ def test_bus_load_is_information_with_the_room_left_in_the_cycle():
     assert load.bus_load(result_of(polls(300)), Thresholds(load_notice_utilisation=0.0))[0].severity == "notice"
 
 
+def test_more_devices_than_a_biased_segment_takes_is_a_notice():
+    # MSL §3.4.1: 32 devices per segment; §3.4.6: Modbus bias lowers that by 4
+    crowded = result_of(polls(60, stations=tuple(range(1, 28)), period_s=2.0))  # 27 + master + sniffer = 29
+    (f,) = layout.device_count(crowded, TH)
+    assert f.evidence["devices"] == 29 and f.severity == "notice"
+    assert layout.device_count(result_of(polls(60, stations=tuple(range(1, 27)), period_s=2.0)), TH) == []
+
+
+def test_station_map_beyond_1000_m_is_a_cable_length_notice():
+    smap = StationMap({1: StationInfo(1, "Near", 20), 3: StationInfo(3, "Far", 1250)})
+    (f,) = layout.cable_length(result_of(polls(60), smap=smap), TH)
+    assert f.station == 3 and "MSL §3.4.3" in f.statement
+    smap = StationMap({1: StationInfo(1, "Near", 20), 3: StationInfo(3, "Far", 1000)})
+    assert layout.cable_length(result_of(polls(60), smap=smap), TH) == []
+
+
 # -- the engine -------------------------------------------------------------------------------------------
 
 def test_evaluate_ranks_by_severity_and_keeps_one_finding_per_rule_and_station():
@@ -350,7 +367,7 @@ def test_clean_traffic_gives_nothing_above_information():
 def test_every_wiring_finding_carries_the_caution():
     wiring = {"unreadable-line", "no-answers", "never-present", "silent-period", "duplicate-address",
               "errors-clustered", "far-station-errors", "station-errors", "errors-bus-wide", "idle-stray-bytes",
-              "missed-polls"}
+              "missed-polls", "device-count", "cable-length"}
     assert "not a measurement of the wire" in WIRING_CAUTION
     cases = [result_of(polls(300, fate=_corrupt_every({1: 50, 2: 50, 3: 50}))),
              result_of(polls(120, fate=lambda st, k, t: ("timeout", float("nan")))),

@@ -139,6 +139,12 @@ EXCEPTION_WARNING_SHARE = 0.01
 #: Codes that report a fault of the device or gateway itself: a warning at any rate (MAP p48-49).
 DEVICE_FAULT_CODES = (4, 8, 11)
 
+# -- layout ---------------------------------------------------------------------------------------
+#: Devices one RS-485 segment takes without a repeater (MSL §3.4.1; TI AN-1057) ...
+MAX_DEVICES = 32
+#: ... fewer when the line carries the Modbus bias resistors (MSL §3.4.6: the maximum drops by 4).
+BIAS_DEVICE_COST = 4
+
 # -- bus load ---------------------------------------------------------------------------------------
 #: Line utilisation above which adding stations will stretch the cycle (common practice).
 LOAD_NOTICE_UTILISATION = 0.7
@@ -189,3 +195,5 @@ class Thresholds:
     exception_warning_share: float = EXCEPTION_WARNING_SHARE
     device_fault_codes: tuple = DEVICE_FAULT_CODES
     load_notice_utilisation: float = LOAD_NOTICE_UTILISATION
+    max_devices: int = MAX_DEVICES
+    bias_device_cost: int = BIAS_DEVICE_COST
