@@ -17,6 +17,7 @@ from buswitness.analysis import dashboard, summary
 from buswitness.capture.fileformat import CaptureHeader, CaptureReader, CaptureWriter, PortInfo
 from buswitness.cli.main import main
 from buswitness.decode.timing import SerialFormat
+from buswitness.errors import OutputError
 
 WRITE_FLAGS = os.O_WRONLY | os.O_RDWR | os.O_CREAT | os.O_TRUNC | os.O_APPEND
 _OPENS: list[tuple[str, int]] = []
@@ -165,3 +166,45 @@ def test_simulated_capture_is_user_only_whatever_the_umask(tmp_path):
                        check=False, cwd=tmp_path, capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     assert stat.S_IMODE((tmp_path / "sim.bwcap").stat().st_mode) == 0o600
+
+
+def test_output_through_a_symlink_keeps_the_link_and_replaces_its_file(tmp_path):
+    real = tmp_path / "reports" / "summary.json"
+    real.parent.mkdir()
+    real.write_text("old", encoding="utf-8")
+    link = tmp_path / "latest.json"
+    link.symlink_to(real)
+    with fsutil.atomic_write(link) as f:
+        f.write("new")
+    assert link.is_symlink() and real.read_text(encoding="utf-8") == "new"
+
+
+def test_output_to_a_pipe_is_written_through_not_renamed_over(tmp_path):
+    # Found while probing `analyze --json /dev/full`: the rename replaced the device node with a file.
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    reader = subprocess.Popen(["cat", str(fifo)], stdout=subprocess.PIPE)
+    with fsutil.atomic_write(fifo) as f:
+        f.write("{}\n")
+    assert reader.communicate(timeout=30)[0] == b"{}\n"
+    assert stat.S_ISFIFO(fifo.stat().st_mode)
+    assert [p.name for p in tmp_path.iterdir()] == ["pipe"]
+
+
+@pytest.mark.skipif(os.geteuid() != 0, reason="making a device node needs root")
+def test_output_to_a_device_node_writes_into_the_device_and_leaves_the_node(tmp_path):
+    node = tmp_path / "null"
+    os.mknod(node, 0o666 | stat.S_IFCHR, os.makedev(1, 3))  # the null device (Linux devices.txt: 1, 3)
+    with fsutil.atomic_write(node) as f:
+        f.write("discarded")
+    assert stat.S_ISCHR(node.stat().st_mode)
+
+
+@pytest.mark.skipif(os.geteuid() != 0, reason="making a device node needs root")
+def test_output_to_a_full_device_is_one_clear_error(tmp_path):
+    node = tmp_path / "full"
+    os.mknod(node, 0o666 | stat.S_IFCHR, os.makedev(1, 7))  # the always-full device (Linux devices.txt: 1, 7)
+    with pytest.raises(OutputError, match=r"full: cannot write \(No space left on device\)"), \
+            fsutil.atomic_write(node) as f:
+        f.write("x" * 10000)
+    assert stat.S_ISCHR(node.stat().st_mode)
