@@ -24,13 +24,22 @@ from buswitness.analysis.rules.common import (
 from buswitness.analysis.rules.thresholds import Thresholds
 
 
+def answer_quantile_ms(result: AnalysisResult, s: StationFigures, q: float) -> float | None:
+    """The q quantile of a station's measured answer times (late ones included), within its min and max."""
+    r = s.response_ms
+    return quantile(result.acc.rt_mid[s.address], q, FINE, r.get("min"), r.get("max"))
+
+
 def suggested_timeout_ms(result: AnalysisResult, s: StationFigures, th: Thresholds) -> float | None:
-    """A timeout covering the measured answers: max(p99.9, slowest) with margin, rounded up to a usual step."""
-    slowest = s.response_ms.get("max")
-    if slowest is None:
+    """A timeout covering the measured answers: their p99.9 with margin, rounded up to a usual step.
+
+    Polls that were never answered are not in the distribution, so this is a floor; on fewer
+    than a thousand answers the p99.9 is the slowest answer itself.
+    """
+    q = answer_quantile_ms(result, s, th.suggest_quantile)
+    if q is None:
         return None
-    q = quantile(result.acc.rt_mid[s.address], th.suggest_quantile, FINE)
-    base = max(float(slowest), float(q or 0.0)) * th.timeout_margin
+    base = q * th.timeout_margin
     for step in th.timeout_steps_ms:
         if step >= base:
             return float(step)
@@ -102,15 +111,17 @@ def late_answers(result: AnalysisResult, th: Thresholds) -> list[Finding]:
             causes.append(Cause(
                 "The master's timeout is too short for this device: a valid answer with a good CRC can only come "
                 "late from the device itself.",
-                f"Set the master's timeout for this station to about {suggestion:g} ms (its slowest answer, "
-                f"{ms(r['max'])}, and the 99.9th percentile, with {round(100 * (th.timeout_margin - 1)):d}% margin); "
-                f"polls still unanswered after that are true misses."))
+                f"Set the master's timeout for this station to about {suggestion:g} ms (the 99.9th percentile "
+                f"of its answers, {ms(answer_quantile_ms(result, s, th.suggest_quantile))}, with "
+                f"{round(100 * (th.timeout_margin - 1)):d}% margin; the slowest was {ms(r['max'])}); polls still "
+                f"unanswered after that are true misses."))
         out.append(Finding(
             rule="late-answers", severity=severity, score=lost_share, station=s.address, station_label=s.label,
             t_start_s=t0, t_end_s=t1, statement=statement,
             evidence={"requests": s.requests, "timeouts": s.timeouts, "late": s.late,
                       "answers_over_timeout": s.answers_over_timeout, "missed_share": round(lost_share, 5),
                       "response_ms": dict(r), "timeout_ms": timeout_ms, "timeout_source": result.timeout.source,
+                      "p999_ms": finite(answer_quantile_ms(result, s, th.suggest_quantile)),
                       "suggested_timeout_ms": suggestion, "waiting_s": s.waiting_s},
             examples=examples, causes=causes))
     return out
@@ -195,7 +206,7 @@ def missed_polls(result: AnalysisResult, th: Thresholds) -> list[Finding]:
                        f"request or the answer is lost."),
             evidence={"requests": s.requests, "timeouts": s.timeouts, "missed_share": round(missed, 5),
                       "response_ms": dict(r), "retries": s.retries,
-                      "p999_ms": finite(quantile(result.acc.rt_mid[s.address], 0.999, FINE))},
+                      "p999_ms": finite(answer_quantile_ms(result, s, th.suggest_quantile))},
             examples=failure_examples(result, s.address, t0, t1, ("timeout",)),
             causes=[Cause("The request does not reach the device intact at its drop (a weak or reflected signal "
                           "there), so it stays silent as the protocol requires (MSL §2.4.2).",

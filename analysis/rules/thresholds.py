@@ -27,9 +27,10 @@ LATE_WARNING_SHARE = 0.01
 #: polls lost and the values it carries can no longer be trusted for control).
 LATE_CRITICAL_SHARE = 0.20
 #: The slowest answers a master should still take: the suggested timeout covers this quantile of
-#: the measured response times (common practice: cover all but the rarest one in a thousand) ...
+#: the measured response times (common practice: cover all but the rarest one in a thousand, so
+#: one freak answer does not stretch every poll cycle) ...
 SUGGEST_QUANTILE = 0.999
-#: ... and the slowest answer seen, with this margin on top (common practice: 25 %).
+#: ... with this margin on top (common practice: 25 %).
 TIMEOUT_MARGIN = 1.25
 #: Usual timeout settings, ms; a suggestion is rounded up to the next of them (common practice).
 TIMEOUT_STEPS_MS = (50, 100, 150, 200, 250, 300, 400, 500, 600, 750, 1000, 1500, 2000, 3000, 5000, 10000)
