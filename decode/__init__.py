@@ -2,6 +2,7 @@
 
 from typing import Any
 
+from buswitness.decode.bulk import frame_only
 from buswitness.decode.crc import append_crc, crc16_modbus, crc16_rows, crc_ok, lrc
 from buswitness.decode.events import Damage, Frame, Transaction
 from buswitness.decode.framer import explained_fraction, split_frames
@@ -23,4 +24,4 @@ def __getattr__(name: str) -> Any:
 
 __all__ = ["COMMON_BAUD_RATES", "Damage", "DecodeOutput", "Decoder", "DecoderConfig", "Frame", "SerialFormat",
            "Transaction", "append_crc", "crc16_modbus", "crc16_rows", "crc_ok", "decode_fields", "decode_source",
-           "exception_name", "explained_fraction", "function_name", "lrc", "parse_baud", "split_frames"]
+           "exception_name", "explained_fraction", "frame_only", "function_name", "lrc", "parse_baud", "split_frames"]
