@@ -8,7 +8,7 @@ from buswitness.decode import Decoder, DecoderConfig, append_crc
 from buswitness.decode.bulk import frame_only
 from buswitness.decode.framer import RegionScanner, split_frames
 from buswitness.decode.tables import DecodeOutput
-from hypothesis import given
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_decode_properties import VECTORS
 from test_decode_wire import FMT_19200, deliver
@@ -118,3 +118,21 @@ def test_two_bytes_per_step_crc_matches_crcmod():
     for length in (1, 4, 7, 8, 25, 256):
         rows = rng.integers(0, 256, size=(50, length), dtype=np.uint8)
         assert crc_of_rows(rows).tolist() == [ref(r.tobytes()) for r in rows]
+
+
+_FUZZ_RECORDS = st.lists(st.tuples(st.integers(0, 30_000_000),
+                                   st.one_of(st.sampled_from(VECTORS), st.binary(max_size=70)),
+                                   st.sampled_from([0, 0, 0, 0, 0x01, 0x02])), max_size=40)
+
+
+@settings(suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture], deadline=None)
+@given(_FUZZ_RECORDS, st.integers(1, 12))
+def test_fuzzed_records_decode_the_same_in_bulk_and_record_by_record(monkeypatch, records, batch_size):
+    import buswitness.decode.decoder as decoder_module
+    monkeypatch.setattr(decoder_module, "BULK_MIN_BYTES", 0)  # let the bulk path take every run
+    t, recs = 1_000_000_000, []
+    for dt, data, flags in records:
+        t += dt
+        recs.append(Record(0, t, data, flags))
+    batches = [RecordBatch.from_records(recs[i:i + batch_size]) for i in range(0, len(recs), batch_size)]
+    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}, response_timeout_ms=20))
