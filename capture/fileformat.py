@@ -133,6 +133,7 @@ class CaptureHeader:
             data = {k: v for k, v in data.items() if k in known}
             header = cls(serial=serial, ports=ports, **data)
             header.extra.update(extra)
+            _check_header(header)
             return header
         except Exception as exc:  # any malformed header is one kind of damage
             raise InputFileError(path, f"the capture header is damaged ({exc})",
@@ -149,6 +150,51 @@ class CaptureHeader:
             return datetime.fromisoformat(self.start_utc)
         except (TypeError, ValueError):
             return None
+
+
+_HEADER_TEXT = ("start_utc", "host", "tool_version", "notes", "source", "capture_id")
+#: What the decoder reads from ``extra`` (port roles as the decoder names them).
+_PORT_ROLES = ("master", "slaves", "both")
+
+
+def _is_int(v: object) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_number(v: object, lo: float, hi: float) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and lo <= v <= hi
+
+
+def _check_header(h: CaptureHeader) -> None:
+    """Refuse values no writer produces, so a crafted or damaged header fails here, not deep in the decoder."""
+    for p in h.ports:
+        if not (_is_int(p.id) and 0 <= p.id <= 255):
+            raise ValueError(f"port id {p.id!r} is not a number from 0 to 255")
+        if not isinstance(p.name, str) or not isinstance(p.latency_source, str):
+            raise ValueError(f"port {p.id} name and latency source must be text")
+        if p.latency_ms is not None and not _is_number(p.latency_ms, 0.0, 10_000.0):
+            raise ValueError(f"port {p.id} latency {p.latency_ms!r} ms is not a number from 0 to 10000")
+        if p.serial_number is not None and not isinstance(p.serial_number, str):
+            raise ValueError(f"port {p.id} serial number must be text")
+    for name in _HEADER_TEXT:
+        if not isinstance(getattr(h, name), str):
+            raise ValueError(f"{name} must be text")
+    if not _is_int(h.start_monotonic_ns) or not _is_int(h.part) or h.part < 0:
+        raise ValueError("start_monotonic_ns and part must be whole numbers")
+    if h.timing not in ("host", "none"):
+        raise ValueError(f"timing {h.timing!r} is not 'host' or 'none'")
+    if not isinstance(h.extra, dict):
+        raise ValueError("extra must be an object")
+    delay = h.extra.get("host_delay_ms")
+    if delay is not None and not _is_number(delay, 0.0, 60_000.0):
+        raise ValueError(f"host_delay_ms {delay!r} is not a number from 0 to 60000")
+    roles = h.extra.get("port_roles")
+    if roles is not None and not (isinstance(roles, dict) and all(v in _PORT_ROLES for v in roles.values())
+                                  and all(str(k).isdigit() for k in roles)):
+        raise ValueError(f"port_roles must map port numbers to one of {', '.join(_PORT_ROLES)}")
+    protocol = h.extra.get("protocol")
+    if protocol is not None and str(protocol).lower() not in ("rtu", "ascii"):
+        raise ValueError(f"protocol {protocol!r} is not rtu or ascii")
 
 
 @dataclass(frozen=True)
