@@ -40,6 +40,7 @@ RULES: dict[str, Rule] = {
     "timeout-headroom": lateness.timeout_headroom,
     "missed-polls": lateness.missed_polls,
     "errors-clustered": line.errors_clustered,
+    "error-bursts": line.error_bursts,
     "far-station-errors": line.far_station_errors,
     "station-errors": line.station_errors,
     "errors-bus-wide": line.errors_bus_wide,

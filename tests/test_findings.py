@@ -245,6 +245,15 @@ def test_errors_in_a_few_minutes_are_clustered_with_their_times():
     assert line.errors_clustered(result_of(polls(600), spread), TH) == []
 
 
+def test_a_burst_over_a_steady_error_rate_is_reported_apart():
+    steady = [(1.0 + 2.0 * i, "crc_error", 3, b"\x03\x03\x00\x00\x00") for i in range(300)]  # 30 a minute
+    burst = [(425.0 + 0.05 * i, "line_error", -1, b"\x55") for i in range(200)]
+    r = result_of(polls(600), steady + burst)
+    assert line.errors_clustered(r, TH) == []
+    (f,) = line.error_bursts(r, TH)
+    assert (f.severity, f.t_start_s, f.t_end_s) == ("notice", 420.0, 480.0) and "steady error rate" in f.statement
+
+
 def test_stray_bytes_between_intact_frames_point_at_bias():
     txs = polls(300)
     stray = [(1.0 + 2.0 * i, "stray_bytes", -1, b"\x00") for i in range(60)]  # 60 in 3600 frames: 1.7%

@@ -243,7 +243,7 @@ def _minute_damaged_answers(result: AnalysisResult, th: Thresholds) -> list[int]
 
 
 def _bursts(counts: list[int], active: list[int], th: Thresholds) -> tuple[list[int], int, int, int] | None:
-    """(burst minutes, events in them, all events, baseline) when the counts keep to a few minutes."""
+    """(burst minutes, events in them, all events, baseline) when some minutes stand far above the rest."""
     total = sum(counts[m] for m in active)
     if total < th.cluster_min_events or len(active) < 2:
         return None
@@ -251,14 +251,13 @@ def _bursts(counts: list[int], active: list[int], th: Thresholds) -> tuple[list[
     baseline = ordered[len(ordered) // 4]
     level = max(th.cluster_min_events, th.cluster_factor * (baseline + 1))
     bursts = [m for m in active if counts[m] >= level]
-    in_bursts = sum(counts[m] for m in bursts)
-    if not bursts or in_bursts < th.cluster_share * total or len(bursts) > th.cluster_max_minute_share * len(active):
+    if not bursts or len(bursts) > th.cluster_max_minute_share * len(active):
         return None
-    return bursts, in_bursts, total, baseline
+    return bursts, sum(counts[m] for m in bursts), total, baseline
 
 
-def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
-    """Damage that keeps to a few minutes: an external noise source switching on.
+def _burst_finding(result: AnalysisResult, th: Thresholds, dominant: bool) -> list[Finding]:
+    """Minutes with far more damage than the rest: holding most of it (``dominant``), or over a steady rate.
 
     Judged on the line's damage events per minute, else on the damaged answers of the stations
     without a chronic fault of their own.
@@ -275,6 +274,8 @@ def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     if found is None:
         return []
     bursts, in_bursts, total, baseline = found
+    if (in_bursts >= th.cluster_share * total) != dominant:
+        return []
     clusters: list[list[int]] = []
     for m in bursts:
         if clusters and m == clusters[-1][-1] + 1:
@@ -291,12 +292,19 @@ def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     for s in result.stations:
         examples += [e for e in failure_examples(result, s.address, outcomes=("corrupt", "timeout"))
                      if any(a <= e["t_s"] <= b for a, b in spans)][:2]
+    if dominant:
+        rule, severity = "errors-clustered", "warning"
+        statement = (f"Line errors come in bursts: {in_bursts} of {total} {what} fall in {len(bursts)} minute(s) "
+                     f"(at {times}){every}; the line is clean in between: an external noise source switching on "
+                     f"is the likely cause.")
+    else:
+        rule, severity = "error-bursts", "notice"
+        statement = (f"On top of a steady error rate ({baseline} {what} in a quiet minute), {len(bursts)} minute(s) "
+                     f"stand out with {in_bursts} (at {times}){every}: an external noise source switching on "
+                     f"then is the likely cause of those.")
     return [Finding(
-        rule="errors-clustered", severity="warning", score=share(in_bursts, total),
-        t_start_s=spans[0][0], t_end_s=spans[-1][1],
-        statement=(f"Line errors come in bursts: {in_bursts} of {total} {what} fall in {len(bursts)} "
-                   f"minute(s) (at {times}){every}; the line is clean in between: an external noise source "
-                   f"switching on is the likely cause."),
+        rule=rule, severity=severity, score=share(in_bursts, total), t_start_s=spans[0][0], t_end_s=spans[-1][1],
+        statement=statement,
         evidence={"counted": what, "total": total, "in_bursts": in_bursts, "baseline_per_minute": baseline,
                   "bursts": [{"t_start_s": a, "t_end_s": b, "events": sum(counts[m] for m in c)}
                              for (a, b), c in zip(spans, clusters)],
@@ -311,6 +319,16 @@ def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
                       "(common practice: ground the shield at one point).",
                       "Check the shield's ground connections along the run.")],
         caution=WIRING_CAUTION)]
+
+
+def errors_clustered(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """Damage that keeps to a few minutes, the line clean between them: an external noise source."""
+    return _burst_finding(result, th, dominant=True)
+
+
+def error_bursts(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """A few minutes far above a steady error rate: a noise source on top of whatever causes the rest."""
+    return _burst_finding(result, th, dominant=False)
 
 
 def idle_stray_bytes(result: AnalysisResult, th: Thresholds) -> list[Finding]:
