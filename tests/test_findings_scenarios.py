@@ -22,6 +22,8 @@ SCENARIOS = Path(__file__).resolve().parents[1] / "simulate" / "scenarios"
 #: Simulated seconds: long enough for each scenario's timed events (fault-burst: 60 s and 180 s).
 DURATION_S = 240.0
 SHORT_S = 60.0  # the unreadable-line scenarios: every second is alike
+#: Scenarios needing another length: noisy's first noise burst comes at 600 s.
+DURATIONS_S = {"fault-polarity": SHORT_S, "fault-wrong-baud": SHORT_S, "noisy": 900.0}
 
 
 def _station_map(sc) -> StationMap:
@@ -49,8 +51,7 @@ def analysed(tmp_path_factory):
                 data = json.loads((SCENARIOS / f"{name}.json").read_text(encoding="utf-8"))
                 edit(data)
                 sc = parse_scenario(json.dumps(data), f"{name}-edited.json")
-            short = name in ("fault-polarity", "fault-wrong-baud")
-            cache[key] = _run(tmp, sc, f"{name}-{latency_ms}-{len(cache)}", SHORT_S if short else DURATION_S,
+            cache[key] = _run(tmp, sc, f"{name}-{latency_ms}-{len(cache)}", DURATIONS_S.get(name, DURATION_S),
                               latency_ms)
         return cache[key]
     return get
@@ -179,3 +180,13 @@ def test_long_gaps_inside_one_stations_frames_at_1ms_are_a_gap_violation(analyse
         data["stations"][1]["gap_chars"] = 12  # about 6.9 ms at 19200, well over the timestamps' +/-1 ms
     top = analysed("fault-gap", latency_ms=1.0, edit=longer_gaps).findings[0]
     assert (top.rule, top.station) == ("gap-in-frame", 2)
+
+
+def test_noisy_line_names_the_far_station_first_and_the_burst_apart(analysed):
+    found = analysed("noisy").findings
+    data = _scenario_json("noisy")
+    farthest = max(data["stations"], key=lambda s: s["position_m"])["address"]
+    burst = data["events"][0]
+    assert (found[0].rule, found[0].station) == ("far-station-errors", farthest)
+    bursts = [f for f in found if f.rule == "error-bursts"]
+    assert len(bursts) == 1 and bursts[0].t_start_s <= burst["start_s"] < bursts[0].t_end_s
