@@ -136,3 +136,29 @@ def test_fuzzed_records_decode_the_same_in_bulk_and_record_by_record(monkeypatch
         recs.append(Record(0, t, data, flags))
     batches = [RecordBatch.from_records(recs[i:i + batch_size]) for i in range(0, len(recs), batch_size)]
     _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}, response_timeout_ms=20))
+
+
+def _walk_streams():
+    rng = np.random.default_rng(11)
+    polls = [append_crc(bytes([s, 3, 0, 0, 0, q])) for s, q in ((1, 4), (2, 10), (3, 1), (4, 7))]
+    answers = [append_crc(bytes([s, 3, 2 * q]) + bytes(2 * q)) for s, q in ((1, 4), (2, 10), (3, 1), (4, 7))]
+    periodic = b"".join(q + a for _ in range(400) for q, a in zip(polls, answers))
+    glitched = bytearray(periodic)
+    for at in rng.integers(0, len(glitched), 12).tolist():
+        glitched[at] ^= 0x5A
+    missing = b"".join(q + (a if rng.random() > 0.05 else b"") for _ in range(400) for q, a in zip(polls, answers))
+    yield periodic
+    yield bytes(glitched)
+    yield missing
+    yield b"".join(raw for _, raw in _poll_stream(9))
+
+
+def test_periodic_extension_gives_exactly_the_walks_frames():
+    from buswitness.decode.bulk import walk, walk_fast
+    for data in _walk_streams():
+        arr = np.frombuffer(data, dtype=np.uint8)
+        for expect in (False, True):
+            for start in (0, 3, 17):
+                ref_starts, ref_flags, ref_end = walk(data, start, len(data), expect)
+                starts, flags, end = walk_fast(data, arr, start, len(data), expect)
+                assert starts.tolist() == ref_starts and flags.tolist() == ref_flags and end == ref_end
