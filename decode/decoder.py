@@ -21,6 +21,7 @@ from buswitness.capture.fileformat import (
     FLAG_LOST,
     FLAG_PAUSED,
     FLAG_REOPENED,
+    FLAG_UNTIMED,
     CaptureHeader,
     RecordBatch,
 )
@@ -397,7 +398,7 @@ class Decoder:
             col.add_objects(out)
             return col.output()
         port = int(ports[0])
-        plain = (batch.flags == 0) & (lengths > 0)
+        plain = ((batch.flags & ~np.uint8(FLAG_UNTIMED)) == 0) & (lengths > 0)
         edges = np.flatnonzero(np.diff(np.concatenate(([0], plain.astype(np.int8), [0]))))
         pos = 0
         for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):

@@ -162,3 +162,15 @@ def test_periodic_extension_gives_exactly_the_walks_frames():
                 ref_starts, ref_flags, ref_end = walk(data, start, len(data), expect)
                 starts, flags, end = walk_fast(data, arr, start, len(data), expect)
                 assert starts.tolist() == ref_starts and flags.tolist() == ref_flags and end == ref_end
+
+
+def test_raw_import_with_untimed_flags_takes_the_bulk_path_and_agrees(tmp_path):
+    from buswitness.capture.fileformat import FLAG_UNTIMED
+    stream = b"".join(raw for _, raw in _poll_stream(2))
+    recs = [Record(0, i, stream[i * 512:(i + 1) * 512], FLAG_UNTIMED) for i in range(len(stream) // 512 + 1)]
+    batches = [RecordBatch.from_records(recs[i:i + 9]) for i in range(0, len(recs), 9)]
+    cfg = DecoderConfig(serial=FMT_19200, untimed=True)
+    _both_ways(batches, cfg)
+    dec = Decoder(cfg)
+    out = dec.feed_batch(batches[0])
+    assert len(out.frames) > 50 and out.transactions.response_ms.isna().all()
