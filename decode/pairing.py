@@ -256,8 +256,13 @@ class Pairing:
                                  f"station {rsp.address} answered a request addressed to station "
                                  f"{w.request.address}"))
             return
-        events.append(Damage("orphan_response", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
-                             f"a valid answer from station {rsp.address} that no pending request asked for"))
+        last = self.last_request
+        if w is None and last is not None and last.address == rsp.address and (last.function == fc):
+            detail = (f"a second answer from station {rsp.address} to one request (two stations with one "
+                      f"address, or a station repeating itself)")
+        else:
+            detail = f"a valid answer from station {rsp.address} that no pending request asked for"
+        events.append(Damage("orphan_response", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address, detail))
 
     def _ready(self) -> list[Transaction]:
         out: list[Transaction] = []

@@ -151,3 +151,10 @@ def test_four_wire_capture_with_one_adapter_per_direction_pairs_in_time_order(la
     outs.append(dec.flush())
     outcomes = [o for out in outs for o in out.transactions.outcome.astype(str)]
     assert outcomes == expected
+
+
+def test_second_answer_to_one_request_is_named_as_such():
+    txns, events = run([(0, req(4, READ)), (5, req(4, READ_OK)), (3, req(4, READ_OK))])
+    assert [t.outcome for t in txns] == ["ok"]
+    assert [(e.kind, e.station) for e in events] == [("orphan_response", 4)]
+    assert "second answer" in events[0].detail
