@@ -9,8 +9,11 @@ server ID) and FC 43/14 (read device identification) with markup, the capture go
 from __future__ import annotations
 
 import json
+import struct
 import subprocess
 import sys
+import zlib
+from pathlib import Path
 
 import crcmod.predefined
 import pytest
@@ -119,3 +122,37 @@ def test_hostile_identification_never_runs_shows_literally_and_loads_nothing(hos
     assert visit.dialogs == []
     assert visit.blocked == []
 
+
+
+def crafted_header_copy(src: Path, dst: Path, **fields) -> None:
+    """Copy a capture with text fields of its header replaced and the header CRC made valid again."""
+    from buswitness.capture.fileformat import MAGIC
+    data = src.read_bytes()
+    n = struct.unpack_from("<I", data, len(MAGIC) + 2)[0]
+    start = len(MAGIC) + 6
+    header = json.loads(data[start:start + n])
+    header["ports"][0]["name"] = fields["port_name"]
+    header["notes"] = fields["notes"]
+    raw = json.dumps(header).encode("utf-8")
+    dst.write_bytes(data[:len(MAGIC) + 2] + struct.pack("<I", len(raw)) + raw + struct.pack("<I", zlib.crc32(raw))
+                    + data[start + n + 4:])
+
+
+@pytest.mark.browser
+def test_hostile_port_name_and_notes_in_a_crafted_header_stay_text(hostile):
+    require_chromium()
+    crafted_header_copy(hostile / "h.bwcap", hostile / "crafted.bwcap", port_name=CLOSE, notes=SCRIPT + IMG)
+    for args in (("analyze", "crafted.bwcap", "--html", "crafted.html", "--json", "crafted.json", "--no-progress"),
+                 ("evidence", "crafted.bwcap", "--station", "3", "-o", "crafted-ev.html", "--no-progress")):
+        r = cli(*args, cwd=hostile)
+        assert r.returncode == 0, r.stderr
+    for page in ("crafted.html", "crafted-ev.html"):
+        html = (hostile / page).read_text(encoding="utf-8")
+        assert CLOSE not in html and SCRIPT not in html and IMG not in html
+        with OfflinePage(hostile / page) as (p, visit):
+            p.wait_for_timeout(500)
+            assert p.evaluate("typeof window.__pwned") == "undefined"
+            text = p.inner_text("body")
+        assert visit.dialogs == [] and visit.blocked == []
+        if page == "crafted-ev.html":
+            assert CLOSE in text  # the evidence report names the port, literally
