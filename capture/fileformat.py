@@ -185,15 +185,15 @@ def _check_header(h: CaptureHeader) -> None:
         raise ValueError(f"timing {h.timing!r} is not 'host' or 'none'")
     if not isinstance(h.extra, dict):
         raise ValueError("extra must be an object")
-    delay = h.extra.get("host_delay_ms")
-    if delay is not None and not _is_number(delay, 0.0, 60_000.0):
+    delay = h.extra.get("host_delay_ms", 0.0)
+    if not _is_number(delay, 0.0, 60_000.0):
         raise ValueError(f"host_delay_ms {delay!r} is not a number from 0 to 60000")
-    roles = h.extra.get("port_roles")
-    if roles is not None and not (isinstance(roles, dict) and all(v in _PORT_ROLES for v in roles.values())
+    roles = h.extra.get("port_roles", {})
+    if not (isinstance(roles, dict) and all(v in _PORT_ROLES for v in roles.values())
                                   and all(str(k).isdigit() for k in roles)):
         raise ValueError(f"port_roles must map port numbers to one of {', '.join(_PORT_ROLES)}")
-    protocol = h.extra.get("protocol")
-    if protocol is not None and str(protocol).lower() not in ("rtu", "ascii"):
+    protocol = h.extra.get("protocol", "rtu")
+    if not isinstance(protocol, str) or protocol.lower() not in ("rtu", "ascii"):
         raise ValueError(f"protocol {protocol!r} is not rtu or ascii")
 
 

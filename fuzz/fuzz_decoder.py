@@ -45,7 +45,7 @@ def _check_objects(items: list) -> None:
             if x.outcome not in OUTCOMES:
                 raise AssertionError(f"undocumented outcome {x.outcome!r}")
         elif not isinstance(x, Frame):
-            raise AssertionError(f"decoder returned {type(x).__name__}")
+            raise TypeError(f"decoder returned {type(x).__name__}")
 
 
 def _check_tables(out) -> None:
