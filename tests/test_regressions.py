@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import pytest
 from buswitness.capture.sources import open_capture
 from buswitness.errors import InputFileError
@@ -33,3 +35,18 @@ def test_last_representable_date_is_still_a_calendar_start(tmp_path):
     src = open_capture(path, kind="hex")
     assert src.header.start_utc.startswith("9999-12-31T23:59:59")
     assert sum(len(b) for b in src.iter_batches()) == 1
+
+
+# test_reliability_headers (hypothesis), 2026-12-02: a header with "host_delay_ms": null and a valid
+# checksum passed the reader and crashed DecoderConfig.from_header with a TypeError.
+@pytest.mark.parametrize("key", ["host_delay_ms", "protocol"])
+def test_null_decoder_setting_in_the_header_is_header_damage(tmp_path, key):
+    from buswitness.capture.fileformat import MAGIC, CaptureReader
+    from test_reliability_headers import base_capture, with_header
+    data = base_capture(tmp_path / "base.bwcap")
+    n = int.from_bytes(data[len(MAGIC) + 2:len(MAGIC) + 6], "little")
+    header = json.loads(data[len(MAGIC) + 6:len(MAGIC) + 6 + n])
+    header[key] = None
+    (tmp_path / "null.bwcap").write_bytes(with_header(data, header))
+    with pytest.raises(InputFileError, match=f"header is damaged.*{key}"):
+        CaptureReader(tmp_path / "null.bwcap")
