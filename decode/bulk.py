@@ -226,6 +226,9 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
         rows = np.lib.stride_tricks.sliding_window_view(arr[:limit], length)[starts[sel]]
         bad[sel] = crc_of_rows(rows) != 0
     ends = starts + lens
+    # The sequential framer waits while another rule's length still runs past the bytes at
+    # hand (it might explain more); so does the bulk path, leaving such a frame to it.
+    bad |= (alts >= MIN_FRAME) & (alts <= MAX_FRAME) & (starts + alts > arr.shape[0])
     longer = (alts == lens + 1)
     if longer.any():
         nxt = arr[np.minimum(ends, arr.shape[0] - 1)]

@@ -8,7 +8,7 @@ from buswitness.decode import Decoder, DecoderConfig, append_crc
 from buswitness.decode.bulk import frame_only
 from buswitness.decode.framer import RegionScanner, split_frames
 from buswitness.decode.tables import DecodeOutput
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from test_decode_properties import VECTORS
 from test_decode_wire import FMT_19200, deliver
@@ -127,6 +127,8 @@ _FUZZ_RECORDS = st.lists(st.tuples(st.integers(0, 30_000_000),
 
 @settings(suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture], deadline=None)
 @given(_FUZZ_RECORDS, st.integers(1, 12))
+# found by this test: an FC0F answer whose request reading would run past the bytes at hand
+@example([(0, VECTORS[0], 0), (0, VECTORS[10], 0), (0, VECTORS[0], 0), (0, VECTORS[0], 1)], 1)
 def test_fuzzed_records_decode_the_same_in_bulk_and_record_by_record(monkeypatch, records, batch_size):
     import buswitness.decode.decoder as decoder_module
     monkeypatch.setattr(decoder_module, "BULK_MIN_BYTES", 0)  # let the bulk path take every run
