@@ -1,4 +1,4 @@
-"""Every crash a fuzzer found, kept as a test (fuzz/fuzz_reader.py, fuzz/fuzz_decoder.py)."""
+"""Every crash a fuzzer or property test found, kept as a test (fuzz/fuzz_reader.py, fuzz/fuzz_decoder.py, hypothesis)."""
 
 from __future__ import annotations
 
