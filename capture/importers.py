@@ -38,6 +38,8 @@ EPOCH_THRESHOLD_S = 1e8
 EPOCH_LIMIT_S = 253402300799.0
 #: Largest time since the start a line may carry: the nanoseconds must fit an int64 (about 292 years).
 MAX_OFFSET_S = 9.2e9
+#: Largest adapter latency a '# latency_ms:' line may give (the capture header allows the same).
+MAX_LATENCY_MS = 10_000.0
 BATCH_RECORDS = 65536
 RAW_RECORD_BYTES = 256
 _SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$", re.IGNORECASE)
@@ -93,7 +95,11 @@ class HexTextSource:
                             elif key == "format":
                                 fmt = SerialFormat.parse(value).short_form
                             elif key == "latency_ms":
-                                latency = float(value)
+                                ms = float(value)
+                                if not 0 < ms <= MAX_LATENCY_MS:
+                                    raise ValueError(f"latency {value!r} ms is not more than 0 and at most "
+                                                     f"{MAX_LATENCY_MS:g}")
+                                latency = ms
                             elif key == "port":
                                 port = value
                             else:

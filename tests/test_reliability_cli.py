@@ -233,3 +233,16 @@ def test_infinite_timeout_is_a_usage_error(good, work):
     r = analyze(good[0], work, "--timeout", "inf")
     assert r.returncode == 2
     assert "timeout" in one_clear_line(r)
+
+
+@pytest.mark.parametrize("latency", ["-5", "nan", "inf", "1e300"])
+def test_impossible_latency_setting_in_hex_text_is_a_bad_setting_line(work, latency):
+    # Before: nan, inf and 1e300 reached the decoder and crashed it with a traceback.
+    (work / "lat.hex").write_text(f"# latency_ms: {latency}\n0.004 01 03 00 0A 00 02 E4 09\n"
+                                  "0.020 01 03 04 00 41 00 C8 AB B1\n", encoding="utf-8")
+    r = analyze("lat.hex", work)
+    assert r.returncode == 3
+    assert "line 1: bad setting" in one_clear_line(r)
+    r = analyze("lat.hex", work, "--on-bad-line", "skip")
+    assert r.returncode == 0 and "Traceback" not in r.stderr
+    assert "bad setting ignored" in " ".join(damage_of(work)["warnings"])
