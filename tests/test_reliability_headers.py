@@ -81,3 +81,27 @@ def test_any_header_values_give_a_typed_error_or_a_decodable_capture(tmp_path, e
         decoder.flush()
     except BuswitnessError:
         pass
+
+
+SETTING_VALUE = st.one_of(st.sampled_from(["nan", "inf", "-inf", "-5", "0", "1e300", "19200", "8E1", "7O2", "16",
+                                           "0.125", "9Q1", ""]),
+                          st.text(alphabet=st.characters(blacklist_categories=("Cs", "Cc")), max_size=10))
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.lists(st.tuples(st.sampled_from(["baud", "format", "latency_ms", "port", "notes"]), SETTING_VALUE),
+                max_size=5), st.sampled_from(["stop", "skip"]))
+def test_any_hex_text_settings_give_a_typed_error_or_a_decodable_capture(tmp_path, settings_lines, on_bad_line):
+    from buswitness.capture.sources import open_capture
+    lines = [f"# {key}: {value}" for key, value in settings_lines]
+    lines += ["0.004 01 03 00 0A 00 02 E4 09", "0.020 01 03 04 00 41 00 C8 AB B1"]  # the sample poll
+    path = tmp_path / "settings.hex"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    try:
+        src = open_capture(path, kind="hex", on_bad_line=on_bad_line)
+        decoder = Decoder(DecoderConfig.from_header(src.header))
+        for batch in src.iter_batches():
+            decoder.feed_batch(batch)
+        decoder.flush()
+    except BuswitnessError:
+        pass
