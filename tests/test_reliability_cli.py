@@ -246,3 +246,13 @@ def test_impossible_latency_setting_in_hex_text_is_a_bad_setting_line(work, late
     r = analyze("lat.hex", work, "--on-bad-line", "skip")
     assert r.returncode == 0 and "Traceback" not in r.stderr
     assert "bad setting ignored" in " ".join(damage_of(work)["warnings"])
+
+
+def test_evidence_report_on_a_damaged_capture_states_what_was_lost(good, work):
+    data = bytearray(good[0].read_bytes())
+    data[len(data) // 2] ^= 0x5A
+    (work / "flipped.bwcap").write_bytes(bytes(data))
+    r = cli("evidence", "flipped.bwcap", "--station", "1", "--no-progress", "-o", "ev.html", cwd=work)
+    assert r.returncode == 0 and "Traceback" not in r.stderr
+    html = (work / "ev.html").read_text(encoding="utf-8")
+    assert "a damaged block of 40 records" in html and "Everything readable was used" in html
