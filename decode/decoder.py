@@ -299,6 +299,14 @@ class _Port:
                 break
         self._trim()
 
+    def bulk_items(self, piece: tuple) -> list:
+        """A bulk piece as queue items, for pairing in time order with other ports."""
+        _tag, lo, hi, lens, shapes, _addrs, _fcs, raws = piece
+        base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
+        keys = (base - np.rint(lens * self.char_ns).astype(np.int64)).tolist()
+        return [(k, ("frame", self.port, raw, a, b, sh, 0.0, 0))
+                for k, raw, a, b, sh in zip(keys, raws, lo.tolist(), hi.tolist(), shapes.tolist())]
+
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
         self.scanner.scan(self.buf, len(self.buf), final, spans)
@@ -389,56 +397,70 @@ class Decoder:
         lengths = batch.length
         ports = np.unique(batch.port)
         single = ports.size == 1 and set(self.ports) <= {int(ports[0])} and self.config.protocol == "rtu"
+        plain = ((batch.flags & ~np.uint8(FLAG_UNTIMED)) == 0) & (lengths > 0)
         if not single:
+            # Several ports: each port's stream is framed on its own (bulk where it can), then
+            # everything meets in time order at pairing, as far as every port has settled.
+            for port in ports.tolist():
+                self._port_records(np.flatnonzero(batch.port == port), batch, payload, offsets, plain, None)
             out: list = []
-            for t, n, p, f, o in zip(batch.t_ns.tolist(), lengths.tolist(), batch.port.tolist(),
-                                     batch.flags.tolist(), offsets.tolist()):
-                self._record(p, t, payload[o:o + n], f)
             self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
             col.add_objects(out)
             return col.output()
-        port = int(ports[0])
-        plain = ((batch.flags & ~np.uint8(FLAG_UNTIMED)) == 0) & (lengths > 0)
-        edges = np.flatnonzero(np.diff(np.concatenate(([0], plain.astype(np.int8), [0]))))
-        pos = 0
-        for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):
-            if int(offsets[run_end - 1] + lengths[run_end - 1] - offsets[run_start]) < BULK_MIN_BYTES:
-                continue  # numpy's fixed cost per call outweighs the gain on short runs
-            self._records(batch, payload, offsets, pos, run_start, col)
-            self._bulk_run(port, batch, payload, offsets, run_start, run_end, col)
-            pos = run_end
-        self._records(batch, payload, offsets, pos, count, col)
+        self._port_records(np.arange(count), batch, payload, offsets, plain, col)
         return col.output()
 
-    def _records(self, batch: RecordBatch, payload: bytes, offsets: np.ndarray, a: int, b: int,
-                 col: Collector) -> None:
-        if a >= b:
+    def _port_records(self, idx: np.ndarray, batch: RecordBatch, payload: bytes, offsets: np.ndarray,
+                      plain: np.ndarray, col: Collector | None) -> None:
+        """Records ``idx`` of one port, bulk for long flag-free runs; ``col`` None: leave items queued."""
+        mask = plain[idx]
+        edges = np.flatnonzero(np.diff(np.concatenate(([0], mask.astype(np.int8), [0]))))
+        pos = 0
+        for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):
+            sel = idx[run_start:run_end]
+            if int(batch.length[sel].sum()) < BULK_MIN_BYTES:
+                continue  # numpy's fixed cost per call outweighs the gain on short runs
+            self._records(idx[pos:run_start], batch, payload, offsets, col)
+            self._bulk_run(sel, batch, payload, offsets, col)
+            pos = run_end
+        self._records(idx[pos:], batch, payload, offsets, col)
+
+    def _records(self, idx: np.ndarray, batch: RecordBatch, payload: bytes, offsets: np.ndarray,
+                 col: Collector | None) -> None:
+        if not idx.size:
             return
-        out: list = []
-        for i in range(a, b):
+        for i in idx.tolist():
             o, n = int(offsets[i]), int(batch.length[i])
             self._record(int(batch.port[i]), int(batch.t_ns[i]), payload[o:o + n], int(batch.flags[i]))
-        self._release(None, out)
-        col.add_objects(out)
+        if col is not None:
+            out: list = []
+            self._release(None, out)
+            col.add_objects(out)
 
-    def _bulk_run(self, port: int, batch: RecordBatch, payload: bytes, offsets: np.ndarray, a: int, b: int,
-                  col: Collector) -> None:
-        p = self._port(port)
-        t_ns = batch.t_ns[a:b]
-        lengths = batch.length[a:b]
-        data = payload[int(offsets[a]):int(offsets[b - 1] + lengths[-1])]
+    def _bulk_run(self, sel: np.ndarray, batch: RecordBatch, payload: bytes, offsets: np.ndarray,
+                  col: Collector | None) -> None:
+        p = self._port(int(batch.port[sel[0]]))
+        t_ns = batch.t_ns[sel]
+        lengths = batch.length[sel]
+        if sel[-1] - sel[0] + 1 == sel.size:
+            data = payload[int(offsets[sel[0]]):int(offsets[sel[-1]] + lengths[-1])]
+        else:
+            data = b"".join(payload[o:o + n] for o, n in zip(offsets[sel].tolist(), lengths.tolist()))
         if p.has_marks():
             p.marks(int(t_ns[0]), data, 0)
         pieces: list = []
         p.add_bulk(t_ns, lengths, data, pieces)
         for piece in pieces:
             if piece[0] == "items":
-                out: list = []
                 self._enqueue(p, piece[1])
-                self._release(None, out)
-                col.add_objects(out)
-            else:
+                if col is not None:
+                    out: list = []
+                    self._release(None, out)
+                    col.add_objects(out)
+            elif col is not None:
                 self._bulk_frames(p, piece, col)
+            else:
+                self._enqueue(p, p.bulk_items(piece))
 
     def _bulk_frames(self, p: _Port, piece: tuple, col: Collector) -> None:
         """Frames from the bulk path: times in columns, pairing in columns where traffic is regular."""

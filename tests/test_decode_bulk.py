@@ -176,3 +176,35 @@ def test_raw_import_with_untimed_flags_takes_the_bulk_path_and_agrees(tmp_path):
     dec = Decoder(cfg)
     out = dec.feed_batch(batches[0])
     assert len(out.frames) > 50 and out.transactions.response_ms.isna().all()
+
+
+def _four_wire_records(seed: int, latency_ms: float) -> list[Record]:
+    rng = np.random.default_rng(seed)
+    c = FMT_19200.char_time_s * 1e9
+    master, stations, t = [], [], 1e9
+    for i in range(300):
+        station = int(rng.integers(1, 5))
+        n = int(rng.integers(1, 30))
+        q = append_crc(bytes([station, 3, 0, 0, 0, n]))
+        master.append((t, q))
+        t += len(q) * c
+        if rng.random() < 0.9:
+            t += rng.uniform(2e6, 30e6)
+            a = append_crc(bytes([station, 3, 2 * n]) + rng.bytes(2 * n))
+            stations.append((t, a))
+            t += len(a) * c
+        t += rng.uniform(1e6, 40e6)
+    recs = [Record(0, ts, d) for ts, d in deliver(master, c, latency_ms * 1e6, phase_ns=0.4e6)]
+    recs += [Record(1, ts, d) for ts, d in deliver(stations, c, latency_ms * 1e6, phase_ns=0.9e6)]
+    return sorted(recs, key=lambda r: r.t_ns)
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_four_wire_capture_decodes_the_same_in_bulk_and_record_by_record(monkeypatch, latency_ms):
+    import buswitness.decode.decoder as decoder_module
+    monkeypatch.setattr(decoder_module, "BULK_MIN_BYTES", 0)
+    recs = _four_wire_records(8, latency_ms)
+    batches = [RecordBatch.from_records(recs[i:i + 40]) for i in range(0, len(recs), 40)]
+    cfg = DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms, 1: latency_ms},
+                        port_roles={0: "master", 1: "slaves"}, response_timeout_ms=100)
+    _both_ways(batches, cfg)
