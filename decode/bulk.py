@@ -108,6 +108,25 @@ def walk(buf: bytes, p: int, end: int, expect_response: bool) -> tuple[list[int]
     return starts, requests, p
 
 
+def walk_one_way(buf: bytes, p: int, end: int, requests: bool) -> tuple[list[int], list[bool], int]:
+    """:func:`walk` for a port that hears one direction only (four-wire bus, one adapter per pair)."""
+    starts: list[int] = []
+    add_start = starts.append
+    if requests:
+        b, m, o = _RB, _RM, _RO
+    else:
+        b, m, o = _SB, _SM, _SO
+    stop = end - LOOKAHEAD
+    while p <= stop:
+        fc = buf[p + 1]
+        n = b[fc] + m[fc] * buf[p + o[fc]]
+        if n < MIN_FRAME or n > MAX_FRAME or p + n > end:
+            break
+        add_start(p)
+        p += n
+    return starts, [requests] * len(starts), p
+
+
 #: Bytes the Python walk takes at a time before the periodic extension is tried again.
 PROBE_BYTES = 4096
 #: Longest polling cycle (in frames) the periodic extension looks for.
@@ -237,14 +256,19 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
     return int(first[0]) if first.size else n
 
 
-def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: bool
+def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: bool, one_way: int = 0
                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
     """Sure frames from ``p``: starts, lengths, shapes (numpy, possibly empty) and the next guess.
 
     A frame whose request and response rules give the same length gets shape ``EITHER``:
     only the pairing state can say which it is (echo codes, FC01 answers of 3 bytes).
+    ``one_way`` (``REQUEST`` or ``RESPONSE``) is for a port that hears only that direction.
     """
-    s, is_req, stop = walk_fast(buf, arr, p, end, expect_response)
+    if one_way:
+        starts, flags, stop = walk_one_way(buf, p, end, one_way == REQUEST)
+        s, is_req = np.asarray(starts, dtype=np.int64), np.asarray(flags, dtype=bool)
+    else:
+        s, is_req, stop = walk_fast(buf, arr, p, end, expect_response)
     if not s.size:
         return np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int8), expect_response
     n = np.diff(np.append(s, stop))

@@ -10,6 +10,7 @@ closes whatever is still open at the end of the input.
 from __future__ import annotations
 
 import heapq
+from bisect import bisect_left, bisect_right
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 
@@ -144,9 +145,12 @@ class _Port:
                                  cfg.packet_bytes, cfg.untimed)
         self.untimed = cfg.untimed
         self.role = cfg.role_for(port)
+        self.one_way = REQUEST if self.role == "master" else RESPONSE if self.role == "slaves" else 0
         self.buf = bytearray()
         self.base = 0  # absolute stream position of buf[0]
-        self.silences: dict[int, float] = {}  # absolute position of a record start -> least silence before it
+        # record starts (absolute positions, increasing) with a silence over t1.5 before them
+        self.silence_at: list[int] = []
+        self.silence_ns: list[float] = []
         self.last_key = -(1 << 62)
         self.expect_response = False  # the bulk walk's guess for the next frame's direction
         self._marks: dict[str, list] = {}
@@ -164,7 +168,8 @@ class _Port:
             if silence > self.t35_ns and not self.ascii:
                 self.scanner.add_boundary(len(self.buf))
             if silence > self.t15_ns:
-                self.silences[start] = silence
+                self.silence_at.append(start)
+                self.silence_ns.append(silence)
             self.buf.extend(data)
         self._scan(False, out)
 
@@ -234,7 +239,8 @@ class _Port:
         for i in np.flatnonzero(silence > self.t35_ns).tolist():
             self.scanner.add_boundary(int(offsets[i]))
         for i in np.flatnonzero(silence > self.t15_ns).tolist():
-            self.silences[self.base + int(offsets[i])] = float(silence[i])
+            self.silence_at.append(self.base + int(offsets[i]))
+            self.silence_ns.append(float(silence[i]))
         self.buf.extend(payload)
         self._scan_bulk(pieces)
 
@@ -246,14 +252,15 @@ class _Port:
         end = len(buf)
         # The bulk path never runs a frame across a certain silence or a silence over t1.5:
         # those frames need the sequential framer's judgement and events.
-        stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silences}), dtype=np.int64)
+        stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
         while True:
             progressed = False
             held = self._held_before(self.base + sc.settled)
             if held:
                 pieces.append(("items", held))
             if sc.junk_start is None:
-                starts, lens, shapes, expect = bulk_spans(buf, arr, sc.pos, end, self.expect_response)
+                starts, lens, shapes, expect = bulk_spans(buf, arr, sc.pos, end, self.expect_response,
+                                                          self.one_way)
                 if starts.size and self._held:
                     # stop before the first frame that comes after a held event's bytes
                     keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
@@ -323,8 +330,9 @@ class _Port:
             self.base += settled
             self.scanner.shift(settled)
             self.timeline.drop_before(self.base)
-            if self.silences:
-                self.silences = {k: v for k, v in self.silences.items() if k >= self.base}
+            gone = bisect_left(self.silence_at, self.base)
+            if gone:
+                del self.silence_at[:gone], self.silence_ns[:gone]
 
     def _item(self, span: Span) -> tuple:
         a, b = self.base + span.start, self.base + span.end
@@ -335,7 +343,7 @@ class _Port:
             t = (lo + hi) // 2 - round(len(raw) * self.char_ns)
             kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
-        gaps = [s for pos, s in self.silences.items() if a < pos < b]
+        gaps = self.silence_ns[bisect_right(self.silence_at, a):bisect_left(self.silence_at, b)]
         # Sort key among ports: a master's frame by its earliest start, a station's by its latest,
         # so an answer never sorts before the request it answers, however coarse the timestamps.
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
