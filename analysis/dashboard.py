@@ -124,9 +124,14 @@ def charts(result: AnalysisResult) -> dict:
     }
 
 
+#: Example transactions shown under each finding (the rest are in the exports).
+EXAMPLES_PER_FINDING = 5
+
+
 def finding_views(result: AnalysisResult) -> list[dict]:
     return [{"severity": f.severity, "statement": f.statement, "station_label": f.station_label,
-             "evidence": f.evidence, "causes": f.causes, "caution": f.caution,
+             "evidence": f.evidence, "examples": f.examples[:EXAMPLES_PER_FINDING], "causes": f.causes,
+             "caution": f.caution,
              "when": "" if f.t_start_s is None else f"{_clock(result, f.t_start_s)} to {_clock(result, f.t_end_s)}"}
             for f in result.findings]
 

@@ -41,6 +41,28 @@ def fmt_interval(pair: list | None) -> str:
     return f"{pair[0]:.1f}–{pair[1]:.1f}"
 
 
+def fmt_value(value: object) -> str:
+    """A finding's evidence value as plain text: numbers rounded, mappings and lists spelled out."""
+    if isinstance(value, bool) or value is None:
+        return {True: "yes", False: "no", None: "–"}[value]
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            return "–"
+        return f"{value:.4g}" if abs(value) < 1e6 else f"{value:,.0f}"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, dict):
+        return ", ".join(f"{str(k).replace('_', ' ')} {fmt_value(v)}" for k, v in value.items()) or "–"
+    if isinstance(value, (list, tuple)):
+        return "; ".join(fmt_value(v) for v in value) or "–"
+    return str(value)
+
+
+def evidence_items(evidence: dict) -> list[tuple[str, str]]:
+    """(label, text) pairs of a finding's evidence, for the templates."""
+    return [(str(k).replace("_", " "), fmt_value(v)) for k, v in (evidence or {}).items()]
+
+
 def script_json(data: object) -> str:
     """JSON that is safe inside ``<script>``: ``<``, ``>`` and ``&`` as unicode escapes, no NaN."""
     text = json.dumps(data, allow_nan=False, separators=(",", ":"))
@@ -57,7 +79,8 @@ def environment() -> jinja2.Environment:
     """Templates from the package, autoescaped whatever their name."""
     env = jinja2.Environment(loader=jinja2.FunctionLoader(_load), autoescape=True, undefined=jinja2.StrictUndefined,
                              trim_blocks=True, lstrip_blocks=True)
-    env.filters.update(ms=fmt_ms, interval=fmt_interval, fname=function_name, exname=exception_name)
+    env.filters.update(ms=fmt_ms, interval=fmt_interval, fname=function_name, exname=exception_name,
+                       evidence=evidence_items, value=fmt_value)
     return env
 
 

@@ -57,3 +57,11 @@ def test_findings_fill_the_summary_band_with_their_caution():
     assert "the device is slow <span class=\"next\">What to check: its configured response delay" in page
     assert "licensed" in page
     assert "No findings were raised" not in page
+
+
+def test_evidence_values_read_as_text_not_python_reprs():
+    from buswitness.analysis.render import evidence_items
+    items = dict(evidence_items({"damaged_share": 0.98799, "functions": {"3": 3835}, "t35_observable": False,
+                                 "worst": [{"t_s": 1.5, "gap_ms": 20.0}]}))
+    assert items == {"damaged share": "0.988", "functions": "3 3835", "t35 observable": "no",
+                     "worst": "t s 1.5, gap ms 20"}
