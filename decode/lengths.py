@@ -18,8 +18,6 @@ REQUEST = 1
 RESPONSE = 2
 EITHER = 3
 
-SHAPE_NAMES = {REQUEST: "request", RESPONSE: "response", EITHER: "unknown"}
-
 MIN_FRAME = 4
 #: Largest RTU frame: address, 253-byte PDU, CRC (MSL V1.02 p13).
 MAX_FRAME = 256

@@ -55,9 +55,6 @@ LATE_WINDOW = 64
 #: Damage kinds that mean "an answer was on the line but unusable" when they follow a request.
 ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision", "stray_bytes", "line_error", "break"})
 
-#: Failed outcomes after which an identical request counts as a retry.
-FAILED = frozenset({"timeout", "late", "corrupt"})
-
 #: With no configured timeout, a frame identical to the awaited request counts as its echo
 #: answer unless it comes later than this many times the slowest answer seen (plus a floor).
 ECHO_SLACK = 2.0
