@@ -67,6 +67,15 @@ def rotate_arg(text: str) -> tuple[str, int]:
         raise argparse.ArgumentTypeError(f"{text!r} is neither a duration (1h) nor a size (200MB)") from None
 
 
+def roles_arg(text: str) -> list[str]:
+    roles = [r.strip().lower() for r in text.split(",")]
+    bad = [r for r in roles if r not in ("master", "slaves", "both")]
+    if bad or not 1 <= len(roles) <= 2:
+        raise argparse.ArgumentTypeError(f"{text!r}: give one role per port, each master, slaves or both "
+                                         f"(e.g. master,slaves)")
+    return roles
+
+
 def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:
     """Options shared by ``record`` and ``watch``."""
     add_serial_options(p)
@@ -77,6 +86,10 @@ def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> 
     p.add_argument("--note", default="", help="free text kept in the capture header, e.g. 'pump station bus 2'")
     p.add_argument("--low-latency", action="store_true",
                    help="set the USB adapter's latency timer to 1 ms (Linux; needs root or a udev rule)")
+    p.add_argument("--roles", type=roles_arg, default=None, metavar="ROLE[,ROLE]",
+                   help="what each port hears, in port order: 'master' (only the master's pair), 'slaves' "
+                        "(only the stations' pair) or 'both' (a two-wire bus, the default); e.g. "
+                        "--roles master,slaves for a four-wire bus")
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -102,6 +115,11 @@ def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConf
     assert bus is not None
     cfg = RecorderConfig(devices=list(ports), bus=bus, output=args.output, notes=args.note,
                          low_latency=args.low_latency)
+    if getattr(args, "roles", None):
+        if len(args.roles) != len(ports):
+            raise UsageError(f"--roles names {len(args.roles)} role(s) for {len(ports)} port(s); give one per port")
+        # The decoder reads these to take direction from the port (docs/capture-format.md, header extra).
+        cfg.extra["port_roles"] = {str(i): role for i, role in enumerate(args.roles)}
     if args.rotate is not None:
         kind, value = args.rotate
         if kind == "bytes":

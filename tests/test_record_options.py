@@ -96,3 +96,17 @@ def test_adapter_back_under_another_name_is_found_by_its_usb_serial_number(tmp_p
     assert records[0].data == b"before"
     assert any(r.flags & FLAG_REOPENED for r in records)
     assert rec.stats[0].reopens == 1
+
+
+def test_roles_of_a_four_wire_bus_reach_the_decoder_through_the_header():
+    from buswitness.capture.fileformat import CaptureHeader, PortInfo
+    from buswitness.cli.cmd_record import config_from_args, roles_arg
+    from buswitness.cli.main import build_parser
+    from buswitness.decode import DecoderConfig
+    args = build_parser().parse_args(["record", "/dev/a", "/dev/b", "-o", "x.bwcap",
+                                                "--roles", "master,slaves"])
+    cfg = config_from_args(args, args.ports)
+    header = CaptureHeader(ports=[PortInfo(0, "/dev/a"), PortInfo(1, "/dev/b")], extra=dict(cfg.extra))
+    assert DecoderConfig.from_header(header).port_roles == {0: "master", 1: "slaves"}
+    with pytest.raises(argparse.ArgumentTypeError, match="one role per port"):
+        roles_arg("master,sideways")
