@@ -102,7 +102,12 @@ def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
     if result.header.timing == "none":
         lines.append(UNTIMED_NOTE)
     if result.damage is not None and not result.damage.clean:
-        lines.append("capture damage: " + "; ".join(result.damage.warnings[:3] or ["see the report"]))
+        damage = result.damage
+        parts = damage.warnings[:3] or ["see the report"]
+        if damage.lines_skipped:
+            parts = parts + [f"{damage.lines_skipped} malformed line{'s' if damage.lines_skipped != 1 else ''} "
+                             f"skipped in all"]
+        lines.append("capture damage: " + "; ".join(parts))
     if result.findings:
         lines.append("findings:")
         for f in result.findings[:max_findings]:

@@ -10,6 +10,10 @@ from buswitness.cli.common import add_input_options, serial_from_args
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
 
+#: No master waits minutes for an answer; a larger value is a typing error (common practice).
+MAX_TIMEOUT_MS = 600_000.0
+
+
 def timeout_arg(text: str) -> float:
     """``200ms``, ``0.2s`` or a bare number of milliseconds, as milliseconds."""
     from buswitness.cli.common import duration_s
@@ -17,9 +21,11 @@ def timeout_arg(text: str) -> float:
     try:
         value = float(s)
     except ValueError:
-        return duration_s(s) * 1000.0
-    if value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: a timeout must be more than zero")
+        value = duration_s(s) * 1000.0
+    if not 0 < value <= MAX_TIMEOUT_MS:
+        raise argparse.ArgumentTypeError(
+            f"{text!r}: a master timeout must be more than zero and at most {MAX_TIMEOUT_MS / 1000:.0f} s "
+            f"(e.g. 200ms or 1s)")
     return value
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import math
 import re
 
 from buswitness.decode.timing import SerialFormat, parse_baud
@@ -28,8 +29,8 @@ def duration_s(text: str) -> float:
             pos = m.end()
         if pos != len(s) or not s:
             raise argparse.ArgumentTypeError(f"{text!r} is not a duration (e.g. 8h, 90m, 30s, 200ms)") from None
-    if value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: a duration must be more than zero")
+    if not (value > 0 and math.isfinite(value)):
+        raise argparse.ArgumentTypeError(f"{text!r}: a duration must be a finite time of more than zero")
     return value
 
 

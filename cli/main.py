@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 import sys
-from typing import Sequence
+from typing import NoReturn, Sequence
 
 from buswitness import __version__
 from buswitness.errors import EXIT_USAGE, BuswitnessError
@@ -18,8 +18,15 @@ EPILOG = """exit codes: 0 success, 2 usage error, 3 unreadable or invalid input 
 4 serial device error"""
 
 
+class OneLineParser(argparse.ArgumentParser):
+    """An argument parser whose usage errors are one line naming the option and where to read more."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(EXIT_USAGE, f"{self.prog}: {message} (see '{self.prog} --help')\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = OneLineParser(
         prog="buswitness",
         description="Record an RS-485 Modbus RTU bus and find out which station times out, when, how often "
                     "and why.",
