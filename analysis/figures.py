@@ -381,8 +381,9 @@ class Accumulator:
         data = self.bus_minutes.ensure(int(minute.max()) + 1)
         np.add.at(data[:, 0], minute, busy / 1e6)
         np.add.at(data, (minute, len(BUS_MINUTE_COLUMNS) + kind), 1)
-        for name, col in (("crc_error", 7), ("collision", 8)):
-            sel = (kind == _KIND_INDEX[name]) & (row > 0)
+        # A truncated frame failed its CRC check too: both count as the station's CRC errors.
+        for names, col in ((("crc_error", "truncated"), 7), (("collision",), 8)):
+            sel = np.isin(kind, [_KIND_INDEX[n] for n in names]) & (row > 0)
             for st in np.unique(station[sel]):
                 m = minute[sel & (station == st)]
                 series = self.station_minutes.setdefault(int(st), _Growing(len(MINUTE_COLUMNS)))

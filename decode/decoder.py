@@ -588,6 +588,7 @@ class Decoder:
             _key, _seq, item = heapq.heappop(q)
             if item[0] == "damage":
                 out.append(self.pairing.on_damage(item[1]))
+                out.extend(self.pairing.collisions(item[1]))
                 continue
             _tag, port, raw, lo, hi, shape, gap, wire = item
             self._deliver(port, raw, lo, hi, shape, gap, wire, out)

@@ -34,7 +34,9 @@ AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past 
 AWAIT    other response                   a recent ``timeout`` matches: make it ``late``;
                                           same function: event ``unexpected_responder``;
                                           else ``orphan_response`` -> AWAIT(N)
-AWAIT    damage after the request         remember it (the answer was probably hit) -> AWAIT
+AWAIT    damage after the request         remember it (the answer was probably hit); shaped
+                                          like the late answer of a timed-out station M:
+                                          ``collision`` events for M and N -> AWAIT
 end      flush                            close the wait as above, emit everything
 ======== ================================ ==================================================
 """
@@ -75,6 +77,7 @@ class _Slot:
 class _Await:
     request: Frame
     damage: Damage | None = None
+    collided: bool = False
 
 
 class Pairing:
@@ -135,6 +138,35 @@ class Pairing:
             if w.damage is None:
                 w.damage = damage
         return damage
+
+    def collisions(self, damage: Damage) -> list[Damage]:
+        """Collision events when damage while awaiting N is shaped like a late answer from M.
+
+        A station M whose request timed out moments ago answers late, while station N answers
+        the master's next request: damaged bytes that begin with M's address and function code
+        are M's late answer running into N's (M may be N itself: a late answer running into the
+        answer to the master's retry). Each of the two answers gets a ``collision`` event (once
+        per wait); M's transaction stays a timeout, N's becomes ``corrupt`` through the damage.
+        """
+        w = self.waiting
+        if w is None or w.collided or len(damage.raw) < 2 or damage.kind not in ANSWER_DAMAGE:
+            return []
+        n_addr = w.request.address
+        for slot in reversed(self.slots):
+            txn = slot.txn
+            if slot.final or txn.outcome != "timeout" or txn.station == 0:
+                continue
+            if damage.raw[0] == txn.station and damage.raw[1] & 0x7F == txn.function:
+                w.collided = True
+                m = txn.station
+                if m == n_addr:
+                    text = (f"station {m}'s late answer overlapped its own answer to the master's retry "
+                            f"(two answers from one station)")
+                else:
+                    text = f"a late answer from station {m} overlapped the answer of station {n_addr}"
+                return [Damage("collision", damage.port, damage.t_ns, damage.raw, m, text),
+                        Damage("collision", damage.port, damage.t_ns, damage.raw, n_addr, text)]
+        return []
 
     def flush(self) -> list[Transaction]:
         self._close_wait()

@@ -69,8 +69,10 @@ def test_counts_and_percentiles_equal_the_truth_on_a_clean_bus(tmp_path):
     assert summary["timeout"]["source"] == "inferred" and summary["timeout"]["timeout_ms"] == 200.0
 
 
-@pytest.mark.xfail(reason="the decoder does not yet pair late answers that collide with the next poll the way "
-                          "the truth counts them (timeouts, corrupt, collisions of the slow station)", strict=False)
+@pytest.mark.xfail(reason="where a late answer collides, the sniffer sees one damaged run for two overlapping "
+                          "frames, and a request garbled by a late answer is invisible: on this bus 7 of the 9 "
+                          "collisions of the slow station, 5 of its 9 CRC failures and all but one of its 1224 "
+                          "requests are recovered (run tests/test_analysis_truth.py for the diff)", strict=True)
 def test_counts_equal_the_truth_when_late_answers_collide(tmp_path):
     summary, truth = run(tmp_path, parse_scenario(json.dumps(scenario(tail=True)), "test"))
     assert_counts_equal_truth(summary, truth)
@@ -92,5 +94,6 @@ def test_summary_counts_equal_the_decoded_tables_on_the_demo_bus(tmp_path):
         assert s["requests"] == len(mine)
         assert s["timeouts"] == outcomes.get("timeout", 0) and s["late"] == outcomes.get("late", 0)
         assert s["answered"] == outcomes.get("ok", 0) + outcomes.get("exception", 0)
-        assert s["crc_errors"] == int(((ev["kind"].astype(str) == "crc_error") & (ev["station"] == s["address"])).sum())
+        crc_failed = ev["kind"].astype(str).isin(["crc_error", "truncated"])
+        assert s["crc_errors"] == int((crc_failed & (ev["station"] == s["address"])).sum())
     assert summary["bus"]["requests"] == len(tx)

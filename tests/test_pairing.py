@@ -158,3 +158,26 @@ def test_second_answer_to_one_request_is_named_as_such():
     assert [t.outcome for t in txns] == ["ok"]
     assert [(e.kind, e.station) for e in events] == [("orphan_response", 4)]
     assert "second answer" in events[0].detail
+
+
+def garbled(frame: bytes) -> bytes:
+    """The frame with its tail overwritten, as when another driver talks over it."""
+    return frame[:3] + bytes(b ^ 0x5A for b in frame[3:])
+
+
+def test_late_answer_running_into_the_next_stations_answer_is_a_collision_of_both():
+    txns, events = run([(0, req(7, READ)), (200, req(1, READ)), (3, garbled(req(7, READ_OK)))])
+    collisions = sorted(e.station for e in events if e.kind == "collision")
+    assert collisions == [1, 7]
+    assert [(t.station, t.outcome) for t in txns] == [(7, "timeout"), (1, "corrupt")]
+
+
+def test_late_answer_running_into_the_answer_to_the_retry_is_two_answers_colliding():
+    txns, events = run([(0, req(7, READ)), (200, req(7, READ)), (3, garbled(req(7, READ_OK)))])
+    assert sorted(e.station for e in events if e.kind == "collision") == [7, 7]
+    assert [(t.outcome, t.retry) for t in txns] == [("timeout", False), ("corrupt", True)]
+
+
+def test_damage_after_a_request_with_no_timed_out_station_is_no_collision():
+    _, events = run([(0, req(1, READ)), (3, garbled(req(1, READ_OK))), (200, req(2, READ))])
+    assert not [e for e in events if e.kind == "collision"]
