@@ -1,4 +1,8 @@
-"""Per-station figures from decoder-shaped tables: counts, quantiles, timeout inference, station map."""
+"""Per-station figures from decoder-shaped tables: counts, quantiles, timeout inference, station map.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""Builders for decoder-shaped tables (docs/tables.md) used by the analysis tests; no tests here."""
+"""Builders for decoder-shaped tables (docs/tables.md) used by the analysis tests; no tests here.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""On simulator captures, the figures in summary.json equal the simulator's ground truth."""
+"""On simulator captures, the figures in summary.json equal the simulator's ground truth.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

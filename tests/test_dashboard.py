@@ -1,4 +1,8 @@
-"""The dashboard file: self-contained, escaped, built from the analysis result."""
+"""The dashboard file: self-contained, escaped, built from the analysis result.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

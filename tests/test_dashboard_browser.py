@@ -1,4 +1,8 @@
-"""The dashboard and the evidence report in headless Chromium: offline, no errors, hostile text inert."""
+"""The dashboard and the evidence report in headless Chromium: offline, no errors, hostile text inert.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""The bulk (columnar) path gives exactly what the record-by-record path gives."""
+"""The bulk (columnar) path gives exactly what the record-by-record path gives.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 import numpy as np
 import pandas as pd

@@ -1,4 +1,8 @@
-"""The decoder facade end to end: records in, frames and transactions out, objects and tables alike."""
+"""The decoder facade end to end: records in, frames and transactions out, objects and tables alike.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 import pandas as pd
 import pytest

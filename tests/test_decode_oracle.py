@@ -3,6 +3,8 @@
 Truth is the simulator's record of every frame on the wire and every transaction; the
 decoder sees only the records the simulated adapter delivered. Figures are printed
 (``pytest -s``) so the closing note can quote them.
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
 """
 
 from __future__ import annotations

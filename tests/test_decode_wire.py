@@ -3,6 +3,8 @@
 Bytes of a frame go back to back at the character time; the adapter hands them over in
 packets when its latency timer expires or its 62-byte buffer fills (TIMING.md), and the
 read returns a fixed host delay later.
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
 """
 
 from __future__ import annotations

@@ -1,4 +1,8 @@
-"""``buswitness demo``: the README's first command writes a realistic night's reports."""
+"""``buswitness demo``: the README's first command writes a realistic night's reports.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

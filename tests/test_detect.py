@@ -1,4 +1,8 @@
-"""``detect``: naming a bus's baud rate and format from what receivers at trial settings deliver."""
+"""``detect``: naming a bus's baud rate and format from what receivers at trial settings deliver.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 from __future__ import annotations
 

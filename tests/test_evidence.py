@@ -1,4 +1,8 @@
-"""The evidence report on one station: identity, method, figures equal to analyze's, late list."""
+"""The evidence report on one station: identity, method, figures equal to analyze's, late list.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""transactions.csv, frames.csv, events.csv and their Parquet twins."""
+"""transactions.csv, frames.csv, events.csv and their Parquet twins.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""The capture file: round trips, cut-off tails, rotation, damage and bounded-memory streaming."""
+"""The capture file: round trips, cut-off tails, rotation, damage and bounded-memory streaming.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 import os
 import struct

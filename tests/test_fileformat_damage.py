@@ -1,4 +1,8 @@
-"""Damaged capture files and hex text: every readable record kept, only typed errors, never a crash."""
+"""Damaged capture files and hex text: every readable record kept, only typed errors, never a crash.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 import random
 

@@ -3,6 +3,8 @@
 Every scenario is simulated once per module (a few minutes, fixed seed), written as a capture
 file, opened and analysed as ``analyze`` does. The expected station and time range come from
 the scenario's own JSON (the fault it injects), not from the analysis.
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
 """
 
 from __future__ import annotations

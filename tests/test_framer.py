@@ -1,4 +1,8 @@
-"""RTU framing by length rules and CRC, with resynchronisation after noise."""
+"""RTU framing by length rules and CRC, with resynchronisation after noise.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 import os
 

@@ -1,4 +1,8 @@
-"""Importers for timestamped hex text and raw bytes, and recognising an input by its content."""
+"""Importers for timestamped hex text and raw bytes, and recognising an input by its content.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from pathlib import Path
 

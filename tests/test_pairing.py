@@ -1,4 +1,8 @@
-"""Pairing requests with responses: outcomes, retries, echoes and direction on a two-wire bus."""
+"""Pairing requests with responses: outcomes, retries, echoes and direction on a two-wire bus.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 import pytest
 from buswitness.decode import Damage, DecoderConfig, Transaction, append_crc

@@ -2,6 +2,8 @@
 
 Escape sequences are those of termios(3) (REFERENCES.md §6): ``FF FF`` is one 0xFF data
 byte, ``FF 00 X`` is byte X received with a parity or framing error, ``FF 00 00`` a break.
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
 """
 
 from __future__ import annotations

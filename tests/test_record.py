@@ -2,6 +2,8 @@
 
 A helper process (tests/ptyhelpers.py) plays the adapter: it owns a pty, points a symlink
 at its slave end and paces bytes into the master end at 115200 baud.
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
 """
 
 from __future__ import annotations

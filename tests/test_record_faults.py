@@ -1,5 +1,9 @@
 """``record`` when things go wrong: disk full, output directory removed, ports that cannot be opened,
-a writer that falls behind, and the adapter latency timer in sysfs."""
+a writer that falls behind, and the adapter latency timer in sysfs.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

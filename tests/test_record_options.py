@@ -1,4 +1,8 @@
-"""``record`` options and views: rotation, --until, the status line, reconnecting by USB serial number."""
+"""``record`` options and views: rotation, --until, the status line, reconnecting by USB serial number.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

@@ -1,4 +1,8 @@
-"""Every crash a fuzzer or property test found, kept as a test (fuzz/fuzz_reader.py, fuzz/fuzz_decoder.py, hypothesis)."""
+"""Every crash a fuzzer or property test found, kept as a test (fuzz/fuzz_reader.py, fuzz/fuzz_decoder.py, hypothesis).
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

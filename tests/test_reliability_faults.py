@@ -5,6 +5,8 @@ removed, SIGTERM/SIGINT and SIGKILL. Here: a disk that is really full (a 256 kB 
 the machine allows mounting one), SIGTERM while the adapter is away, and a capture killed with
 SIGKILL analysed end to end. Each test writes what it measured to
 ``test-artifacts/reliability-faults.json`` (the figures in docs/reliability.md).
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
 """
 
 from __future__ import annotations

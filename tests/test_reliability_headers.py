@@ -3,6 +3,8 @@ error or a capture the decoder can take: never an exception from deep inside the
 
 The coverage-guided reader harness rarely gets past the header CRC, so this drives the header
 fields directly.
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
 """
 
 from __future__ import annotations

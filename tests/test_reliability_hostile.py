@@ -4,6 +4,8 @@ The payloads travel the whole way a real one would: a simulated station answers 
 server ID) and FC 43/14 (read device identification) with markup, the capture goes through
 ``analyze`` and ``evidence``, and headless Chromium opens the pages offline. Each payload sets
 ``window.__pwned`` if it ever runs.
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
 """
 
 from __future__ import annotations

@@ -1,5 +1,9 @@
 """Safe defaults: captures are only ever read by ``analyze``, reports are replaced whole or not at all,
-and capture files are private to their owner."""
+and capture files are private to their owner.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

@@ -3,6 +3,8 @@
 The model itself is the one in /work/shared/TIMING.md, after FTDI AN232B-04 ("Small Amounts of
 Data": a packet when 62 data bytes are buffered or when the latency timer expires; the timer
 restarts after each packet) and REFERENCES.md section 5.
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
 """
 
 import dataclasses

@@ -1,4 +1,8 @@
-"""``buswitness simulate`` on the command line."""
+"""``buswitness simulate`` on the command line.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from buswitness.capture.fileformat import read_header
 from buswitness.cli.main import main

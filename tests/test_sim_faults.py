@@ -1,4 +1,8 @@
-"""Each built-in single-fault scenario shows its fault on the wire, and only there."""
+"""Each built-in single-fault scenario shows its fault on the wire, and only there.
+
+Outside check values carry their source inline (source: the MAP/MSL specifications,
+TIMING.md or termios(3), as cited beside each).
+"""
 
 import dataclasses
 

@@ -1,4 +1,8 @@
-"""Scenario files: the built-ins load, and mistakes give one clear message naming file and field."""
+"""Scenario files: the built-ins load, and mistakes give one clear message naming file and field.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 import json
 

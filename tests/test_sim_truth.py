@@ -1,4 +1,8 @@
-"""The simulator's truth agrees with its own capture: bytes, CRC validity, timing, determinism."""
+"""The simulator's truth agrees with its own capture: bytes, CRC validity, timing, determinism.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 import numpy as np
 import pytest

@@ -1,4 +1,8 @@
-"""``watch`` and the rolling per-station counters behind it."""
+"""``watch`` and the rolling per-station counters behind it.
+
+Source: the checks here compare with what the test itself made (simulator truth, bytes it
+wrote, the project's documented formats); no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 
