@@ -25,4 +25,5 @@ def __getattr__(name: str) -> Any:
     raise AttributeError(f"module 'buswitness.analysis' has no attribute {name!r}")
 
 
-__all__ = sorted(_HOME)
+__all__ = ["AnalysisOptions", "AnalysisResult", "BusFigures", "StationFigures", "StationInfo", "StationMap",
+           "TimeoutEstimate", "analyze", "analyze_tables", "load_station_map"]

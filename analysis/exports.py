@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 from buswitness.fsutil import atomic_write
@@ -32,9 +33,9 @@ class TableExporter:
         self.t0_ns = t0_ns
         self.utc_anchor = utc_anchor
         self._stack = contextlib.ExitStack()
-        self._csv: dict[str, object] = {}
-        self._parquet: dict[str, object] = {}
-        self._parquet_files: dict[str, object] = {}
+        self._csv: dict[str, Any] = {}
+        self._parquet: dict[str, Any] = {}
+        self._parquet_files: dict[str, Any] = {}
         self._header_written: set[str] = set()
         self.paths: list[Path] = []
         for name in ("transactions", "frames", "events"):

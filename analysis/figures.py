@@ -71,7 +71,7 @@ class _Growing:
 
     def __init__(self, width: int, dtype: type = np.int64, fill: float = 0) -> None:
         self.fill = fill
-        self.data = np.full((64, width), fill, dtype=dtype)
+        self.data: np.ndarray = np.full((64, width), fill, dtype=dtype)
         self.minutes = 0
 
     def ensure(self, n_minutes: int) -> np.ndarray:

@@ -195,7 +195,6 @@ def bench_capture(name: str, path: Path, runs: int, rows: list, browser: bool) -
     if browser and Path("/usr/bin/chromium").exists():
         b = [run_child("browser", html) for _ in range(runs)]
         rows.append((name, "open in chromium", med([r["seconds"] for r in b]), "", f"{b[0]['charts']} charts", ""))
-    return None
 
 
 def main() -> None:

@@ -26,13 +26,13 @@ import struct
 import time
 import uuid
 import zlib
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import BinaryIO, Iterable, Iterator, Sequence
+from typing import BinaryIO
 
 import numpy as np
-
 from buswitness import __version__
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, NotACaptureError, OutputError, UnsupportedVersionError
@@ -109,7 +109,7 @@ class CaptureHeader:
 
     @classmethod
     def new(cls, serial: SerialFormat, ports: Sequence[PortInfo], notes: str = "", source: str = "record",
-            **kw) -> "CaptureHeader":
+            **kw) -> CaptureHeader:
         """A header for a capture starting now: UTC wall clock and monotonic clock read together."""
         mono = time.monotonic_ns()
         utc = datetime.now(timezone.utc)
@@ -123,7 +123,7 @@ class CaptureHeader:
         return json.dumps(data, sort_keys=True).encode("utf-8")
 
     @classmethod
-    def from_json(cls, raw: bytes, path: object = "?") -> "CaptureHeader":
+    def from_json(cls, raw: bytes, path: object = "?") -> CaptureHeader:
         try:
             data = json.loads(raw.decode("utf-8"))
             ports = [PortInfo(**p) for p in data.pop("ports")]
@@ -234,7 +234,7 @@ class RecordBatch:
             pos += n
 
     @classmethod
-    def from_records(cls, records: Iterable[Record]) -> "RecordBatch":
+    def from_records(cls, records: Iterable[Record]) -> RecordBatch:
         recs = list(records)
         return cls(
             t_ns=np.fromiter((r.t_ns for r in recs), dtype=np.int64, count=len(recs)),
@@ -245,7 +245,7 @@ class RecordBatch:
         )
 
     @classmethod
-    def empty(cls) -> "RecordBatch":
+    def empty(cls) -> RecordBatch:
         return cls(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.uint8), np.zeros(0, np.uint8),
                    np.zeros(0, np.uint8))
 
@@ -455,7 +455,7 @@ class CaptureWriter:
                 os.close(self._fd)
                 self._fd = None
 
-    def __enter__(self) -> "CaptureWriter":
+    def __enter__(self) -> CaptureWriter:
         return self
 
     def __exit__(self, *exc: object) -> None:
@@ -555,7 +555,7 @@ def find_parts(path: str | os.PathLike) -> tuple[list[Path], list[int]]:
         found[-1] = p
     numbers = sorted(found)
     highest = numbers[-1]
-    missing = [k for k in range(0, highest + 1) if k not in found]
+    missing = [k for k in range(highest + 1) if k not in found]
     return [found[k] for k in numbers], missing
 
 
@@ -571,9 +571,10 @@ class CaptureReader:
     def __init__(self, path: str | os.PathLike | Sequence[str | os.PathLike], *, single_file: bool = False,
                  read_size: int = 4 << 20) -> None:
         self.report = ReadReport()
+        missing: list[int] = []
         if isinstance(path, (str, os.PathLike)):
             if single_file:
-                paths, missing = [Path(path)], []
+                paths = [Path(path)]
             else:
                 paths, missing = find_parts(path)
         else:

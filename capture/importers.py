@@ -21,13 +21,12 @@ from __future__ import annotations
 
 import os
 import re
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
-
 from buswitness.capture.fileformat import FLAG_UNTIMED, CaptureHeader, PortInfo, ReadReport, RecordBatch
 from buswitness.decode.timing import SerialFormat, parse_baud
 from buswitness.errors import InputFileError, UsageError
@@ -71,7 +70,7 @@ class HexTextSource:
         if self.path.is_dir():
             raise InputFileError(self.path, "is a directory, not a hex text file")
         try:
-            return open(self.path, "r", encoding="utf-8", errors="replace", newline=None)
+            return open(self.path, encoding="utf-8", errors="replace", newline=None)
         except FileNotFoundError:
             raise InputFileError(self.path, "no such file") from None
         except OSError as exc:
@@ -118,7 +117,7 @@ class HexTextSource:
         serial = self.serial or SerialFormat.parse(fmt, baud)
         start_utc = ""
         self._epoch = first_t is not None and EPOCH_THRESHOLD_S < first_t <= EPOCH_LIMIT_S
-        self._t0 = first_t if self._epoch else 0.0
+        self._t0: float = float(first_t) if self._epoch and first_t is not None else 0.0
         if self._epoch and first_t is not None:
             start_utc = datetime.fromtimestamp(first_t, timezone.utc).isoformat(timespec="microseconds")
         return CaptureHeader(serial=serial, ports=[PortInfo(0, port, latency, "user" if latency else "unknown")],

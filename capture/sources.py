@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import os
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Iterator, Protocol
+from typing import Protocol
 
 from buswitness.capture.fileformat import MAGIC, CaptureHeader, CaptureReader, ReadReport, RecordBatch
 from buswitness.capture.importers import HexTextSource, RawBinarySource, looks_like_hex_text

@@ -16,6 +16,7 @@ from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.common import add_serial_options, duration_s, serial_from_args, size_bytes
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import UsageError
+from rich.console import RenderableType
 
 if TYPE_CHECKING:
     from buswitness.analysis.rolling import LiveDecoder
@@ -231,7 +232,7 @@ def _hms(seconds: float) -> str:
     return f"{s // 3600:d}:{s // 60 % 60:02d}:{s % 60:02d}"
 
 
-def status_renderable(rec: Recorder, live_decoder: object | None = None) -> object:
+def status_renderable(rec: Recorder, live_decoder: object | None = None) -> RenderableType:
     """The status line: elapsed, per-port bytes/records/rate, current part, last error, station counts."""
     from rich.table import Table
     from rich.text import Text

@@ -16,6 +16,7 @@ from buswitness.cli.cmd_record import (
     summary,
 )
 from buswitness.cli.common import duration_s
+from rich.console import RenderableType
 
 HELP = "live per-station figures in the terminal"
 
@@ -37,7 +38,7 @@ def _ms(value: float | None) -> str:
     return "-" if value is None else f"{value:.1f}"
 
 
-def station_table(figures: RollingStations, rec: Recorder | None = None, note: str | None = None) -> object:
+def station_table(figures: RollingStations, rec: Recorder | None = None, note: str | None = None) -> RenderableType:
     """The live table: one row per station; the ports' byte counts and any note underneath."""
     from rich.table import Table
 
@@ -77,14 +78,14 @@ def run(args: argparse.Namespace) -> int:
 
     said: list[bool] = []
 
-    def table() -> object:
+    def table() -> RenderableType:
         dec = figures.decoder
         if figures.tried and dec is None and not said:
             said.append(True)
             message("the decoder is not available in this build: only byte counts are shown")
         return station_table(dec.figures if dec else RollingStations(), rec, dec.disabled_reason if dec else None)
 
-    def render() -> object:
+    def render() -> RenderableType:
         figures.update()
         return table()
 

@@ -4,13 +4,21 @@ from __future__ import annotations
 
 import argparse
 import sys
-from typing import NoReturn, Sequence
+from collections.abc import Sequence
+from typing import NoReturn
 
 from buswitness import __version__
+from buswitness.cli import (
+    cmd_analyze,
+    cmd_demo,
+    cmd_detect,
+    cmd_evidence,
+    cmd_inspect,
+    cmd_record,
+    cmd_simulate,
+    cmd_watch,
+)
 from buswitness.errors import EXIT_USAGE, BuswitnessError
-
-from buswitness.cli import (cmd_analyze, cmd_demo, cmd_detect, cmd_evidence, cmd_inspect, cmd_record,
-                            cmd_simulate, cmd_watch)
 
 VERBS = (cmd_demo, cmd_record, cmd_analyze, cmd_evidence, cmd_simulate, cmd_detect, cmd_watch, cmd_inspect)
 

@@ -9,7 +9,8 @@ The package is split by pipeline stage:
 - ``buswitness.cli``      the ``buswitness`` command line (argument parsing and orchestration only)
 """
 
-from importlib.metadata import PackageNotFoundError, version as _version
+from importlib.metadata import PackageNotFoundError
+from importlib.metadata import version as _version
 
 try:
     __version__ = _version("buswitness")

@@ -12,8 +12,9 @@ import contextlib
 import os
 import stat
 import tempfile
+from collections.abc import Iterator
 from pathlib import Path
-from typing import IO, Iterator
+from typing import IO
 
 from buswitness.errors import OutputError
 

@@ -55,7 +55,7 @@ class SerialFormat:
             raise SerialFormatError(f"{self.stop_bits!r} stop bits is not possible (1, 1.5 or 2)")
 
     @classmethod
-    def parse(cls, short_form: str, baud: int = 19200) -> "SerialFormat":
+    def parse(cls, short_form: str, baud: int = 19200) -> SerialFormat:
         """Parse the usual short form (``8E1``, ``8N2``, ``7E1``) at the given baud rate."""
         match = _SHORT_FORM.match(short_form or "")
         if not match:
@@ -112,7 +112,7 @@ class SerialFormat:
         return {"baud": self.baud, "format": self.short_form}
 
     @classmethod
-    def from_dict(cls, data: dict) -> "SerialFormat":
+    def from_dict(cls, data: dict) -> SerialFormat:
         return cls.parse(str(data.get("format", "8E1")), int(data.get("baud", 19200)))
 
 

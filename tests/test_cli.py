@@ -5,7 +5,6 @@ import sys
 from pathlib import Path
 
 import pytest
-
 from buswitness.cli.main import VERBS, main
 
 SAMPLES = Path(__file__).resolve().parent.parent / "sample_captures"

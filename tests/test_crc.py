@@ -1,8 +1,7 @@
 """CRC-16/MODBUS and LRC against the specification and the CRC catalogue."""
 
-import numpy as np
 import crcmod.predefined
-
+import numpy as np
 from buswitness.decode.crc import append_crc, crc16_modbus, crc16_rows, crc_ok, lrc
 
 

@@ -10,10 +10,18 @@ import tracemalloc
 
 import numpy as np
 import pytest
-
 from buswitness.capture.fileformat import (
-    FLAG_LINE_ERROR, FLAG_REOPENED, FORMAT_VERSION, MAGIC, CaptureHeader, CaptureReader, CaptureWriter, PortInfo,
-    Record, part_path, read_header,
+    FLAG_LINE_ERROR,
+    FLAG_REOPENED,
+    FORMAT_VERSION,
+    MAGIC,
+    CaptureHeader,
+    CaptureReader,
+    CaptureWriter,
+    PortInfo,
+    Record,
+    part_path,
+    read_header,
 )
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, NotACaptureError, OutputError, UnsupportedVersionError

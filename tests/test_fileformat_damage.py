@@ -7,13 +7,12 @@ wrote, the project's documented formats); no check value comes from outside the 
 import random
 
 import pytest
-from hypothesis import HealthCheck, given, settings
-from hypothesis import strategies as st
-
 from buswitness.capture.fileformat import CaptureHeader, CaptureReader, CaptureWriter, PortInfo, Record
 from buswitness.capture.sources import open_capture
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import BuswitnessError
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 RECORDS = [Record(i % 2, 1_000 * i, bytes([(i * 7 + k) % 256 for k in range(i % 9)]), 0) for i in range(60)]
 

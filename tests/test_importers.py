@@ -7,7 +7,6 @@ wrote, the project's documented formats); no check value comes from outside the 
 from pathlib import Path
 
 import pytest
-
 from buswitness.capture.fileformat import FLAG_UNTIMED
 from buswitness.capture.sources import open_capture
 from buswitness.decode.crc import crc_ok

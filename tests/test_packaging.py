@@ -25,6 +25,6 @@ def test_no_generic_top_level_names_are_claimed():
 
 
 def test_console_script_is_installed():
-    exe = shutil.which("buswitness") or str((__import__("pathlib").Path(sys.executable).parent / "buswitness"))
+    exe = shutil.which("buswitness") or str(__import__("pathlib").Path(sys.executable).parent / "buswitness")
     out = subprocess.run([exe, "--version"], capture_output=True, text=True, timeout=60)
     assert out.returncode == 0 and out.stdout.startswith("buswitness")

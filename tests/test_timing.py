@@ -1,7 +1,6 @@
 """Serial character format and t1.5/t3.5 against the Modbus serial-line specification."""
 
 import pytest
-
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import SerialFormatError
 
