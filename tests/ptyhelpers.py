@@ -163,5 +163,23 @@ def sample_bytes(n: int, seed: int = 1) -> bytes:
     return bytes(rng.choice(pool) for _ in range(n))
 
 
+def start_record(*args: str, **kw) -> subprocess.Popen:
+    """``buswitness record ARGS`` as a child process, its output captured as text."""
+    return subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "record", *args],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
+
+
+def wait_for_file(path: Path, proc: subprocess.Popen, timeout: float = 20.0) -> None:
+    """Wait until ``record`` has opened its ports and written the capture header."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if path.exists() and path.stat().st_size > 0:
+            return
+        if proc.poll() is not None:
+            raise AssertionError(f"record exited early: {proc.communicate()}")
+        time.sleep(0.05)
+    raise AssertionError("record did not create its capture file")
+
+
 if __name__ == "__main__":
     helper_main(Path(sys.argv[1]))

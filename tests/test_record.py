@@ -11,7 +11,6 @@ from __future__ import annotations
 import os
 import signal
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -22,26 +21,13 @@ from buswitness.capture.fileformat import (
     CaptureReader,
     read_header,
 )
-from ptyhelpers import PtyAdapter, sample_bytes
+from ptyhelpers import PtyAdapter, sample_bytes, start_record, wait_for_file
 
 BAUD = 115200
 
 
-def start_record(*args: str) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "record", *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
-def wait_for_file(path: Path, proc: subprocess.Popen, timeout: float = 20.0) -> None:
-    """Wait until ``record`` has opened its ports and written the capture header."""
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if path.exists() and path.stat().st_size > 0:
-            return
-        if proc.poll() is not None:
-            raise AssertionError(f"record exited early: {proc.communicate()}")
-        time.sleep(0.05)
-    raise AssertionError("record did not create its capture file")
 
 
 def stop(proc: subprocess.Popen, sig: int = signal.SIGTERM) -> tuple[int, str, str]:

@@ -22,25 +22,13 @@ from buswitness.capture.fileformat import FLAG_LOST, CaptureReader
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import DeviceError
-from ptyhelpers import PtyAdapter, sample_bytes
+from ptyhelpers import PtyAdapter, sample_bytes, start_record, wait_for_file
 
 FAST = 2_000_000  # pacing for the helper: a pty ignores the baud rate, so fill files quickly
 
 
-def record_proc(args, **kw):
-    return subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "record", *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 
-def wait_for_file(path: Path, proc: subprocess.Popen, timeout: float = 20.0) -> None:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if path.exists() and path.stat().st_size > 0:
-            return
-        if proc.poll() is not None:
-            raise AssertionError(f"record exited early: {proc.communicate()}")
-        time.sleep(0.05)
-    raise AssertionError("record did not create its capture file")
 
 
 def _limit_file_size(limit: int):
@@ -55,7 +43,7 @@ def test_disk_full_exits_3_with_one_clear_line_and_the_file_reads_back(tmp_path)
     limit = 256 * 1024
     payload = sample_bytes(600_000, seed=11)
     with PtyAdapter(tmp_path / "ttyF") as adapter:
-        proc = record_proc([str(adapter.link), "-o", str(out), "--quiet"], preexec_fn=_limit_file_size(limit))
+        proc = start_record(str(adapter.link), "-o", str(out), "--quiet", preexec_fn=_limit_file_size(limit))
         wait_for_file(out, proc)
         adapter.send_async(payload, FAST, chunk=4096)
         _, err = proc.communicate(timeout=60)
@@ -79,7 +67,7 @@ def test_output_directory_removed_mid_capture_is_reported_and_the_data_rescued(t
     payload = sample_bytes(5000, seed=12)
     env = {**os.environ, "TMPDIR": str(rescue_dir)}
     with PtyAdapter(tmp_path / "ttyD") as adapter:
-        proc = record_proc([str(adapter.link), "-o", str(out), "--quiet"], env=env)
+        proc = start_record(str(adapter.link), "-o", str(out), "--quiet", env=env)
         wait_for_file(out, proc)
         adapter.send(payload, 115200)
         time.sleep(0.3)

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 from buswitness.capture.fileformat import FLAG_DISCONNECTED, FLAG_REOPENED, CaptureReader
-from ptyhelpers import PtyAdapter, sample_bytes
+from ptyhelpers import PtyAdapter, sample_bytes, start_record, wait_for_file
 
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
 SAMPLE_HEX = Path(__file__).resolve().parent.parent / "sample_captures" / "pumpstation-30s.hex"
@@ -37,20 +37,8 @@ def note_figures(case: str, **figures) -> None:
     path.write_text(json.dumps(known, indent=2, sort_keys=True) + "\n", encoding="utf-8")
 
 
-def record_proc(*args: str, **kw) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "record", *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 
-def wait_for_file(path: Path, proc: subprocess.Popen, timeout: float = 20.0) -> None:
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if path.exists() and path.stat().st_size > 0:
-            return
-        if proc.poll() is not None:
-            raise AssertionError(f"record exited early: {proc.communicate()}")
-        time.sleep(0.05)
-    raise AssertionError("record did not create its capture file")
 
 
 def read_back(path: Path) -> tuple[bytes, CaptureReader]:
@@ -79,7 +67,7 @@ def test_really_full_disk_exits_3_and_keeps_a_readable_prefix(small_disk, tmp_pa
     out = small_disk / "night.bwcap"
     payload = sample_bytes(600_000, seed=21)
     with PtyAdapter(tmp_path / "ttyFULL") as adapter:
-        proc = record_proc(str(adapter.link), "-o", str(out), "--quiet")
+        proc = start_record(str(adapter.link), "-o", str(out), "--quiet")
         wait_for_file(out, proc)
         adapter.send_async(payload, 2_000_000, chunk=4096)
         _, err = proc.communicate(timeout=60)
@@ -99,7 +87,7 @@ def test_sigterm_while_the_adapter_is_away_closes_cleanly_with_the_gap_marked(tm
     out = tmp_path / "away.bwcap"
     before = sample_bytes(3000, seed=22)
     with PtyAdapter(tmp_path / "ttyAWAY") as adapter:
-        proc = record_proc(str(adapter.link), "--baud", str(BAUD), "-o", str(out), "--quiet")
+        proc = start_record(str(adapter.link), "--baud", str(BAUD), "-o", str(out), "--quiet")
         wait_for_file(out, proc)
         adapter.send(before, BAUD)
         time.sleep(0.3)
@@ -128,7 +116,7 @@ def test_capture_killed_with_sigkill_is_analysed_end_to_end(tmp_path):
     out = tmp_path / "killed.bwcap"
     payload = modbus_bytes() * 4  # about 4.8 s at the pacing below: the kill comes mid-stream
     with PtyAdapter(tmp_path / "ttyKILL") as adapter:
-        proc = record_proc(str(adapter.link), "--baud", "19200", "--format", "8E1", "-o", str(out), "--quiet")
+        proc = start_record(str(adapter.link), "--baud", "19200", "--format", "8E1", "-o", str(out), "--quiet")
         wait_for_file(out, proc)
         adapter.send_async(payload, 19200 * 4)  # a pty ignores the baud rate: pace a little faster
         time.sleep(2.5)
