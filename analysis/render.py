@@ -8,14 +8,7 @@ from importlib import resources
 
 import jinja2
 from buswitness.analysis.result import EXCEPTION_NAMES
-
-FUNCTION_NAMES = {1: "read coils", 2: "read discrete inputs", 3: "read holding registers",
-                  4: "read input registers", 5: "write single coil", 6: "write single register",
-                  7: "read exception status", 8: "diagnostics", 11: "get comm event counter",
-                  12: "get comm event log", 15: "write multiple coils", 16: "write multiple registers",
-                  17: "report server ID", 20: "read file record", 21: "write file record",
-                  22: "mask write register", 23: "read/write multiple registers", 24: "read FIFO queue",
-                  43: "encapsulated interface (device identification)"}
+from buswitness.decode.functions import FUNCTION_NAMES
 
 
 def function_name(code: int) -> str:

@@ -26,15 +26,13 @@ from buswitness.analysis.histogram import FINE, quantile
 from buswitness.analysis.stationmap import StationMap
 from buswitness.analysis.timeout import TimeoutEstimate
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
+from buswitness.decode.functions import EXCEPTION_NAMES as _DECODER_EXCEPTION_NAMES
 
 _O = {name: i for i, name in enumerate(OUTCOMES)}
 _K = {name: i for i, name in enumerate(EVENT_KINDS)}
 
-#: Exception codes and their meaning (MAP V1.1b3 p47-49).
-EXCEPTION_NAMES = {1: "illegal function", 2: "illegal data address", 3: "illegal data value",
-                   4: "server device failure", 5: "acknowledge", 6: "server device busy",
-                   8: "memory parity error", 10: "gateway path unavailable",
-                   11: "gateway target device failed to respond"}
+#: Exception codes and their meaning (MB Application Protocol V1.1b3 p48-49), from the decoder's table.
+EXCEPTION_NAMES = {code: name.lower() for code, name in _DECODER_EXCEPTION_NAMES.items()}
 
 
 @dataclass
