@@ -34,6 +34,7 @@ class AnalysisOptions:
     parquet_dir: str | None = None
     progress: bool | None = None  #: None: a progress bar when stderr is a terminal
     block_rows: int = BLOCK_ROWS
+    port_roles: dict[int, str] | None = None  #: what each port hears; None: as the capture header says
 
 
 def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -137,7 +138,8 @@ def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
     """Decode and analyse an opened capture source (see ``buswitness.capture.sources.open_capture``)."""
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
-    cfg = DecoderConfig.from_header(source.header, response_timeout_ms=options.timeout_ms)
+    cfg = DecoderConfig.from_header(source.header, response_timeout_ms=options.timeout_ms,
+                                    port_roles=options.port_roles)
     show = sys.stderr.isatty() if options.progress is None else options.progress
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from buswitness.cli.common import add_input_options, serial_from_args
+from buswitness.cli.common import add_input_options, roles_arg, serial_from_args
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
@@ -38,6 +38,9 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--stations", metavar="TOML", default=None,
                    help='station map: [stations.7] name = "Pump drive B", position_m = 310, notes = "..."')
     p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
+    p.add_argument("--roles", type=roles_arg, default=None, metavar="ROLE[,ROLE]",
+                   help="what each port of the capture hears, in port order (master, slaves or both), when "
+                        "the recording did not say; e.g. master,slaves for a four-wire bus")
     add_input_options(p)
 
 
@@ -60,8 +63,9 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, serial_from_args(args), args.on_bad_line)
+    roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
-                              progress=False if args.no_progress else None)
+                              progress=False if args.no_progress else None, port_roles=roles)
     result = analyze(source, options)
     damage = result.damage
     if result.bus.frames == 0 and damage is not None and not damage.clean:

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
-from buswitness.cli.common import add_serial_options, duration_s, serial_from_args, size_bytes
+from buswitness.cli.common import add_serial_options, duration_s, roles_arg, serial_from_args, size_bytes
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import UsageError
 from rich.console import RenderableType
@@ -66,15 +66,6 @@ def rotate_arg(text: str) -> tuple[str, int]:
         return "time", int(duration_s(text) * 1e9)
     except argparse.ArgumentTypeError:
         raise argparse.ArgumentTypeError(f"{text!r} is neither a duration (1h) nor a size (200MB)") from None
-
-
-def roles_arg(text: str) -> list[str]:
-    roles = [r.strip().lower() for r in text.split(",")]
-    bad = [r for r in roles if r not in ("master", "slaves", "both")]
-    if bad or not 1 <= len(roles) <= 2:
-        raise argparse.ArgumentTypeError(f"{text!r}: give one role per port, each master, slaves or both "
-                                         f"(e.g. master,slaves)")
-    return roles
 
 
 def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:

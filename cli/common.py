@@ -45,6 +45,16 @@ def size_bytes(text: str) -> int:
     return value
 
 
+def roles_arg(text: str) -> list[str]:
+    """``master,slaves``: what each port hears, in port order."""
+    roles = [r.strip().lower() for r in text.split(",")]
+    bad = [r for r in roles if r not in ("master", "slaves", "both")]
+    if bad or not 1 <= len(roles) <= 2:
+        raise argparse.ArgumentTypeError(f"{text!r}: give one role per port, each master, slaves or both "
+                                         f"(e.g. master,slaves)")
+    return roles
+
+
 def baud_arg(text: str) -> int:
     try:
         return parse_baud(text)

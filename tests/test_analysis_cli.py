@@ -123,3 +123,19 @@ def test_raw_bytes_without_timestamps_are_flagged_as_untimed(tmp_path, capsys):
                  "--format", "8E1", "--html", str(html), "--no-progress"]) == 0
     assert "this input has no timestamps" in capsys.readouterr().out
     assert "No timing in this input" in html.read_text()
+
+
+def test_roles_given_to_analyze_set_the_direction_of_every_frame(tmp_path, capsys):
+    capture = str(SAMPLES / "pumpstation-5min.bwcap")
+    both, slaves = tmp_path / "both.json", tmp_path / "slaves.json"
+    assert main(["analyze", capture, "--json", str(both), "--no-progress"]) == 0
+    assert main(["analyze", capture, "--roles", "slaves", "--json", str(slaves), "--no-progress"]) == 0
+    assert json.loads(both.read_text())["bus"]["requests"] > 1000
+    # A port that hears only the stations carries no request at all.
+    assert json.loads(slaves.read_text())["bus"]["requests"] == 0
+
+
+def test_more_roles_than_ports_is_a_usage_error(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["analyze", "x.bwcap", "--roles", "master,slaves,both"])
+    assert exc.value.code == 2

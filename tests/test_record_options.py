@@ -104,7 +104,8 @@ def test_adapter_back_under_another_name_is_found_by_its_usb_serial_number(tmp_p
 
 def test_roles_of_a_four_wire_bus_reach_the_decoder_through_the_header():
     from buswitness.capture.fileformat import CaptureHeader, PortInfo
-    from buswitness.cli.cmd_record import config_from_args, roles_arg
+    from buswitness.cli.cmd_record import config_from_args
+    from buswitness.cli.common import roles_arg
     from buswitness.cli.main import build_parser
     from buswitness.decode import DecoderConfig
     args = build_parser().parse_args(["record", "/dev/a", "/dev/b", "-o", "x.bwcap",
