@@ -5,7 +5,7 @@ and measures the CPU time ``record`` used (issue 8 target: under 5% of one core)
 
     python bench/soak_record.py [--minutes 10] [--baud 115200] [--chunk 62]
 
-The writer paces 62-byte chunks (one full FTDI packet, REFERENCES.md §5) at the line's
+The writer paces 62-byte chunks (one full adapter packet, REFERENCES.md §5) at the line's
 byte rate (8N1: 10 bits a character), with bytes drawn so 0xFF and 0x00 appear often.
 """
 

@@ -92,7 +92,7 @@ class CharTime:
         return self.seconds * baud
 
 
-#: A read this long is a full adapter buffer (62 data bytes on common FTDI parts, REFERENCES.md §5).
+#: A read this long is a full adapter buffer (62 data bytes on the common adapter chips, AN232B-04 in REFERENCES.md §5).
 FULL_PACKET = 62
 
 

@@ -146,7 +146,7 @@ class Scenario:
             sc = replace(sc, serial=serial)
         if latency_ms is not None:
             if not 0.125 <= float(latency_ms) <= 255:
-                raise UsageError(f"adapter latency {latency_ms!r} ms is outside 1 to 255 ms (FTDI range)")
+                raise UsageError(f"adapter latency {latency_ms!r} ms is outside 1 to 255 ms (the latency timer's range)")
             sc = replace(sc, adapter=replace(sc.adapter, latency_ms=float(latency_ms)))
         return sc
 
