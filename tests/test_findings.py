@@ -99,6 +99,13 @@ def test_failures_confined_to_the_second_half_are_said_to_start_there():
     assert f.t_start_s == 300.0 and "all after 21:05 UTC" in f.statement
 
 
+def test_failures_across_the_whole_capture_but_its_last_minutes_keep_to_no_period():
+    fate = _late_fate(3, 10)
+    r = result_of(polls(3000, fate=lambda st, k, t: fate(st, k, t) if t < 2880 else None))
+    (f,) = lateness.late_answers(r, TH)
+    assert "all between" not in f.statement and "all after" not in f.statement
+
+
 def test_suggested_timeout_rounds_up_to_the_next_usual_step():
     r = result_of(polls(60, rt_ms=140.0))  # slowest answer 143 ms; x 1.25 = 179 ms
     assert suggested_timeout_ms(r, r.station(3), TH) == 200.0

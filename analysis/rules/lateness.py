@@ -56,6 +56,10 @@ def _failure_minutes(result: AnalysisResult, address: int, columns: tuple) -> tu
     return (hits[0], hits[-1]) if hits else None
 
 
+#: Share of the capture a failure-free stretch must cover for the failures to "keep to a period".
+QUIET_SHARE = 0.05
+
+
 def _period_text(result: AnalysisResult, minutes: tuple[int, int] | None) -> tuple[str, float, float]:
     """' all after 02:00' / ' all between ...' when failures keep to part of the capture; and the span.
 
@@ -66,7 +70,11 @@ def _period_text(result: AnalysisResult, minutes: tuple[int, int] | None) -> tup
     if minutes is None:
         return "", t0, t1
     a, b = minute_span(minutes[0], minutes[1], result)
-    later, earlier = a >= 60.0, t1 - b >= 60.0
+    # A quiet stretch must be a real part of the capture (a minute, and 5 % of a long one) before
+    # the failures are said to keep to a period (common practice: a few quiet minutes in a night
+    # say nothing).
+    quiet = max(60.0, QUIET_SHARE * (t1 - t0))
+    later, earlier = a - t0 >= quiet, t1 - b >= quiet
     if later and not earlier:
         return f", all after {clock(result, a)}", a, t1
     if later or earlier:
