@@ -42,6 +42,14 @@ DEFAULT_QUEUE_CAP_BYTES = 64 << 20
 Tap = Callable[[int, int, bytes, int], None]
 
 
+
+def _still_in_place(path: Path, fd: int) -> bool:
+    """True when ``path`` still names the file open on ``fd`` (it was not removed or replaced)."""
+    try:
+        return os.stat(path).st_ino == os.fstat(fd).st_ino
+    except OSError:
+        return False
+
 @dataclass
 class PortStats:
     """Running figures of one port for the status line and the summary."""
@@ -435,11 +443,7 @@ class Recorder:
         if not self._watch:
             return
         part, fd = self._watch[0]
-        try:
-            same = os.stat(part).st_ino == os.fstat(fd).st_ino
-        except OSError:
-            same = False
-        if not same:
+        if not _still_in_place(part, fd):
             self._output_gone = True
             raise OutputError(f"{part}: the capture file or its directory was removed while recording; "
                               f"recording stopped")
@@ -459,11 +463,7 @@ class Recorder:
         if not self._watch or self.error is None:
             return
         part, fd = self._watch[0]
-        try:
-            still_there = os.stat(part).st_ino == os.fstat(fd).st_ino
-        except OSError:
-            still_there = False
-        if still_there:
+        if _still_in_place(part, fd):
             return
         rescue = Path(tempfile.gettempdir()) / f"{part.stem}.rescued-{os.getpid()}{part.suffix}"
         try:
