@@ -17,11 +17,11 @@ import numpy as np
 import pandas as pd
 from buswitness.analysis.devid import device_id_text
 from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, quantile, quantiles_rows
+from buswitness.decode.events import EVENT_KINDS as DECODER_EVENT_KINDS
+from buswitness.decode.events import OUTCOMES
 
-OUTCOMES = ("ok", "exception", "timeout", "late", "corrupt", "broadcast")
-EVENT_KINDS = ("crc_error", "truncated", "gap_in_frame", "turnaround_short", "line_error", "break",
-               "stray_bytes", "collision", "bytes_lost", "port_gap", "unexpected_responder", "orphan_response",
-               "other")
+#: The decoder's vocabulary (docs/tables.md), plus "other" for a kind this build does not know.
+EVENT_KINDS = DECODER_EVENT_KINDS + ("other",)
 #: Columns of the per-station per-minute series.
 MINUTE_COLUMNS = ("requests", "ok", "exception", "timeout", "late", "corrupt", "retries", "crc_errors",
                   "collisions")

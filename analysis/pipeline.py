@@ -138,8 +138,7 @@ def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
     """Decode and analyse an opened capture source (see ``buswitness.capture.sources.open_capture``)."""
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
-    cfg = DecoderConfig.from_header(source.header, response_timeout_ms=options.timeout_ms,
-                                    port_roles=options.port_roles)
+    cfg = DecoderConfig.from_header(source.header, port_roles=options.port_roles)
     show = sys.stderr.isatty() if options.progress is None else options.progress
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None

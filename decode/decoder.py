@@ -72,7 +72,6 @@ class DecoderConfig:
     protocol: str = "rtu"
     untimed: bool = False
     port_roles: dict[int, str] = field(default_factory=dict)
-    response_timeout_ms: float | None = None
     packet_bytes: int = 62
 
     def __post_init__(self) -> None:
@@ -82,13 +81,11 @@ class DecoderConfig:
             if role not in PORT_ROLES:
                 raise UsageError(f"port {port} role {role!r} is not one of {', '.join(PORT_ROLES)} "
                                  f"(master: the port hears only the master; slaves: only the stations)")
-        if self.response_timeout_ms is not None and not self.response_timeout_ms > 0:
-            raise UsageError(f"response timeout {self.response_timeout_ms!r} ms must be a positive number")
         if not self.host_delay_ms >= 0:
             raise UsageError(f"host delay {self.host_delay_ms!r} ms must be zero or more")
 
     @classmethod
-    def from_header(cls, header: CaptureHeader, response_timeout_ms: float | None = None,
+    def from_header(cls, header: CaptureHeader,
                     host_delay_ms: float | None = None, protocol: str | None = None,
                     port_roles: dict[int, str] | None = None) -> DecoderConfig:
         """Settings from a capture header; anything the header lacks gets the documented default.
@@ -106,7 +103,7 @@ class DecoderConfig:
         if delay is None:
             delay = float(header.extra.get("host_delay_ms", DEFAULT_HOST_DELAY_MS))
         return cls(serial=header.serial, latency_ms=latency, host_delay_ms=delay, protocol=proto,
-                   untimed=header.timing == "none", port_roles=roles, response_timeout_ms=response_timeout_ms)
+                   untimed=header.timing == "none", port_roles=roles)
 
     def latency_for(self, port: int) -> float:
         return self.latency_ms.get(port, DEFAULT_LATENCY_MS)
@@ -364,7 +361,8 @@ class Decoder:
         self.ports: dict[int, _Port] = {}
         fmt = self.config.serial
         self.char_ns = fmt.char_time_s * 1e9
-        self.pairing = Pairing(self.config.response_timeout_ms, fmt.t35_s * 1e9, timed=not self.config.untimed)
+        # No timeout here: pairing records what the wire shows, the analysis judges it (one timeout).
+        self.pairing = Pairing(fmt.t35_s * 1e9, timed=not self.config.untimed)
         self._queue: list[tuple[int, int, tuple]] = []
         self._seq = 0
         self._slack_ns = int(max([self.config.latency_for(p) for p in self.config.latency_ms] + [DEFAULT_LATENCY_MS])
@@ -483,7 +481,7 @@ class Decoder:
         pr = self.pairing
         i = 0
         while i < m:
-            if role == "both" and pr.waiting is None and not pr.slots:
+            if role == "both" and pr.is_quiet():
                 run = _regular_pairs(shapes[i:], addrs[i:], fcs[i:])
                 if run:
                     j = i + 2 * run
@@ -507,49 +505,61 @@ class Decoder:
     def _pair_columns(self, port: int, raws: list, lo: np.ndarray, hi: np.ndarray, lens: np.ndarray,
                       t_start: np.ndarray, t_end: np.ndarray, addrs: np.ndarray, fcs: np.ndarray, i: int, j: int,
                       col: Collector) -> None:
-        """Transactions of a run of request/answer pairs, as Pairing would make them, in columns."""
+        """Transactions of a run of request/answer pairs, as Pairing would make them, in columns.
+
+        Each answer follows its request at once, so none is late and nothing stays open; what
+        the run teaches (answer counts, slowest answers) goes back to the one Pairing object.
+        """
         pr = self.pairing
         q = np.arange(i, j, 2)
         r = q + 1
         c_rsp = lens[r] * self.char_ns
-        gap = t_start[r] - t_end[q]
-        late = np.zeros(q.size, dtype=bool) if pr.timeout_ns is None else gap > pr.timeout_ns
         rsp_raws = raws[i + 1:j:2]
         req_raws = raws[i:j:2]
         exc = (fcs[r] & 0x80) != 0
         codes = np.zeros(q.size, dtype=np.uint8)
         if exc.any():
             codes[exc] = [rsp_raws[k][2] for k in np.flatnonzero(exc).tolist()]
-        is_exc = exc & (codes != 0) & ~late
-        outcome = np.where(late, OUTCOME_CODE["late"], np.where(is_exc, OUTCOME_CODE["exception"],
-                                                                OUTCOME_CODE["ok"])).astype(np.int8)
+        is_exc = exc & (codes != 0)
+        outcome = np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"]).astype(np.int8)
+        conflict = np.zeros(q.size, dtype=bool)
         if pr.timed:
-            mid = np.maximum(0.0, (t_end[r] - c_rsp - t_end[q]) / 1e6)
-            low = np.minimum(np.maximum(0.0, (lo[r] - c_rsp - hi[q]) / 1e6), mid)
-            high = np.maximum(np.maximum(0.0, (hi[r] - c_rsp - lo[q]) / 1e6), mid)
+            mid = (t_end[r] - c_rsp - t_end[q]) / 1e6
+            low = (lo[r] - c_rsp - hi[q]) / 1e6
+            high = (hi[r] - c_rsp - lo[q]) / 1e6
+            # as Pairing._times: a contradiction widens to [0, width], never collapses
+            conflict = high < 0
+            before = -high
+            width = high - low
+            low = np.where(conflict, 0.0, np.maximum(low, 0.0))
+            high = np.where(conflict, width, high)
+            mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
         else:
             mid = low = high = np.full(q.size, np.nan)
-        failed_before = np.concatenate(([pr.last_failed], late[:-1]))
         retry = np.zeros(q.size, dtype=bool)
-        for k in np.flatnonzero(failed_before).tolist():
-            before = req_raws[k - 1] if k else (pr.last_request.raw if pr.last_request is not None else None)
-            retry[k] = before == req_raws[k]
+        if not pr.last_answered and pr.last_request is not None:
+            retry[0] = pr.last_request.raw == req_raws[0]
         col.add_transaction_columns({
             "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": addrs[q],
             "function": fcs[q], "outcome": outcome, "exception_code": np.where(is_exc, codes, 0), "retry": retry,
             "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
             "request_raw": req_raws, "response_raw": rsp_raws,
         })
-        short = np.flatnonzero(high * 1e6 < pr.t35_ns)
-        col.add_objects([Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
-                                f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
-                                f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()])
-        ok_rt = mid[~late]
-        if pr.timed and ok_rt.size:
-            pr.slowest_ns = max(pr.slowest_ns, float(np.nanmax(ok_rt)) * 1e6)
+        events: list = []
+        for k in np.flatnonzero(conflict).tolist():
+            events.append(Damage("timing_conflict", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                                 f"station {rsp_raws[k][0]}'s answer would have begun {before[k]:.3f} "
+                                 f"ms or more before its request ended: the character format or the adapter's "
+                                 f"latency is not what the capture states (response time widened to "
+                                 f"[0, {high[k]:.3f}] ms)"))
+        short = np.flatnonzero(~conflict & (high * 1e6 < pr.t35_ns))
+        events += [Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                          f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
+                          f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()]
+        col.add_objects(events)
         last = int(q[-1])
-        pr.last_request = Frame(port, raws[last], int(lo[last]), int(hi[last]), self.char_ns, "request")
-        pr.last_failed = bool(late[-1])
+        pr.absorb_regular(Frame(port, raws[last], int(lo[last]), int(hi[last]), self.char_ns, "request"),
+                          addrs[q], mid * 1e6)
 
     def flush(self) -> DecodeOutput:
         """End of input, as tables."""

@@ -1,140 +1,257 @@
-"""The transaction state machine: which response answers which request, and what became of each.
+"""The transaction state machine: which response answers which request, and what became of it.
+
+The machine records facts the wire shows and nothing that depends on the master's timeout:
+whether an answer came, when it began, and whether the master had already moved on to another
+request by then. Classing answers against a timeout is the analysis's job (one timeout, given
+or inferred, for every figure).
 
 Invariants (they hold after every input):
 
-1. At most one request is *awaiting* an answer: RTU has one master and no transaction id,
-   so a new request ends the wait for the previous one (the master moved on).
-2. Every request frame becomes exactly one transaction; a retry is a transaction of its own.
-3. A transaction leaves the machine (is emitted) in request order, and only once its outcome
-   can no longer change. A ``timeout`` may still turn ``late`` for :data:`LATE_WINDOW_NS`
-   (ten response timeouts when that is longer) and at most :data:`LATE_WINDOW` requests.
-4. A response is credited to a request only when station and function agree; anything else
-   is an event (``unexpected_responder`` or ``orphan_response``), never a guess.
-5. Frames arrive here in time order, with their direction already fixed by the port or
-   inferred by :meth:`Pairing.direction_of` (two-wire bus).
+1. Every request frame becomes exactly one transaction; a retry is a transaction of its own.
+2. Transactions leave the machine (are emitted) in request order, and only once their outcome
+   can no longer change. A request nobody answered stays *open* for a late answer for
+   :data:`LATE_WINDOW_NS` (ten times the master's wait when that is longer) and at most
+   :data:`LATE_WINDOW` later requests.
+3. A station answers the requests it received in the order it received them: an answer from
+   station N goes to N's oldest open request of the same function, and every older open
+   request of N is closed unanswered. Only timing that no other reading fits moves it to N's
+   newest open request (see :meth:`Pairing._owner`). No request ever gets an answer that began
+   before the request ended, and no later request gets an earlier answer.
+4. A response is credited to a request only when station and function agree; anything else is
+   an event (``unexpected_responder`` or ``orphan_response``), never a guess.
+5. Frames arrive here in time order, with their direction fixed by the port or by
+   :meth:`Pairing.direction_of` (two-wire bus).
 
-Transitions (state x input -> action, next state); ``AWAIT`` means "awaiting station N":
+Transitions (input -> action):
 
-======== ================================ ==================================================
-state    input                            action -> next state
-======== ================================ ==================================================
-IDLE     request, station 0               emit ``broadcast`` -> IDLE
-IDLE     request, station N               -> AWAIT(N)
-IDLE     response                         a recent ``timeout`` matches: make it ``late``
-                                          (``ok`` when timing cannot put it after the
-                                          next request / within the configured timeout);
-                                          else event ``orphan_response`` -> IDLE
-IDLE     damage                           -> IDLE
-AWAIT    request                          close the wait: ``corrupt`` if damage came,
-                                          else ``timeout``; then as from IDLE
-AWAIT    response from N, same function   ``ok`` / ``exception`` (``late`` past the
-                                          configured timeout); ``corrupt`` plus a
-                                          ``collision`` event when a damaged frame from N
-                                          came first (two answers overlapped) -> IDLE
-AWAIT    other response                   a recent ``timeout`` matches: make it ``late``;
-                                          same function: event ``unexpected_responder``;
-                                          else ``orphan_response`` -> AWAIT(N)
-AWAIT    damage after the request         remember it (the answer was probably hit); shaped
-                                          like the late answer of a timed-out station M:
-                                          ``collision`` events for M and N -> AWAIT
-end      flush                            close the wait as above, emit everything
-======== ================================ ==================================================
+=================================== ===============================================================
+input                               action
+=================================== ===============================================================
+request to station 0                emit ``broadcast``
+request to station N                the previous request, if still unanswered, now has the master
+                                    moved on (its silence is a sample of the master's wait); one
+                                    with answer damage closes ``corrupt``; open N's request
+response from N, function F         credit N's open request of function F (invariant 3): ``ok`` /
+                                    ``exception`` before the master moved on, ``late`` after it;
+                                    a damaged answer from N to the same awaited request first:
+                                    ``corrupt`` and a ``collision`` event (two answers overlapped)
+response nobody awaits              ``unexpected_responder`` (same function as the awaited
+                                    request) or ``orphan_response``
+frame identical to N's open request an echo answer (FC05/06/08) or the master's retry: decided by
+                                    :meth:`Pairing.direction_of`; where the evidence is split the
+                                    request closes ``ambiguous`` with that frame as its possible
+                                    answer
+damage after the awaited request    remember it on that request (its answer was probably hit);
+                                    shaped like the late answer of a station M with an open
+                                    request: ``collision`` events for M and N
+flush                               close everything open: ``timeout`` or ``corrupt``
+=================================== ===============================================================
 """
 
 from __future__ import annotations
 
+import bisect
 import math
-from dataclasses import dataclass, replace
+from collections import deque
+from dataclasses import dataclass, field, replace
 
+import numpy as np
 from buswitness.decode.events import Damage, Frame, Transaction
 from buswitness.decode.lengths import REQUEST, RESPONSE
 
-#: How long (and for how many later requests at most) a timed-out transaction waits for a
-#: late answer before it is final: slow stations answer up to seconds late.
+#: How long (and for how many later requests at most) an unanswered request waits for a late
+#: answer before it is final: slow stations answer up to seconds late.
 LATE_WINDOW_NS = 5_000_000_000
 LATE_WINDOW = 64
 
 #: Damage kinds that mean "an answer was on the line but unusable" when they follow a request.
 ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision", "stray_bytes", "line_error", "break"})
 
-#: With no configured timeout, a frame identical to the awaited request counts as its echo
-#: answer unless it comes later than this many times the slowest answer seen (plus a floor).
+#: The master's wait: silences after unanswered requests kept (most recent), the fewest that
+#: make an estimate, and the width of the cluster of shortest ones (a master's timer plus its
+#: reaction time varies by less than this: common practice, masters poll from a timer tick).
+WAIT_SAMPLES = 64
+WAIT_MIN_SAMPLES = 3
+WAIT_CLUSTER = 1.15
+#: A frame identical to the open request, this share of the master's wait or more after it, is
+#: the master's retry: the master repeats a request only once it gave up on it. Below
+#: ECHO_SURE of the wait the master was still waiting, so the frame is the echo answer.
+RETRY_SHARE = 0.75
+ECHO_SURE = 0.5
+#: With the master's wait still unknown: an identical frame within ECHO_SLACK times the slowest
+#: answer the station gave (or ECHO_FLOOR_NS) is its echo answer; beyond RETRY_SLACK times it,
+#: a retry; in between the evidence is split.
 ECHO_SLACK = 2.0
+RETRY_SLACK = 4.0
 ECHO_FLOOR_NS = 20_000_000
+#: A station that left this many requests without any answer, and answered none, answers no
+#: echo either: identical frames to it are the master's retries (a station with no device).
+DEAD_AFTER = 3
+#: An answer goes to the newest open request instead of the oldest only when it came more than
+#: LATE_PROOF times later than the slowest answer the station gave in time, while it fits the
+#: newest one like the station's usual answers (within FIT_SLACK times the slowest). A station
+#: is judged by its own answers once it gave STATION_MIN_ANSWERS, before that by the bus's.
+LATE_PROOF = 3.0
+FIT_SLACK = 1.5
+STATION_MIN_ANSWERS = 5
+
+_NOT_YET = 1 << 62
+
+
+@dataclass
+class _Open:
+    """A request that may still get an answer."""
+
+    req: Frame
+    slot: _Slot
+    retry: bool
+    damage: Damage | None = None
+    collided: bool = False
+    moved_on_hi_ns: int = _NOT_YET  # latest end of the request that followed it (master moved on)
+    moved_on_port: int = -1
+    age: int = 0
+    answers_at_move_on: int = 0  # answers on the bus, and from its own station, when the master moved on
+    own_at_move_on: int = 0
+
+    @property
+    def moved_on(self) -> bool:
+        return self.moved_on_hi_ns != _NOT_YET
 
 
 @dataclass
 class _Slot:
-    txn: Transaction
+    txn: Transaction | None
     final: bool
-    age: int = 0
-    request: Frame | None = None
-    moved_on_hi_ns: int = 0  # latest end of the request that ended the wait
-    moved_on_port: int = -1
 
 
 @dataclass
-class _Await:
-    request: Frame
-    damage: Damage | None = None
-    collided: bool = False
+class _Station:
+    """What one station has shown so far: the facts the echo and FIFO decisions weigh."""
+
+    answers: int = 0              # valid answers of any kind credited to it
+    slowest_ns: float = 0.0       # slowest answer given before the master moved on
+    unanswered: int = 0           # requests the master moved on from without an answer
+    open: deque = field(default_factory=deque)  # its open requests, oldest first
 
 
 class Pairing:
     """Pair frames into transactions; returns transactions (in request order) and events."""
 
-    def __init__(self, response_timeout_ms: float | None, t35_ns: float, timed: bool = True) -> None:
-        self.timeout_ns = None if response_timeout_ms is None else response_timeout_ms * 1e6
+    def __init__(self, t35_ns: float, timed: bool = True) -> None:
         self.t35_ns = t35_ns
         self.timed = timed
-        self.waiting: _Await | None = None
-        self.slots: list[_Slot] = []
+        self.current: _Open | None = None  # the latest request to a station, until an answer or the next request
+        self.slots: deque[_Slot] = deque()
+        self.stations: dict[int, _Station] = {}
         self.last_request: Frame | None = None
-        self.last_failed = False
-        self.slowest_ns = 0.0
-        self._retry_flag = False
+        self.last_answered = True
+        self.answers = 0  # valid answers credited, all stations
+        self._waits: deque[float] = deque(maxlen=WAIT_SAMPLES)
+        self._wait_ns: float | None = None
+        self._wait_dirty = False
 
-    # -- direction on a two-wire bus -------------------------------------------------------
+    # -- what has been learnt -----------------------------------------------------------------
+    def station(self, address: int) -> _Station:
+        s = self.stations.get(address)
+        if s is None:
+            s = self.stations[address] = _Station()
+        return s
+
+    @property
+    def waiting(self) -> _Open | None:
+        """The request the master awaits an answer to (None after an answer or a broadcast)."""
+        return self.current
+
+    def master_wait_ns(self) -> float | None:
+        """The master's wait after an unanswered request: the shortest cluster of its silences."""
+        if self._wait_dirty:
+            self._wait_dirty = False
+            values = sorted(self._waits)
+            self._wait_ns = None
+            for i, v in enumerate(values):
+                if bisect.bisect_right(values, v * WAIT_CLUSTER) - i >= WAIT_MIN_SAMPLES:
+                    self._wait_ns = v
+                    break
+        return self._wait_ns
+
+    def _slowest_ns(self, st: _Station) -> float:
+        """The slowest answer to expect from ``st``: its own once it gave enough, else the bus's.
+
+        Never below ECHO_FLOOR_NS / ECHO_SLACK, so that a capture's first answers, or a station
+        that answers in a few milliseconds, do not make every later answer look impossible.
+        """
+        if st.answers >= STATION_MIN_ANSWERS:
+            slowest = st.slowest_ns
+        else:
+            slowest = max((s.slowest_ns for s in self.stations.values() if s.answers >= STATION_MIN_ANSWERS),
+                          default=0.0)
+        return max(slowest, ECHO_FLOOR_NS / ECHO_SLACK)
+
+    def is_quiet(self) -> bool:
+        """Nothing open: the columnar path may pair a regular run on its own (see absorb_regular)."""
+        return self.current is None and not self.slots
+
+    # -- direction on a two-wire bus ------------------------------------------------------------
     def direction_of(self, frame: Frame, shape: int) -> str:
-        """``request`` or ``response`` for a frame whose shape the length rules left open."""
+        """``request``, ``response`` or ``unknown`` for a frame the length rules left open.
+
+        A frame identical to the open request of its station is that station's echo answer
+        (FC05/06/08 answers repeat the request) or the master's retry. The master retries only
+        once it gave up, about one wait after the request; a station answers within its usual
+        times; a station that never answers anything sends no echo either; and after a damaged
+        answer the master repeats its request.
+        """
         if shape == REQUEST:
             return "request"
         if shape == RESPONSE:
             return "response"
-        w = self.waiting
-        if w is None:
+        cur = self.current
+        if cur is None:
             return "request"
-        req = w.request
+        req = cur.req
         if frame.address != req.address or frame.function != req.function:
             return "request"
-        if frame.raw == req.raw:
-            # An echo answer (FC05/06/08) and a retry of the same request look alike: the
-            # master retries only after giving up, so timing tells them apart.
-            gap = frame.t_start_ns - req.t_end_ns
-            if self.timeout_ns is not None:
-                return "response" if gap <= self.timeout_ns else "request"
-            limit = max(ECHO_FLOOR_NS, ECHO_SLACK * self.slowest_ns)
-            return "response" if gap <= limit else "request"
-        return "response"
+        if frame.raw != req.raw:
+            return "response"
+        if cur.damage is not None:
+            return "request"  # its answer came, damaged: this is the master trying again
+        st = self.station(req.address)
+        if st.answers == 0 and st.unanswered >= DEAD_AFTER:
+            return "request"
+        gap = frame.t_start_ns - req.t_end_ns
+        slack = (frame.t_end_hi_ns - frame.t_end_lo_ns + req.t_end_hi_ns - req.t_end_lo_ns) / 2
+        wait = self.master_wait_ns()
+        if wait is not None:
+            if gap >= RETRY_SHARE * wait - slack:
+                return "request"
+            if gap <= ECHO_SURE * wait:
+                return "response"
+        echo_limit = ECHO_SLACK * self._slowest_ns(st)
+        if gap <= echo_limit + slack:
+            return "response"
+        if wait is None and gap > RETRY_SLACK / ECHO_SLACK * echo_limit + slack:
+            return "request"
+        return "unknown"
 
-    # -- inputs -----------------------------------------------------------------------------
+    # -- inputs -----------------------------------------------------------------------------------
     def on_frame(self, frame: Frame) -> tuple[list[Transaction], list[Damage]]:
         events: list[Damage] = []
         if frame.direction == "request":
-            self._close_wait(frame)
-            self._start(frame)
+            self._on_request(frame)
+        elif frame.direction == "unknown":
+            self._on_ambiguous(frame)
         else:
             self._on_response(frame, events)
         return self._ready(), events
 
     def on_damage(self, damage: Damage) -> Damage:
         """Note damage while awaiting; return the event with the station it most likely concerns."""
-        w = self.waiting
+        w = self.current
         # On the request's own port, stream order already says the damage came after it.
-        if w is not None and damage.kind in ANSWER_DAMAGE and (damage.port == w.request.port
-                                                                 or damage.t_ns >= w.request.t_end_lo_ns):
+        if w is not None and damage.kind in ANSWER_DAMAGE and (damage.port == w.req.port
+                                                                 or damage.t_ns >= w.req.t_end_lo_ns):
             if damage.station < 0:
-                damage = replace(damage, station=w.request.address)
+                damage = replace(damage, station=w.req.address)
             if w.damage is None:
                 w.damage = damage
         return damage
@@ -142,151 +259,256 @@ class Pairing:
     def collisions(self, damage: Damage) -> list[Damage]:
         """Collision events when damage while awaiting N is shaped like a late answer from M.
 
-        A station M whose request timed out moments ago answers late, while station N answers
-        the master's next request: damaged bytes that begin with M's address and function code
-        are M's late answer running into N's (M may be N itself: a late answer running into the
-        answer to the master's retry). Each of the two answers gets a ``collision`` event (once
-        per wait); M's transaction stays a timeout, N's becomes ``corrupt`` through the damage.
+        A station M whose request went unanswered moments ago answers late while station N
+        answers the master's next request: damaged bytes that begin with M's address and
+        function code are M's late answer running into N's (M may be N itself: a late answer
+        running into the answer to the master's retry). Each of the two answers gets a
+        ``collision`` event (once per wait); N's request becomes ``corrupt`` through the damage.
         """
-        w = self.waiting
+        w = self.current
         if w is None or w.collided or len(damage.raw) < 2 or damage.kind not in ANSWER_DAMAGE:
             return []
-        n_addr = w.request.address
-        for slot in reversed(self.slots):
-            txn = slot.txn
-            if slot.final or txn.outcome != "timeout" or txn.station == 0:
-                continue
-            if damage.raw[0] == txn.station and damage.raw[1] & 0x7F == txn.function:
-                w.collided = True
-                m = txn.station
-                if m == n_addr:
-                    text = (f"station {m}'s late answer overlapped its own answer to the master's retry "
-                            f"(two answers from one station)")
-                else:
-                    text = f"a late answer from station {m} overlapped the answer of station {n_addr}"
-                return [Damage("collision", damage.port, damage.t_ns, damage.raw, m, text),
-                        Damage("collision", damage.port, damage.t_ns, damage.raw, n_addr, text)]
-        return []
+        n_addr = w.req.address
+        m = damage.raw[0]
+        st = self.stations.get(m)
+        if st is None or m == 0:
+            return []
+        if not any(o.moved_on and o.req.function == damage.raw[1] & 0x7F for o in st.open):
+            return []
+        w.collided = True
+        if m == n_addr:
+            text = (f"station {m}'s late answer overlapped its own answer to the master's retry "
+                    f"(two answers from one station)")
+        else:
+            text = f"a late answer from station {m} overlapped the answer of station {n_addr}"
+        return [Damage("collision", damage.port, damage.t_ns, damage.raw, m, text),
+                Damage("collision", damage.port, damage.t_ns, damage.raw, n_addr, text)]
 
     def flush(self) -> list[Transaction]:
-        self._close_wait()
-        for slot in self.slots:
-            slot.final = True
+        """End of input: every open request closes as it stands."""
+        for st in self.stations.values():
+            while st.open:
+                self._close(st.open.popleft())
+        self.current = None
         return self._ready()
 
-    # -- internals --------------------------------------------------------------------------
-    def _start(self, req: Frame) -> None:
-        retry = (self.last_request is not None and self.last_failed and self.last_request.raw == req.raw)
+    def absorb_regular(self, last_request: Frame, stations: np.ndarray, response_ns: np.ndarray,
+                       last_answered: bool = True) -> None:
+        """Learn from a run of request/answer pairs the columnar path paired itself.
+
+        Called only while :meth:`is_quiet`; ``stations`` and ``response_ns`` have one entry per
+        pair (NaN times on an untimed capture). The run leaves nothing open.
+        """
+        if stations.size:
+            uniq, inverse = np.unique(stations, return_inverse=True)
+            counts = np.bincount(inverse)
+            slowest = np.full(uniq.size, -np.inf)
+            finite = np.isfinite(response_ns)
+            np.maximum.at(slowest, inverse[finite], response_ns[finite])
+            for a, n, s in zip(uniq.tolist(), counts.tolist(), slowest.tolist()):
+                st = self.station(int(a))
+                st.answers += int(n)
+                self.answers += int(n)
+                if s > st.slowest_ns:
+                    st.slowest_ns = float(s)
+        self.last_request = last_request
+        self.last_answered = last_answered
+
+    # -- internals ----------------------------------------------------------------------------------
+    def _on_request(self, req: Frame) -> None:
+        prev = self.current
+        if prev is not None:
+            prev.moved_on_hi_ns = req.t_end_hi_ns
+            prev.moved_on_port = req.port
+            prev.answers_at_move_on = self.answers
+            st = self.station(prev.req.address)
+            prev.own_at_move_on = st.answers
+            if prev.damage is not None:
+                self._drop(prev)
+                self._close(prev)
+            else:
+                st.unanswered += 1
+                if prev.req.port == req.port:
+                    self._waits.append(float(req.t_start_ns - prev.req.t_end_ns))
+                    self._wait_dirty = True
+        retry = (self.last_request is not None and not self.last_answered and self.last_request.raw == req.raw)
         self.last_request = req
-        self.last_failed = False
-        window = max(LATE_WINDOW_NS, 10 * (self.timeout_ns or 0))
-        for slot in self.slots:
-            slot.age += 1
-            if slot.age >= LATE_WINDOW or req.t_end_ns - slot.txn.t_request_end_ns > window:
-                slot.final = True
+        self.last_answered = False
+        self._age(req)
         if req.address == 0:
             self.slots.append(_Slot(Transaction(0, req.function, "broadcast", req.t_end_ns, req.raw,
                                                 retry=retry), True))
+            self.current = None
+            self.last_answered = True  # nobody answers a broadcast: a repeat of it is no retry
             return
-        self.waiting = _Await(req)
-        self._retry_flag = retry
+        slot = _Slot(None, False)
+        self.slots.append(slot)
+        o = _Open(req, slot, retry)
+        self.station(req.address).open.append(o)
+        self.current = o
 
-    def _close_wait(self, next_request: Frame | None = None) -> None:
-        w = self.waiting
-        if w is None:
-            return
-        self.waiting = None
-        req = w.request
-        if w.damage is not None:
-            txn = Transaction(req.address, req.function, "corrupt", req.t_end_ns, req.raw,
-                              retry=self._retry_flag, response_raw=w.damage.raw)
-            self.slots.append(_Slot(txn, True))
+    def _on_ambiguous(self, frame: Frame) -> None:
+        """An identical frame the wire cannot class: the open request closes ``ambiguous``."""
+        o = self.current
+        assert o is not None
+        self._drop(o)
+        start, _mid, _low, _high, _conflict = self._times(o.req, frame)
+        o.slot.txn = Transaction(o.req.address, o.req.function, "ambiguous", o.req.t_end_ns, o.req.raw, start,
+                                 frame.raw, retry=o.retry)
+        o.slot.final = True
+        self.current = None
+        self.last_answered = True
+
+    def _age(self, req: Frame) -> None:
+        """Close open requests that waited too long (in time or in later requests) for an answer."""
+        wait = self.master_wait_ns() or 0.0
+        window = max(LATE_WINDOW_NS, 10 * wait)
+        for st in self.stations.values():
+            while st.open:
+                o = st.open[0]
+                o.age += 1
+                if o.age < LATE_WINDOW and req.t_end_ns - o.req.t_end_ns <= window:
+                    break
+                st.open.popleft()
+                self._close(o)
+            for o in st.open:
+                o.age += 1
+
+    def _drop(self, o: _Open) -> None:
+        st = self.station(o.req.address)
+        try:
+            st.open.remove(o)
+        except ValueError:
+            pass
+
+    def _close(self, o: _Open) -> None:
+        """No valid answer came to ``o``: ``corrupt`` when its answer was hit, else ``timeout``."""
+        req = o.req
+        if o.damage is not None:
+            txn = Transaction(req.address, req.function, "corrupt", req.t_end_ns, req.raw, retry=o.retry,
+                              response_raw=o.damage.raw)
         else:
-            txn = Transaction(req.address, req.function, "timeout", req.t_end_ns, req.raw, retry=self._retry_flag)
-            moved_on = next_request.t_end_hi_ns if next_request is not None else 1 << 62
-            port = next_request.port if next_request is not None else -1
-            self.slots.append(_Slot(txn, False, request=req, moved_on_hi_ns=moved_on, moved_on_port=port))
-        self.last_failed = True
+            txn = Transaction(req.address, req.function, "timeout", req.t_end_ns, req.raw, retry=o.retry)
+        o.slot.txn = txn
+        o.slot.final = True
+        if self.current is o:
+            self.current = None
 
-    def _times(self, req: Frame, rsp: Frame) -> tuple[int, float, float, float]:
+    def _times(self, req: Frame, rsp: Frame) -> tuple[int, float, float, float, float]:
+        """Answer start, response time midpoint and interval in ms, and by how much (ms) the model contradicts itself.
+
+        One line, one talker at a time: an answer cannot start before the request ended. Where
+        the bounds say it did (a wrong character format, an adapter slower than stated), the
+        timing model is contradicted: the interval widens to [0, its own width] instead of
+        collapsing to a point, and the caller reports it.
+        """
         c_rsp = rsp.wire_length * rsp.char_ns
         start = rsp.t_start_ns
         if not self.timed:
-            return start, math.nan, math.nan, math.nan
-        # One line, one talker at a time: an answer cannot start before the request ended.
-        mid = max(0.0, (rsp.t_end_ns - c_rsp - req.t_end_ns) / 1e6)
-        low = max(0.0, (rsp.t_end_lo_ns - c_rsp - req.t_end_hi_ns) / 1e6)
-        high = max(0.0, (rsp.t_end_hi_ns - c_rsp - req.t_end_lo_ns) / 1e6)
-        return start, mid, min(low, mid), max(high, mid)
+            return start, math.nan, math.nan, math.nan, 0.0
+        mid = (rsp.t_end_ns - c_rsp - req.t_end_ns) / 1e6
+        low = (rsp.t_end_lo_ns - c_rsp - req.t_end_hi_ns) / 1e6
+        high = (rsp.t_end_hi_ns - c_rsp - req.t_end_lo_ns) / 1e6
+        if high < 0:
+            width = high - low
+            return start, width / 2, 0.0, width, -high
+        low = max(0.0, low)
+        return start, min(max(mid, low), high), low, high, 0.0
 
-    def _answer(self, req: Frame, rsp: Frame, retry: bool, late: bool) -> Transaction:
-        start, mid, low, high = self._times(req, rsp)
+    def _answer(self, o: _Open, rsp: Frame, late: bool, events: list[Damage]) -> Transaction:
+        req = o.req
+        start, mid, low, high, conflict = self._times(req, rsp)
         exc = rsp.function & 0x80
+        code = rsp.raw[2] if exc and len(rsp.raw) > 2 else 0
         if late:
             outcome = "late"
-        elif exc:
+        elif exc and code:
             outcome = "exception"
         else:
             outcome = "ok"
-        code = rsp.raw[2] if exc and len(rsp.raw) > 2 else 0
-        if outcome == "exception" and code == 0:
-            outcome = "ok"
+        if conflict:
+            events.append(Damage("timing_conflict", rsp.port, start, rsp.raw, rsp.address,
+                                 f"station {rsp.address}'s answer would have begun {conflict:.3f} ms or more before "
+                                 f"its request ended: the character format or the adapter's latency is not what "
+                                 f"the capture states (response time widened to [0, {high:.3f}] ms)"))
+        elif not late and high * 1e6 < self.t35_ns:
+            events.append(Damage("turnaround_short", rsp.port, start, rsp.raw, rsp.address,
+                                 f"station {rsp.address} began its answer less than t3.5 after the request "
+                                 f"ended (at most {high:.3f} ms)"))
         return Transaction(req.address, req.function, outcome, req.t_end_ns, req.raw, start, rsp.raw,
-                           exception_code=code if outcome == "exception" else 0, retry=retry,
+                           exception_code=code if outcome == "exception" else 0, retry=o.retry,
                            response_ms=mid, response_ms_low=low, response_ms_high=high)
 
-    def _on_response(self, rsp: Frame, events: list[Damage]) -> None:
-        w = self.waiting
+    def _owner(self, st: _Station, rsp: Frame) -> _Open | None:
+        """The open request of ``st`` this answer belongs to (invariant 3), or None."""
         fc = rsp.function & 0x7F
-        if w is not None and fc == w.request.function:
-            req = w.request
-            if rsp.address == req.address:
-                self.waiting = None
-                hit = w.damage
+        cands = [o for o in st.open if o.req.function == fc and o.req.t_end_lo_ns <= rsp.t_end_hi_ns]
+        if len(cands) > 1:
+            # Another station answered after the master gave up on an older request: the line
+            # was someone else's, so that request is not what this (later) answer is for.
+            keep = [o for o in cands[:-1]
+                    if not o.moved_on or self.answers - o.answers_at_move_on == st.answers - o.own_at_move_on]
+            cands = keep + cands[-1:]
+        if not cands:
+            return None
+        first = cands[0]
+        if len(cands) == 1 or not self.timed:
+            return first
+        newest = cands[-1]
+        slowest = self._slowest_ns(st)
+        from_first = rsp.t_start_ns - first.req.t_end_ns
+        from_newest = rsp.t_start_ns - newest.req.t_end_ns
+        slack = rsp.t_end_hi_ns - rsp.t_end_lo_ns
+        if from_first > LATE_PROOF * slowest + slack and -slack <= from_newest <= FIT_SLACK * slowest + slack:
+            return newest
+        return first
+
+    def _on_response(self, rsp: Frame, events: list[Damage]) -> None:
+        st = self.stations.get(rsp.address)
+        o = self._owner(st, rsp) if st is not None else None
+        if o is not None:
+            # Every older open request of this station went unanswered: it answers in order.
+            while st.open and st.open[0] is not o:
+                self._close(st.open.popleft())
+            st.open.popleft()
+            if self.current is o:
+                self.current = None
+                self.last_answered = True
+                hit = o.damage
                 if hit is not None and hit.kind in ("crc_error", "truncated") and hit.raw[:1] == rsp.raw[:1]:
                     # Two answers from "station N" to one request: they overlapped on the line, and
                     # the master heard a collision, whatever came through intact afterwards.
                     events.append(Damage("collision", rsp.port, hit.t_ns, hit.raw, rsp.address,
                                          f"two answers from station {rsp.address} to one request overlapped "
                                          f"(duplicate address?)"))
-                    self.slots.append(_Slot(Transaction(req.address, req.function, "corrupt", req.t_end_ns,
-                                                        req.raw, retry=self._retry_flag, response_raw=hit.raw),
-                                            True))
-                    self.last_failed = True
+                    o.slot.txn = Transaction(o.req.address, o.req.function, "corrupt", o.req.t_end_ns, o.req.raw,
+                                             retry=o.retry, response_raw=hit.raw)
+                    o.slot.final = True
                     return
-                gap = rsp.t_start_ns - req.t_end_ns
-                late = self.timeout_ns is not None and gap > self.timeout_ns
-                txn = self._answer(req, rsp, self._retry_flag, late)
-                self.slots.append(_Slot(txn, True))
-                self.last_failed = late
-                if not late and not math.isnan(txn.response_ms):
-                    self.slowest_ns = max(self.slowest_ns, txn.response_ms * 1e6)
-                if not math.isnan(txn.response_ms_high) and txn.response_ms_high * 1e6 < self.t35_ns:
-                    events.append(Damage("turnaround_short", rsp.port, txn.t_response_start_ns, rsp.raw,
-                                         rsp.address, f"station {rsp.address} began its answer less than "
-                                         f"t3.5 after the request ended (at most {txn.response_ms_high:.3f} ms)"))
-                return
-        for slot in reversed(self.slots):
-            t = slot.txn
-            if (not slot.final and slot.request is not None and t.outcome == "timeout"
-                    and t.station == rsp.address and t.function == fc):
-                if self.timeout_ns is not None:
-                    late = rsp.t_start_ns - slot.request.t_end_ns > self.timeout_ns
-                elif slot.moved_on_port == rsp.port:
-                    late = True  # one byte stream: the answer came after the next request
-                else:
-                    # two ports: late only if the answer surely began after the next request ended
-                    late = rsp.t_end_lo_ns - rsp.wire_length * rsp.char_ns > slot.moved_on_hi_ns
-                slot.txn = self._answer(slot.request, rsp, t.retry, late)
-                slot.final = True
-                return
-        if w is not None and fc == w.request.function:
+            if not o.moved_on:
+                late = False
+            elif o.moved_on_port == rsp.port:
+                late = True  # one byte stream: the answer came after the next request
+            else:
+                # two ports: late only if the answer surely began after the next request ended
+                late = rsp.t_end_lo_ns - rsp.wire_length * rsp.char_ns > o.moved_on_hi_ns
+            txn = self._answer(o, rsp, late, events)
+            o.slot.txn = txn
+            o.slot.final = True
+            st.answers += 1
+            self.answers += 1
+            if not late and not math.isnan(txn.response_ms):
+                st.slowest_ns = max(st.slowest_ns, txn.response_ms * 1e6)
+            return
+        w = self.current
+        fc = rsp.function & 0x7F
+        if w is not None and fc == w.req.function:
             events.append(Damage("unexpected_responder", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
                                  f"station {rsp.address} answered a request addressed to station "
-                                 f"{w.request.address}"))
+                                 f"{w.req.address}"))
             return
         last = self.last_request
-        if w is None and last is not None and last.address == rsp.address and (last.function == fc):
+        if w is None and last is not None and last.address == rsp.address and last.function == fc:
             detail = (f"a second answer from station {rsp.address} to one request (two stations with one "
                       f"address, or a station repeating itself)")
         else:
@@ -295,6 +517,9 @@ class Pairing:
 
     def _ready(self) -> list[Transaction]:
         out: list[Transaction] = []
-        while self.slots and self.slots[0].final:
-            out.append(self.slots.pop(0).txn)
+        slots = self.slots
+        while slots and slots[0].final:
+            txn = slots.popleft().txn
+            assert txn is not None
+            out.append(txn)
         return out

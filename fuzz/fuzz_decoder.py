@@ -59,10 +59,9 @@ def _check_tables(out) -> None:
 
 def _config(fdp: atheris.FuzzedDataProvider) -> DecoderConfig:
     serial = SerialFormat.parse(_FORMATS[fdp.ConsumeIntInRange(0, 3)], _BAUDS[fdp.ConsumeIntInRange(0, 3)])
-    timeout = fdp.ConsumeIntInRange(0, 500)
     return DecoderConfig(serial=serial, latency_ms={0: float(fdp.ConsumeIntInRange(1, 32))},
                          protocol="ascii" if fdp.ConsumeIntInRange(0, 5) == 0 else "rtu",
-                         untimed=fdp.ConsumeBool(), response_timeout_ms=float(timeout) if timeout else None,
+                         untimed=fdp.ConsumeBool(),
                          port_roles={1: ("master", "slaves", "both")[fdp.ConsumeIntInRange(0, 2)]})
 
 
@@ -95,8 +94,7 @@ def _decode(fdp: atheris.FuzzedDataProvider) -> int:
 
 def _pair(fdp: atheris.FuzzedDataProvider) -> int:
     """Frames and damage in time order straight into the state machine; its invariants must hold."""
-    timeout = fdp.ConsumeIntInRange(0, 300)
-    pairing = Pairing(float(timeout) if timeout else None, 2_000_000.0, timed=fdp.ConsumeBool())
+    pairing = Pairing(2_000_000.0, timed=fdp.ConsumeBool())
     t, requests, txns = 1_000_000_000, 0, []
     while fdp.remaining_bytes() > 0:
         t += fdp.ConsumeIntInRange(0, 300_000_000)

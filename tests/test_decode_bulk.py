@@ -79,7 +79,7 @@ def test_mixed_traffic_decodes_the_same_in_bulk_and_record_by_record(latency_ms)
     records = deliver(_poll_stream(3), c, latency_ms * 1e6)
     recs = [Record(0, t, d) for t, d in records]
     batches = [RecordBatch.from_records(recs[i:i + 37]) for i in range(0, len(recs), 37)]
-    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms}, response_timeout_ms=100))
+    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms}))
 
 
 @pytest.mark.slow
@@ -88,7 +88,7 @@ def test_simulated_captures_decode_the_same_in_bulk_and_record_by_record(name, s
     from buswitness.simulate import load_scenario, simulate
     sc = load_scenario(name)
     res = simulate(sc, duration_s=seconds, seed=2)
-    _both_ways(list(res.batches()), DecoderConfig.from_header(res.header, response_timeout_ms=sc.master.timeout_ms))
+    _both_ways(list(res.batches()), DecoderConfig.from_header(res.header))
 
 
 def _sequential(data: bytes) -> list[tuple[int, int, int]]:
@@ -141,7 +141,7 @@ def test_fuzzed_records_decode_the_same_in_bulk_and_record_by_record(monkeypatch
         t += dt
         recs.append(Record(0, t, data, flags))
     batches = [RecordBatch.from_records(recs[i:i + batch_size]) for i in range(0, len(recs), batch_size)]
-    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}, response_timeout_ms=20))
+    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}))
 
 
 def _walk_streams():
@@ -210,5 +210,5 @@ def test_four_wire_capture_decodes_the_same_in_bulk_and_record_by_record(monkeyp
     recs = _four_wire_records(8, latency_ms)
     batches = [RecordBatch.from_records(recs[i:i + 40]) for i in range(0, len(recs), 40)]
     cfg = DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms, 1: latency_ms},
-                        port_roles={0: "master", 1: "slaves"}, response_timeout_ms=100)
+                        port_roles={0: "master", 1: "slaves"})
     _both_ways(batches, cfg)

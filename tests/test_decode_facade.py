@@ -82,6 +82,6 @@ def test_config_from_a_header_takes_latency_and_defaults():
     from buswitness.capture.fileformat import CaptureHeader, PortInfo
     header = CaptureHeader(serial=FMT_19200, ports=[PortInfo(0, "a", latency_ms=1.0), PortInfo(1, "b")],
                            timing="none")
-    cfg = DecoderConfig.from_header(header, response_timeout_ms=250)
+    cfg = DecoderConfig.from_header(header)
     assert (cfg.latency_for(0), cfg.latency_for(1), cfg.host_delay_ms) == (1.0, 16.0, 1.0)
-    assert cfg.untimed and cfg.response_timeout_ms == 250 and cfg.role_for(0) == "both"
+    assert cfg.untimed and cfg.role_for(0) == "both"

@@ -79,7 +79,7 @@ def _check(items: list) -> None:
 @settings(suppress_health_check=[HealthCheck.too_slow], deadline=None)
 @given(RECORDS, st.sampled_from(["rtu", "ascii"]), st.booleans())
 def test_fuzzed_records_give_only_documented_results(records, protocol, untimed):
-    dec = Decoder(DecoderConfig(serial=FMT_19200, protocol=protocol, untimed=untimed, response_timeout_ms=50))
+    dec = Decoder(DecoderConfig(serial=FMT_19200, protocol=protocol, untimed=untimed))
     t = 0
     for port, dt, data, flags in records:
         t += dt

@@ -49,9 +49,11 @@ def test_late_answer_after_the_next_request_is_credited_to_its_own_request():
     assert not [e for e in events if e.kind == "orphan_response"]
 
 
-def test_answer_past_the_configured_timeout_is_late():
-    txns, _ = run([(0, req(1, READ)), (150, req(1, READ_OK))], 1.0, response_timeout_ms=100)
-    assert [t.outcome for t in txns] == ["late"]
+def test_slow_answer_the_master_still_awaited_is_answered_not_late():
+    # the decoder records facts, not a timeout: the master had not moved on, so this is an answer
+    # (the analysis judges 150 ms against the timeout in use)
+    txns, _ = run([(0, req(1, READ)), (150, req(1, READ_OK))], 1.0)
+    assert [t.outcome for t in txns] == ["ok"]
     assert txns[0].response_ms == pytest.approx(150, abs=2)
 
 
@@ -77,8 +79,7 @@ def test_echo_answer_to_write_single_register_is_a_response():
 
 
 def test_identical_request_long_after_is_a_retry_not_an_echo():
-    txns, _ = run([(0, req(3, WRITE_ONE)), (300, req(3, WRITE_ONE)), (4, req(3, WRITE_ONE))],
-                  response_timeout_ms=200)
+    txns, _ = run([(0, req(3, WRITE_ONE)), (300, req(3, WRITE_ONE)), (4, req(3, WRITE_ONE))])
     assert [(t.outcome, t.retry) for t in txns] == [("timeout", False), ("ok", True)]
 
 
@@ -149,7 +150,7 @@ def test_four_wire_capture_with_one_adapter_per_direction_pairs_in_time_order(la
     recs += [Record(1, ts, d) for ts, d in deliver(stations, C_NS, latency_ms * MS, phase_ns=0.7 * MS)]
     recs.sort(key=lambda r: r.t_ns)
     cfg = DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms, 1: latency_ms},
-                        port_roles={0: "master", 1: "slaves"}, response_timeout_ms=200)
+                        port_roles={0: "master", 1: "slaves"})
     dec = Decoder(cfg)
     outs = [dec.feed_batch(RecordBatch.from_records(recs[i:i + 25])) for i in range(0, len(recs), 25)]
     outs.append(dec.flush())
@@ -185,3 +186,89 @@ def test_late_answer_running_into_the_answer_to_the_retry_is_two_answers_collidi
 def test_damage_after_a_request_with_no_timed_out_station_is_no_collision():
     _, events = run([(0, req(1, READ)), (3, garbled(req(1, READ_OK))), (200, req(2, READ))])
     assert not [e for e in events if e.kind == "collision"]
+
+
+# -- issue 12: what independent stacks and real devices showed ----------------------------------
+# Masters retry an identical request about one response timeout after it (common practice);
+# FC05/FC06 answers repeat the request byte for byte (MAP V1.1b3 p18-19).
+WRITE_COIL = "0500AC FF00".replace(" ", "")  # MAP V1.1b3 p18: write coil 173 ON, the answer is an echo
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_retries_to_a_station_with_no_device_are_requests_not_its_echo_answers(latency_ms):
+    script = []
+    for cycle in range(12):
+        script += [(30, req(1, READ)), (4, req(1, READ_OK))]
+        for pdu in (READ, WRITE_ONE, WRITE_COIL):
+            script += [(30, req(9, pdu)), (200, req(9, pdu))]  # request, then the master's retry
+        script += [(200, req(2, READ)), (4, req(2, READ_OK))]
+    txns, events = run(script, latency_ms)
+    dead = [t for t in txns if t.station == 9]
+    assert len(dead) == 12 * 3 * 2  # every attempt is a request of its own
+    assert {t.outcome for t in dead} == {"timeout"}
+    assert sum(t.retry for t in dead) == 12 * 3
+    assert not [e for e in events if e.kind in ("orphan_response", "unexpected_responder")]
+
+
+def test_echo_answers_of_a_live_station_stay_answers_once_the_masters_wait_is_known():
+    script = []
+    for _ in range(6):
+        script += [(30, req(9, READ)), (200, req(2, READ)), (4, req(2, READ_OK))]  # 9 times out: the wait
+    script += [(30, req(3, WRITE_ONE)), (60, req(3, WRITE_ONE))]  # a slow echo, well inside the wait
+    txns, _ = run(script)
+    assert [(t.station, t.outcome) for t in txns][-1] == (3, "ok")
+    assert txns[-1].response_ms == pytest.approx(60, abs=17)
+
+
+def test_a_slow_station_answers_in_order_so_the_first_answer_after_a_retry_is_the_first_requests():
+    # request k at 0; the master gives up at 200 ms and retries (k+1); the station answers k at
+    # 286 ms, then k+1; the master moves on in between. Each answer is measured from its own request.
+    a = req(7, READ_OK)
+    q = req(7, READ)
+    c = len(q) * C_NS / MS
+    script = [(30, req(1, READ)), (4, req(1, READ_OK))] * 6
+    script += [(0, q), (200 - c, q), (86, a), (20, req(1, READ)), (4, req(1, READ_OK)),
+               (150, a)]
+    txns, events = run(script, 1.0)
+    seven = [t for t in txns if t.station == 7]
+    assert [(t.outcome, t.retry) for t in seven] == [("late", False), ("late", True)]
+    assert seven[0].response_ms == pytest.approx(286, abs=2)
+    assert not [e for e in events if e.kind in ("orphan_response", "collision")]
+
+
+def test_an_answer_right_after_the_retry_of_a_prompt_station_is_the_retrys():
+    # the station never got request k (noise at its end); it answers the retry in its usual 5 ms
+    script = [(30, req(4, READ)), (5, req(4, READ_OK))] * 8
+    script += [(30, req(4, READ)), (200, req(4, READ)), (5, req(4, READ_OK)), (20, req(1, READ))]
+    txns, _ = run(script, 1.0)
+    assert [(t.outcome, t.retry) for t in txns[-3:-1]] == [("timeout", False), ("ok", True)]
+    assert txns[-2].response_ms == pytest.approx(5, abs=1)
+
+
+@pytest.mark.parametrize("pdu", [READ, WRITE_ONE])
+def test_a_damaged_answer_then_a_retry_and_a_good_answer_is_one_corrupt_attempt_and_an_answer(pdu):
+    good = req(5, READ_OK if pdu == READ else pdu)
+    bad = bytearray(good)
+    bad[3] ^= 0x10
+    script = [(30, req(5, pdu)), (5, bytes(bad)), (10, req(5, pdu)), (5, good), (20, req(1, READ)),
+              (4, req(1, READ_OK))]
+    txns, events = run(script, 1.0)
+    assert [(t.station, t.outcome, t.retry) for t in txns] == [(5, "corrupt", False), (5, "ok", True),
+                                                              (1, "ok", False)]
+    assert [e.kind for e in events] == ["crc_error"]
+
+
+@pytest.mark.xfail(reason="decode/arrival.py still clamps the byte-time bounds into a point (being fixed)",
+                   strict=False)
+def test_a_timing_contradiction_widens_the_interval_instead_of_collapsing_it():
+    # answers that (by the stated 8E1 timing) would begin before the request ended: the capture's
+    # format or latency is wrong. The interval must stay an interval and the conflict be reported.
+    from buswitness.decode import Decoder
+    dec = Decoder(DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}, host_delay_ms=0.0))
+    q, a = req(1, READ), req(1, READ_OK)
+    t = 1_000_000_000
+    out = dec.feed(0, t, q) + dec.feed(0, t + 2 * int(C_NS), a) + dec.flush_events()
+    (txn,) = of_type(out, Transaction)
+    assert txn.response_ms_low == 0.0 and txn.response_ms_high > 0.5
+    kinds = [e.kind for e in of_type(out, Damage)]
+    assert "timing_conflict" in kinds and "turnaround_short" not in kinds

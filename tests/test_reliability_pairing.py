@@ -29,9 +29,9 @@ STEP = st.one_of(
 )
 
 
-def run(steps, timeout_ms, timed=True):
+def run(steps, timed=True):
     """Feed the steps in time order; return (requests, responses, transactions, events)."""
-    pairing = Pairing(timeout_ms, T35_NS, timed=timed)
+    pairing = Pairing(T35_NS, timed=timed)
     t, requests, responses, txns, events = 1_000_000_000, [], [], [], []
     for step in steps:
         t += int(step[3] * 1e6)
@@ -48,8 +48,8 @@ def run(steps, timeout_ms, timed=True):
         frame = Frame(0, raw, end - 300_000, end + 300_000, C_NS, step[0])
         (requests if step[0] == "request" else responses).append(frame)
         done, evs = pairing.on_frame(frame)
-        # invariant 1: at most one request awaits an answer, and it is the latest one
-        assert pairing.waiting is None or pairing.waiting.request is requests[-1]
+        # at most one request awaits an answer, and it is the latest one
+        assert pairing.waiting is None or pairing.waiting.req is requests[-1]
         txns += done
         events += evs
         t = end
@@ -61,18 +61,18 @@ SETTINGS = settings(max_examples=300, deadline=None, suppress_health_check=[Heal
 
 
 @SETTINGS
-@given(st.lists(STEP, max_size=40), st.sampled_from([None, 50.0, 200.0]), st.booleans())
-def test_every_request_becomes_exactly_one_transaction_in_request_order(steps, timeout_ms, timed):
-    requests, _responses, txns, _events = run(steps, timeout_ms, timed)
+@given(st.lists(STEP, max_size=40), st.booleans())
+def test_every_request_becomes_exactly_one_transaction_in_request_order(steps, timed):
+    requests, _responses, txns, _events = run(steps, timed)
     assert [t.request_raw for t in txns] == [r.raw for r in requests]
     assert [t.t_request_end_ns for t in txns] == [r.t_end_ns for r in requests]
     assert all(isinstance(t, Transaction) and t.outcome in OUTCOMES for t in txns)
 
 
 @SETTINGS
-@given(st.lists(STEP, max_size=40), st.sampled_from([None, 50.0, 200.0]))
-def test_every_response_is_credited_once_or_reported_never_guessed(steps, timeout_ms):
-    _requests, responses, txns, events = run(steps, timeout_ms)
+@given(st.lists(STEP, max_size=40))
+def test_every_response_is_credited_once_or_reported_never_guessed(steps):
+    _requests, responses, txns, events = run(steps)
     credited = [t for t in txns if t.outcome in CREDITED]
     reported = [e for e in events if e.kind in ANSWER_EVENTS]
     assert len(responses) == len(credited) + len(reported)
@@ -83,9 +83,9 @@ def test_every_response_is_credited_once_or_reported_never_guessed(steps, timeou
 
 
 @SETTINGS
-@given(st.lists(STEP, max_size=40), st.sampled_from([None, 50.0]))
-def test_outcomes_agree_with_what_was_on_the_line(steps, timeout_ms):
-    _requests, _responses, txns, events = run(steps, timeout_ms)
+@given(st.lists(STEP, max_size=40))
+def test_outcomes_agree_with_what_was_on_the_line(steps):
+    _requests, _responses, txns, events = run(steps)
     assert all(e.kind in EVENT_KINDS for e in events)
     for t in txns:
         if t.station == 0:
@@ -95,8 +95,9 @@ def test_outcomes_agree_with_what_was_on_the_line(steps, timeout_ms):
         if t.outcome == "exception":
             # MAP V1.1b3 p47: function code + 0x80, then the exception code
             assert t.response_raw[1] & 0x80 and t.exception_code == t.response_raw[2] > 0
-        if t.outcome == "ok" and timeout_ms is not None:
-            assert t.t_response_start_ns - t.t_request_end_ns <= timeout_ms * 1e6
+        if t.outcome in CREDITED:
+            # invariant 3: no request gets an answer that began before it ended
+            assert t.t_response_start_ns >= t.t_request_end_ns - 1_000_000
     for previous, t in itertools.pairwise(txns):
         if t.retry:
             assert previous.request_raw == t.request_raw and previous.outcome in ("timeout", "late", "corrupt")
