@@ -52,6 +52,7 @@ class StationFigures:
     exceptions: int
     exceptions_by_code: dict
     corrupt: int
+    ambiguous: int         #: an identical frame followed that may be its echo answer or the master's retry
     crc_errors: int        #: frames of its that failed the CRC check: crc_error and truncated events
     collisions: int
     retries: int
@@ -211,7 +212,7 @@ def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: 
         position_m=info.position_m if info else None, notes=info.notes if info else "",
         requests=requests, answered=answered, ok=int(o[_O["ok"]]), timeouts=int(o[_O["timeout"]]),
         late=int(o[_O["late"]]), exceptions=int(o[_O["exception"]]), exceptions_by_code=codes,
-        corrupt=int(o[_O["corrupt"]]), crc_errors=int(ev[_K["crc_error"]] + ev[_K["truncated"]]), collisions=int(ev[_K["collision"]]),
+        corrupt=int(o[_O["corrupt"]]), ambiguous=int(o[_O["ambiguous"]]), crc_errors=int(ev[_K["crc_error"]] + ev[_K["truncated"]]), collisions=int(ev[_K["collision"]]),
         retries=int(acc.retries[address]), response_ms=resp["response_ms"],
         response_ms_interval=resp["response_ms_interval"], timing_halfwidth_ms=resp["timing_halfwidth_ms"],
         answers_over_timeout=None if timeout.timeout_ms is None else above(acc, address, timeout.timeout_ms),

@@ -120,6 +120,7 @@ def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
     for s in result.stations:
         r = s.response_ms
         lines.append(f"  {s.label}: {s.requests} requests, {s.answered} answered, {s.timeouts} timeouts, "
-                     f"{s.late} late, {s.exceptions} exceptions, {s.crc_errors} CRC errors; "
-                     f"response p50 {_ms(r['p50'])}, p95 {_ms(r['p95'])}, max {_ms(r['max'])}")
+                     f"{s.late} late, {s.exceptions} exceptions, {s.crc_errors} CRC errors"
+                     + (f", {s.ambiguous} ambiguous (echo or retry)" if s.ambiguous else "")
+                     + f"; response p50 {_ms(r['p50'])}, p95 {_ms(r['p95'])}, max {_ms(r['max'])}")
     return "\n".join(lines)

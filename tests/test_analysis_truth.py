@@ -101,3 +101,16 @@ def test_summary_counts_equal_the_decoded_tables_on_the_demo_bus(tmp_path):
         crc_failed = ev["kind"].astype(str).isin(["crc_error", "truncated"])
         assert s["crc_errors"] == int((crc_failed & (ev["station"] == s["address"])).sum())
     assert summary["bus"]["requests"] == len(tx)
+
+
+def test_a_given_timeout_and_the_same_timeout_inferred_give_the_same_counts(tmp_path):
+    # issue 12: one meaning of timeout; the decoder records facts, the analysis judges them once
+    sim = simulate(parse_scenario(json.dumps(scenario(tail=True)), "test"), duration_s=600, seed=2, keep_tables=False)
+    capture = tmp_path / "sim.bwcap"
+    sim.write(capture)
+    inferred = analyze(open_capture(capture), AnalysisOptions(progress=False))
+    assert inferred.timeout.source == "inferred" and inferred.timeout.timeout_ms == 200
+    given = analyze(open_capture(capture), AnalysisOptions(progress=False, timeout_ms=200))
+    counts = ("requests", "answered", "timeouts", "late", "corrupt", "ambiguous", "retries", "answers_over_timeout")
+    for a, b in zip(summary_dict(inferred)["stations"], summary_dict(given)["stations"]):
+        assert {k: a[k] for k in counts} == {k: b[k] for k in counts}
