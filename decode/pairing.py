@@ -38,9 +38,10 @@ response from N, function F         credit N's open request of function F (invar
 response nobody awaits              ``unexpected_responder`` (same function as the awaited
                                     request) or ``orphan_response``
 frame identical to N's open request an echo answer (FC05/06/08) or the master's retry: decided by
-                                    :meth:`Pairing.direction_of`; where the evidence is split the
-                                    request closes ``ambiguous`` with that frame as its possible
-                                    answer
+                                    :meth:`Pairing.direction_of` from timing and the station's
+                                    record; where that is split, held until the next input decides
+                                    (:meth:`Pairing._settle`); still split: the request closes
+                                    ``ambiguous`` with that frame as its possible answer
 damage after the awaited request    remember it on that request (its answer was probably hit);
                                     shaped like the late answer of a station M with an open
                                     request: ``collision`` events for M and N
@@ -149,6 +150,8 @@ class Pairing:
         self._waits: deque[float] = deque(maxlen=WAIT_SAMPLES)
         self._wait_ns: float | None = None
         self._wait_dirty = False
+        self._held: Frame | None = None  # an identical frame whose class waits for what follows it
+        self._events: list[Damage] = []  # events made while settling it, handed out with the next frame
 
     # -- what has been learnt -----------------------------------------------------------------
     def station(self, address: int) -> _Station:
@@ -189,7 +192,7 @@ class Pairing:
 
     def is_quiet(self) -> bool:
         """Nothing open: the columnar path may pair a regular run on its own (see absorb_regular)."""
-        return self.current is None and not self.slots
+        return self.current is None and not self.slots and self._held is None
 
     # -- direction on a two-wire bus ------------------------------------------------------------
     def direction_of(self, frame: Frame, shape: int) -> str:
@@ -235,17 +238,23 @@ class Pairing:
 
     # -- inputs -----------------------------------------------------------------------------------
     def on_frame(self, frame: Frame) -> tuple[list[Transaction], list[Damage]]:
-        events: list[Damage] = []
+        events, self._events = self._events, []
+        if self._held is not None:
+            self._settle(frame)
+            events += self._events
+            self._events = []
         if frame.direction == "request":
             self._on_request(frame)
         elif frame.direction == "unknown":
-            self._on_ambiguous(frame)
+            self._held = frame  # what follows it decides (see _settle)
         else:
             self._on_response(frame, events)
         return self._ready(), events
 
     def on_damage(self, damage: Damage) -> Damage:
         """Note damage while awaiting; return the event with the station it most likely concerns."""
+        if self._held is not None and damage.kind in ANSWER_DAMAGE:
+            self._settle(None)
         w = self.current
         # On the request's own port, stream order already says the damage came after it.
         if w is not None and damage.kind in ANSWER_DAMAGE and (damage.port == w.req.port
@@ -286,6 +295,9 @@ class Pairing:
 
     def flush(self) -> list[Transaction]:
         """End of input: every open request closes as it stands."""
+        if self._held is not None:
+            self._on_ambiguous(self._held)
+            self._held = None
         for st in self.stations.values():
             while st.open:
                 self._close(st.open.popleft())
@@ -346,6 +358,40 @@ class Pairing:
         o = _Open(req, slot, retry)
         self.station(req.address).open.append(o)
         self.current = o
+
+    def _settle(self, after: Frame | None) -> None:
+        """Class the held identical frame by what followed it: ``after`` (None: damaged bytes).
+
+        An answer is followed by the master's next request after its usual short pause; a retry
+        nobody answered by silence until the master gives up again (about one wait), or by the
+        answer to it. Damage right after it is the retry's answer being hit.
+        """
+        held, self._held = self._held, None
+        assert held is not None
+        cur = self.current
+        if cur is None or after is None:
+            self._as(held, "request")
+            return
+        first_gap = held.t_start_ns - cur.req.t_end_ns
+        gap = after.t_start_ns - held.t_end_ns
+        wait = self.master_wait_ns()
+        if after.raw == held.raw or (after.direction == "response" and after.address == held.address):
+            # its own answer follows: the held frame was the master's retry
+            verdict = "request" if gap <= ECHO_SLACK * self._slowest_ns(self.station(held.address)) else "unknown"
+        elif wait is not None:
+            verdict = "request" if gap >= RETRY_SHARE * wait else "response" if gap <= ECHO_SURE * wait else "unknown"
+        else:
+            verdict = "request" if gap >= RETRY_SHARE * first_gap else "response" if gap <= ECHO_SURE * first_gap \
+                else "unknown"
+        self._as(held, verdict)
+
+    def _as(self, frame: Frame, verdict: str) -> None:
+        if verdict == "request":
+            self._on_request(replace(frame, direction="request"))
+        elif verdict == "response":
+            self._on_response(replace(frame, direction="response"), self._events)
+        else:
+            self._on_ambiguous(frame)
 
     def _on_ambiguous(self, frame: Frame) -> None:
         """An identical frame the wire cannot class: the open request closes ``ambiguous``."""

@@ -272,3 +272,15 @@ def test_a_timing_contradiction_widens_the_interval_instead_of_collapsing_it():
     assert txn.response_ms_low == 0.0 and txn.response_ms_high > 0.5
     kinds = [e.kind for e in of_type(out, Damage)]
     assert "timing_conflict" in kinds and "turnaround_short" not in kinds
+
+
+@pytest.mark.parametrize(("pause_ms", "outcomes"), [(3, [("ok", False), ("ok", False)]),
+                                                     (32, [("timeout", False), ("timeout", True), ("ok", False)])])
+def test_what_follows_an_identical_frame_decides_echo_or_retry_when_timing_alone_cannot(pause_ms, outcomes):
+    # FIELD-NOTES 22: after a real answer the master polls on after its usual short pause; after a
+    # retry nobody answers, it waits about as long again. 30 ms is neither clearly an echo nor a retry
+    # on a bus whose answers so far took 5 ms and whose master's wait is not known yet.
+    script = [(30, req(1, READ)), (5, req(1, READ_OK))] * 6
+    script += [(30, req(3, WRITE_ONE)), (30, req(3, WRITE_ONE)), (pause_ms, req(2, READ)), (5, req(2, READ_OK))]
+    txns, _ = run(script, 1.0)
+    assert [(t.outcome, t.retry) for t in txns[6:]] == outcomes
