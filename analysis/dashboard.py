@@ -36,8 +36,8 @@ def _plotly_js() -> str:
 
 def _minute_axis(result: AnalysisResult, n: int) -> list:
     if result.utc_at(0.0):
-        return [result.utc_at(60.0 * i)[:19] for i in range(n)]
-    return [round(i / 60.0, 4) for i in range(n)]
+        return [result.utc_at(result.minute_start_s(i))[:19] for i in range(n)]
+    return [round(result.minute_start_s(i) / 3600.0, 4) for i in range(n)]
 
 
 def _label(text: str) -> str:

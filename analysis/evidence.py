@@ -112,7 +112,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         "failures": [r for r in result.acc.failures.get(address, [])],
         "damage": result.damage, "char_ms": result.header.serial.char_time_s * 1000.0,
         "t35_ms": result.header.serial.t35_s * 1000.0, "resolution_pct": 100 * FINE.relative_resolution,
-        "span": {"start": result.utc_at(0.0), "end": result.utc_at(result.bus.duration_s),
+        "span": {"start": result.utc_at(result.span_s[0]), "end": result.utc_at(result.span_s[1]),
                  "hours": result.bus.duration_s / 3600.0},
     }
 

@@ -109,8 +109,9 @@ def tx_row(t0_ns: int, t_req_ns: int, station: int, function: int, outcome: str,
 class Accumulator:
     """Everything the analysis keeps while the capture streams past; ``merge`` adds two together."""
 
-    t0_ns: int
+    t0_ns: int  #: the capture start the file states, on the record clock: every reported time counts from it
     char_ns: float
+    minute0: int = 0  #: minute (since t0_ns) of the per-minute series' first row
     outcomes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, len(OUTCOMES)), np.int64))
     retries: np.ndarray = field(default_factory=lambda: np.zeros(N_ADDR, np.int64))
     exception_codes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, 256), np.int64))
@@ -152,7 +153,7 @@ class Accumulator:
     # -- feeding ---------------------------------------------------------------------------------
 
     def _minute(self, t_ns: np.ndarray) -> np.ndarray:
-        return np.maximum((np.asarray(t_ns, np.int64) - self.t0_ns) // NS_PER_MIN, 0)
+        return np.maximum((np.asarray(t_ns, np.int64) - self.t0_ns) // NS_PER_MIN - self.minute0, 0)
 
     def _span(self, t_ns: np.ndarray) -> None:
         if len(t_ns):
@@ -393,7 +394,7 @@ class Accumulator:
 
     def merge(self, other: Accumulator) -> None:
         """Add ``other`` (a later or parallel part of the same capture) into this one."""
-        if other.t0_ns != self.t0_ns:
+        if other.t0_ns != self.t0_ns or other.minute0 != self.minute0:
             raise ValueError("accumulators of different capture starts cannot be merged")
         for name in ("outcomes", "retries", "exception_codes", "functions", "rt_mid", "rt_low", "rt_high",
                      "halfwidth", "poll", "move_on", "move_on_sum_ms", "events", "gaps", "in_time"):

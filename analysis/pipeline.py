@@ -58,12 +58,25 @@ def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     return frames, tx, events
 
 
-def _choose_t0(header: CaptureHeader, first_ns: int) -> int:
-    """The capture start on the record clock: the header's, unless it cannot belong to these records."""
+#: Traffic starting longer than this after the stated capture start gets its per-minute series
+#: started at the minute of its first frame, not at the capture start (no day of empty minutes).
+SERIES_LEAD_MAX_NS = 1440 * NS_PER_MIN
+
+
+def _clock(header: CaptureHeader, first_ns: int) -> tuple[int, int]:
+    """(capture start on the record clock, first minute of the per-minute series).
+
+    Every reported time counts from the start the file states (the header's
+    ``start_monotonic_ns``; 0 for hex text, whose times count from the capture start), never
+    from the first decoded frame, so exported times line up with the user's own log. The
+    per-minute series starts at the capture start too, unless the traffic begins before it
+    or more than a day after it: then at the whole minute of the first frame.
+    """
     start = int(header.start_monotonic_ns or 0)
-    if start > 0 and -1_000_000_000 <= first_ns - start <= 1440 * NS_PER_MIN:
-        return start
-    return int(first_ns)
+    lead = first_ns - start
+    if -1_000_000_000 <= lead <= SERIES_LEAD_MAX_NS:
+        return start, 0
+    return start, int(lead // NS_PER_MIN)
 
 
 def _first_time(frames: pd.DataFrame, tx: pd.DataFrame, events: pd.DataFrame) -> int | None:
@@ -94,10 +107,11 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             first = _first_time(frames, tx, events)
             if first is None:
                 return
-            acc = Accumulator(t0_ns=_choose_t0(header, first), char_ns=char_ns)
-            anchor = utc_anchor_of(header.start_utc) if acc.t0_ns == header.start_monotonic_ns else None
+            t0, minute0 = _clock(header, first)
+            acc = Accumulator(t0_ns=t0, char_ns=char_ns, minute0=minute0)
             if options.csv_dir or options.parquet_dir:
-                exporter = TableExporter(acc.t0_ns, anchor, options.csv_dir, options.parquet_dir)
+                exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
+                                         options.parquet_dir)
         acc.add_frames(frames)
         acc.add_transactions(tx)
         acc.add_events(events)
@@ -114,7 +128,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         if acc is None:
             acc = Accumulator(t0_ns=int(header.start_monotonic_ns or 0), char_ns=char_ns)
             if options.csv_dir or options.parquet_dir:
-                exporter = TableExporter(acc.t0_ns, None, options.csv_dir, options.parquet_dir)
+                exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
+                                         options.parquet_dir)
         if exporter is not None:
             exporter.close(*empty)
     except BaseException:

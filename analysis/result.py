@@ -15,6 +15,7 @@ from buswitness.analysis.figures import (
     EVENT_KINDS,
     FAILURES_PER_STATION,
     MINUTE_COLUMNS,
+    NS_PER_MIN,
     OUTCOMES,
     Accumulator,
     above,
@@ -121,10 +122,30 @@ class AnalysisResult:
                 return s
         return None
 
+    @property
+    def series_start_s(self) -> float:
+        """Where minute 0 of the per-minute series begins, in seconds since the capture start."""
+        return 60.0 * self.acc.minute0
+
+    def minute_start_s(self, minute: int) -> float:
+        """Start of a row of the per-minute series, in seconds since the capture start."""
+        return 60.0 * (self.acc.minute0 + minute)
+
+    @property
+    def span_s(self) -> tuple[float, float]:
+        """The recorded stretch, in seconds since the capture start: from the start (or the first frame when
+        it comes before, or a day or more after) to the end of the last frame."""
+        acc = self.acc
+        if acc.last_ns is None:
+            return self.series_start_s, self.series_start_s
+        start_ns = acc.t0_ns + acc.minute0 * NS_PER_MIN
+        start = (min(start_ns, acc.first_ns if acc.first_ns is not None else start_ns) - acc.t0_ns) / 1e9
+        return start, (acc.last_ns - acc.t0_ns) / 1e9
+
     def utc_at(self, t_s: float) -> str:
         """Wall-clock UTC of a time since the capture start, when the header anchors it."""
         start = self.header.start_datetime()
-        if start is None or self.acc.t0_ns != self.header.start_monotonic_ns:
+        if start is None:
             return ""
         if start.tzinfo is None:
             start = start.replace(tzinfo=timezone.utc)
@@ -226,7 +247,9 @@ def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: 
 
 
 def _bus_figures(acc: Accumulator) -> BusFigures:
-    duration = 0.0 if acc.last_ns is None else max(0.0, (acc.last_ns - min(acc.t0_ns, acc.first_ns or acc.t0_ns)) / 1e9)
+    series_ns = acc.t0_ns + acc.minute0 * NS_PER_MIN
+    duration = 0.0 if acc.last_ns is None else max(
+        0.0, (acc.last_ns - min(series_ns, acc.first_ns if acc.first_ns is not None else series_ns)) / 1e9)
     ev = acc.events.sum(axis=0)
     gaps = sorted(acc.largest_gaps, reverse=True)
     g50, g95 = quantile(acc.gaps, 0.5, FINE), quantile(acc.gaps, 0.95, FINE)

@@ -72,7 +72,8 @@ def summary_dict(result: AnalysisResult) -> dict:
                              "start bit, estimated from host read times; each value carries the interval the "
                              "timestamp model allows",
             "quantile_resolution": round(FINE.relative_resolution, 4),
-            "quantile_rule": "nearest rank over a log-spaced histogram; min and max exact",
+            "quantile_rule": "nearest rank over a log-spaced histogram of interval midpoints; min and max are the "
+                             "smallest and largest midpoints, as uncertain as the intervals they come from",
         },
         "timeout": result.timeout.to_dict(),
         "stations": stations,
@@ -122,5 +123,6 @@ def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
         lines.append(f"  {s.label}: {s.requests} requests, {s.answered} answered, {s.timeouts} timeouts, "
                      f"{s.late} late, {s.exceptions} exceptions, {s.crc_errors} CRC errors"
                      + (f", {s.ambiguous} ambiguous (echo or retry)" if s.ambiguous else "")
-                     + f"; response p50 {_ms(r['p50'])}, p95 {_ms(r['p95'])}, max {_ms(r['max'])}")
+                     + f"; response (interval midpoints) p50 {_ms(r['p50'])}, p95 {_ms(r['p95'])}, "
+                     f"max {_ms(r['max'])}")
     return "\n".join(lines)

@@ -26,10 +26,13 @@ class CaptureSource(Protocol):
 
 
 def open_capture(path: str | os.PathLike, kind: str = "auto", serial: SerialFormat | None = None,
-                 on_bad_line: str = "stop") -> CaptureSource:
+                 on_bad_line: str = "stop", *, baud: int | None = None,
+                 char_format: str | None = None) -> CaptureSource:
     """Open ``path`` read-only as the given kind, or guess it from the first bytes.
 
-    ``serial`` overrides the settings the file carries (needed for raw bytes).
+    ``serial`` replaces the settings the file carries whole. ``baud`` and ``char_format``
+    (``"8N2"``) each replace only their own half of the file's setting, or of the default
+    (19200 8E1) when the file states none (raw bytes, hex text without ``# baud:`` lines).
     """
     if kind not in INPUT_KINDS:
         raise UsageError(f"input kind {kind!r} is not one of {', '.join(INPUT_KINDS)}")
@@ -40,14 +43,19 @@ def open_capture(path: str | os.PathLike, kind: str = "auto", serial: SerialForm
         raise InputFileError(p, "no such file")
     if kind == "auto":
         kind = _guess_kind(p)
+    source: CaptureSource
     if kind == "capture":
-        reader = CaptureReader(p)
+        source = CaptureReader(p)
         if serial is not None:
-            reader.header.serial = serial
-        return reader
-    if kind == "hex":
-        return HexTextSource(p, serial=serial, on_bad_line=on_bad_line)
-    return RawBinarySource(p, serial=serial)
+            source.header.serial = serial
+    elif kind == "hex":
+        source = HexTextSource(p, serial=serial, on_bad_line=on_bad_line)
+    else:
+        if serial is None and (baud is not None or char_format is not None):
+            serial = SerialFormat().overridden(baud, char_format)
+        return RawBinarySource(p, serial=serial)
+    source.header.serial = source.header.serial.overridden(baud, char_format)
+    return source
 
 
 def _guess_kind(p: Path) -> str:

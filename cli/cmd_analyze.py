@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from buswitness.cli.common import add_input_options, roles_arg, serial_from_args
+from buswitness.cli.common import add_input_options, roles_arg, serial_halves
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
@@ -62,7 +62,7 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
     from buswitness.errors import InputFileError
 
     smap = load_station_map(args.stations) if args.stations else None
-    source = open_capture(args.capture, args.input_kind, serial_from_args(args), args.on_bad_line)
+    source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
                               progress=False if args.no_progress else None, port_roles=roles)

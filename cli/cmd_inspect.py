@@ -7,7 +7,7 @@ import collections
 
 from buswitness.capture.fileformat import flag_names
 from buswitness.capture.sources import open_capture
-from buswitness.cli.common import add_input_options, serial_from_args
+from buswitness.cli.common import add_input_options, serial_halves
 
 HELP = "print a capture file's header, record counts and any damage found"
 
@@ -20,8 +20,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    src = open_capture(args.capture, kind=args.input_kind, serial=serial_from_args(args),
-                       on_bad_line=args.on_bad_line)
+    src = open_capture(args.capture, kind=args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
     h = src.header
     print(f"capture      {', '.join(str(p) for p in src.paths)}")
     print(f"source       {h.source} (format version {h.format_version}, written by buswitness {h.tool_version})")

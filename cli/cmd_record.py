@@ -70,7 +70,7 @@ def rotate_arg(text: str) -> tuple[str, int]:
 
 def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:
     """Options shared by ``record`` and ``watch``."""
-    add_serial_options(p)
+    add_serial_options(p, from_file=False)
     p.add_argument("-o", "--output", type=Path, required=output_required, default=None,
                    help="capture file to write (e.g. night.bwcap); never overwritten")
     p.add_argument("--rotate", type=rotate_arg, default=None,

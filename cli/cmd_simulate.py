@@ -22,9 +22,9 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("-o", "--output", help="capture file to write (.bwcap); refused if it exists")
     p.add_argument("--truth", help="also write the ground truth as JSON here; refused if it exists")
     p.add_argument("--latency-ms", type=float, default=None, help="adapter latency timer in ms (e.g. 16 or 1)")
-    p.add_argument("--baud", type=baud_arg, default=None, help="override the bus baud rate")
+    p.add_argument("--baud", type=baud_arg, default=None, help="override the bus baud rate only (default: the scenario's own)")
     p.add_argument("--format", dest="char_format", type=format_arg, default=None,
-                   help="override the bus character format (8E1, 8N2, 8N1, ...)")
+                   help="override the bus character format only: 8E1, 8N2, 8N1, ... (default: the scenario's own)")
     p.add_argument("--list", action="store_true", help="list the built-in scenarios and exit")
     p.set_defaults(run=run)
 

@@ -69,22 +69,42 @@ def format_arg(text: str) -> str:
         raise argparse.ArgumentTypeError(str(exc)) from None
 
 
-def add_serial_options(parser: argparse.ArgumentParser, required: bool = False) -> None:
-    """``--baud`` and ``--format``: the bus's own character format (not necessarily the port's)."""
+#: What ``--baud`` and ``--format`` fall back to when nothing else states the bus's setting.
+DEFAULT_SERIAL = SerialFormat()
+
+
+def add_serial_options(parser: argparse.ArgumentParser, required: bool = False, from_file: bool = True) -> None:
+    """``--baud`` and ``--format``: the bus's own character format (not necessarily the port's).
+
+    Each option replaces only its own half: ``--format 8N2`` keeps the baud rate and ``--baud``
+    keeps the character format, both taken from the input file when it states them
+    (``from_file``), else from :data:`DEFAULT_SERIAL`.
+    """
+    own = "the capture's own setting, else " if from_file else ""
     parser.add_argument("--baud", type=baud_arg, default=None, required=required,
-                        help="bus baud rate, e.g. 9600 or 19200")
+                        help=f"bus baud rate, e.g. 9600 or 19200 (default: {own}{DEFAULT_SERIAL.baud}); "
+                             f"changes only the baud rate, never the character format")
     parser.add_argument("--format", dest="char_format", type=format_arg, default=None,
-                        help="bus character format: data bits, parity, stop bits (8E1, 8N2, 8N1, 7E1)")
+                        help=f"bus character format: data bits, parity, stop bits, e.g. 8E1, 8N2, 8N1, 7E1 "
+                             f"(default: {own}{DEFAULT_SERIAL.short_form}); changes only the format, never "
+                             f"the baud rate")
 
 
 def serial_from_args(args: argparse.Namespace, default: SerialFormat | None = None) -> SerialFormat | None:
-    """The SerialFormat the options name, filling the missing half from ``default``."""
+    """The SerialFormat the options name, each given half replacing only its own half of ``default``.
+
+    With neither option given, ``default`` itself (None: keep what the input states).
+    """
     baud = getattr(args, "baud", None)
     fmt = getattr(args, "char_format", None)
     if baud is None and fmt is None:
         return default
-    base = default or SerialFormat()
-    return SerialFormat.parse(fmt or base.short_form, baud or base.baud)
+    return (default or DEFAULT_SERIAL).overridden(baud, fmt)
+
+
+def serial_halves(args: argparse.Namespace) -> dict:
+    """``baud`` and ``char_format`` as ``open_capture`` takes them: each overrides only its half of the file's."""
+    return {"baud": getattr(args, "baud", None), "char_format": getattr(args, "char_format", None)}
 
 
 def add_input_options(parser: argparse.ArgumentParser) -> None:

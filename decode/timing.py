@@ -115,6 +115,15 @@ class SerialFormat:
     def from_dict(cls, data: dict) -> SerialFormat:
         return cls.parse(str(data.get("format", "8E1")), int(data.get("baud", 19200)))
 
+    def overridden(self, baud: int | None = None, short_form: str | None = None) -> SerialFormat:
+        """This setting with the baud rate and/or the character format replaced, each half on its own.
+
+        ``--format 8N2`` on a 9600 capture keeps 9600; ``--baud`` alone keeps the format.
+        """
+        if baud is None and short_form is None:
+            return self
+        return SerialFormat.parse(short_form or self.short_form, self.baud if baud is None else baud)
+
 
 def parse_baud(text: str | int) -> int:
     """Turn ``"19200"`` or ``19200`` into a checked baud rate."""

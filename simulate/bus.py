@@ -18,6 +18,15 @@ Rules of the model (also in ``docs/scenario-format.md``):
   ``corrupt`` is kept for a damaged answer that started within the timeout.
 - An answer with a silence inside it (``gap_rate``) is accepted by the master (tolerant
   masters are the common case); the silence is in the truth so the decoder can be checked.
+- A station handles the requests it receives one at a time, in the order received (FIFO):
+  it starts on a request when it has finished sending its previous answer, so an answer
+  never starts before the station's earlier answer has ended, and a station never overlaps
+  itself. A request that reaches a station while it is still sending is a collision.
+- The master takes the first valid answer from the addressed station, with the function it
+  asked for, that starts after its request and within its timeout, even when the station
+  sent it for an earlier request (a late answer arriving while the master waits on its
+  retry): the master cannot tell them apart. The transaction's ``outcome`` is always about
+  the station's own answer to that request; ``master_answer`` says which answer the master took.
 """
 
 from __future__ import annotations
@@ -111,6 +120,9 @@ class WireSlice:
     x_resp_raw: list[bytes] = field(default_factory=list)
     x_responder: list[int] = field(default_factory=list)  # station index of the answer counted, -1 none
     x_resp_frame: list[int] = field(default_factory=list)  # frame index (in this slice) of that answer
+    x_attempt: list[int] = field(default_factory=list)     # 0 for a first request, n for its n-th retry
+    x_retry_of: list[int] = field(default_factory=list)    # transaction id of the first attempt, -1 for a first
+    x_master_answer: list[int] = field(default_factory=list)  # transaction id of the answer the master took, -1
 
     def __len__(self) -> int:
         return len(self.f_start)
@@ -168,7 +180,10 @@ class Bus:
         self.cycle_start = self.t
         self.poll_pos = -1
         self.attempt = 0
+        self.first_attempt = -1
         self.next_txn = 0
+        # end of each station's latest answer frame: it starts on its next request only after that (FIFO)
+        self.busy_until = [0] * len(sc.stations)
         self._advance_poll()
         self.inflight: list[int] = []  # frame indices (current slice) that may still overlap new frames
         self.slice: WireSlice | None = None
@@ -234,15 +249,24 @@ class Bus:
         return idx
 
     def _damage_late(self, frame: int) -> None:
-        """A late answer overlapped by a later frame: its transaction had no valid answer at all (a timeout)."""
+        """An answer overlapped by a frame sent after its transaction was settled.
+
+        A late answer then leaves its transaction no valid answer at all (a timeout); an
+        answer that started within the timeout, after the master had already taken an
+        earlier answer and moved on, is a damaged answer in time (corrupt).
+        """
         s = self.slice
         assert s is not None
         txn = s.f_txn[frame]
         if s.f_kind[frame] != KIND_RESPONSE:
             return
         row = txn - s.x_id[0] if s.x_id else -1
-        if 0 <= row < len(s.x_outcome) and s.x_outcome[row] == LATE and s.x_resp_frame[row] == frame:
-            s.x_outcome[row] = TIMEOUT
+        if 0 <= row < len(s.x_outcome) and s.x_resp_frame[row] == frame:
+            if s.x_outcome[row] == LATE:
+                s.x_outcome[row] = TIMEOUT
+            elif s.x_outcome[row] in (OK, EXCEPTION):
+                s.x_outcome[row] = CORRUPT
+                s.x_exc[row] = 0
 
     def _prune(self) -> None:
         s = self.slice
@@ -261,10 +285,12 @@ class Bus:
         retry = self.attempt > 0
         txn = self.next_txn
         self.next_txn += 1
+        if not retry:
+            self.first_attempt = txn
         t_req = self.t
         burst = self._burst_ber(t_req)
         addressed = self.by_address.get(poll.station, [])
-        req_ber = max([burst] + [self.ber[i] for i in addressed])
+        req_ber = max([burst] + [self.ber[i] for i in addressed if self.sc.stations[i].noise_on == "both"])
         kind = KIND_BROADCAST if poll.station == 0 else KIND_REQUEST
         fi = self._add_frame(t_req, raw, MASTER, -1, kind, txn, req_ber)
         req_end = s.f_end[fi]
@@ -275,9 +301,12 @@ class Bus:
         s.x_station.append(poll.station)
         s.x_function.append(poll.function)
         s.x_retry.append(retry)
+        s.x_attempt.append(self.attempt)
+        s.x_retry_of.append(self.first_attempt if retry else -1)
         s.x_req_corrupt.append(req_bad)
         s.x_req_raw.append(raw)
         outcome, exc_code, resp_frame, responder = TIMEOUT, 0, -1, -1
+        master_ok, master_answer = False, -1
         if poll.station == 0:
             outcome = BROADCAST
             self.t = req_end + self.bcast_delay_ns
@@ -298,14 +327,22 @@ class Bus:
                 if start <= deadline:
                     if s.f_noisy[fidx] or s.f_collided[fidx]:
                         outcome = CORRUPT
-                        self.t = max(s.f_end[j] for j in self.inflight if s.f_collided[j] or j == fidx)
                     else:
                         fc = s.f_raw[fidx][1]
                         outcome = EXCEPTION if fc & 0x80 else OK
                         exc_code = s.f_raw[fidx][2] if fc & 0x80 else 0
-                        self.t = s.f_end[fidx]
                 else:
                     outcome = TIMEOUT if (s.f_noisy[fidx] or s.f_collided[fidx]) else LATE
+            earlier = self._earlier_answer(poll.station, poll.function, txn, req_end, deadline)
+            if earlier >= 0 and (not answers or s.f_start[earlier] < answers[0][0]):
+                # the station's late answer to an earlier request, taken by the master as this one's
+                master_ok, master_answer = True, s.f_txn[earlier]
+                self.t = s.f_end[earlier]
+            elif outcome in (OK, EXCEPTION):
+                master_ok, master_answer = True, txn
+                self.t = s.f_end[resp_frame]
+            elif outcome == CORRUPT:
+                self.t = max(s.f_end[j] for j in self.inflight if s.f_collided[j] or j == resp_frame)
             self.t += self.delay_ns
         s.x_outcome.append(outcome)
         s.x_exc.append(exc_code)
@@ -314,11 +351,26 @@ class Bus:
         s.x_resp_start.append(s.f_start[resp_frame] if resp_frame >= 0 else -1)
         s.x_resp_end.append(s.f_end[resp_frame] if resp_frame >= 0 else -1)
         s.x_resp_raw.append(s.f_raw[resp_frame] if resp_frame >= 0 else b"")
-        if outcome in (TIMEOUT, CORRUPT, LATE) and self.attempt < self.sc.master.retries:
+        s.x_master_answer.append(master_answer)
+        if poll.station != 0 and not master_ok and self.attempt < self.sc.master.retries:
             self.attempt += 1
         else:
             self.attempt = 0
             self._advance_poll()
+
+    def _earlier_answer(self, address: int, function: int, txn: int, req_end: int, deadline: int) -> int:
+        """A valid answer already on its way from ``address`` for an earlier request, starting in this window."""
+        s = self.slice
+        assert s is not None
+        best = -1
+        for j in self.inflight:
+            raw = s.f_raw[j]
+            if (s.f_kind[j] == KIND_RESPONSE and s.f_txn[j] < txn and raw[0] == address
+                    and raw[1] & 0x7F == function and req_end < s.f_start[j] <= deadline
+                    and not s.f_noisy[j] and not s.f_collided[j]
+                    and (best < 0 or s.f_start[j] < s.f_start[best])):
+                best = j
+        return best
 
     def _answer(self, si: int, st: Station, poll, request: bytes, req_end: int, txn: int,
                 burst: float) -> tuple[int, int, int]:
@@ -337,9 +389,11 @@ class Bus:
         if st.gap_rate and u() < st.gap_rate and len(raw) > 2:
             gap_at = 1 + int(u() * (len(raw) - 2))
             gap_ns = int(st.gap_chars * self.c_ns)
-        start = req_end + int(rt_ms * 1e6)
+        # FIFO: the station starts on this request once it has finished sending its previous answer
+        start = max(req_end, self.busy_until[si]) + int(rt_ms * 1e6)
         fidx = self._add_frame(start, raw, st.address, si, KIND_RESPONSE, txn, max(self.ber[si], burst),
                                gap_at, gap_ns)
+        self.busy_until[si] = self.slice.f_end[fidx] if self.slice is not None else start
         return start, fidx, si
 
     # -- slices ------------------------------------------------------------------------------

@@ -222,3 +222,6 @@ class PlainSchedule:
         s.x_resp_raw = responses
         s.x_responder = np.where(bcast, -1, self.st_idx[entry]).tolist()
         s.x_resp_frame = [-1] * m
+        s.x_attempt = [0] * m
+        s.x_retry_of = [-1] * m
+        s.x_master_answer = np.where(bcast, -1, ids).tolist()

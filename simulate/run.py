@@ -77,7 +77,8 @@ class SimResult:
         while True:
             ws = schedule.run_slice(t0 + k * slice_ns)
             k = max(k + 1, (bus.t - t0) // slice_ns + 1)
-            rec = receive_slice(ws, sc.serial, sniff, self.sniffer.polarity_reversed, bursts, line_rng)
+            rec = receive_slice(ws, sc.serial, sniff, self.sniffer.polarity_reversed, bursts, line_rng,
+                                None if sc.fail_safe_bias else sc.release_bytes)
             truth.add_slice(ws, rec, matches)
             final = bus.finished
             batch = adapter.feed(rec.t_arrival_ns, rec.value, rec.flags, None if final else ws.t_end_ns)
@@ -130,7 +131,11 @@ class SimResult:
             "capture_id": self.header.capture_id,
             "bus_serial": sc.serial.to_dict(),
             "sniffer": {**sn.to_dict(), "polarity_reversed": self.sniffer.polarity_reversed},
-            "adapter": {"latency_ms": sc.adapter.latency_ms, "host_delay_ms": sc.adapter.host_delay_ms,
+            "line": {"fail_safe_bias": sc.fail_safe_bias,
+                     "release_bytes": None if sc.fail_safe_bias else {"master": sc.release_bytes[0],
+                                                                      "station": sc.release_bytes[1]}},
+            "adapter": {"latency_ms": sc.adapter.latency_ms, "latency_stated": sc.adapter.state_latency,
+                        "host_delay_ms": sc.adapter.host_delay_ms,
                         "host_delay_tail_rate": sc.adapter.host_delay_tail_rate,
                         "host_delay_tail_ms": sc.adapter.host_delay_tail_ms},
             "master": {"timeout_ms": sc.master.timeout_ms, "retries": sc.master.retries,
@@ -182,6 +187,13 @@ class SimResult:
         for a, count in present.items():
             if count > 1:
                 rows.append((t0, t1, "duplicate_address", a, f"{names[a]} share address {a}"))
+        if not sc.fail_safe_bias:
+            rows.append((t0, t1, "no_fail_safe_bias", -1,
+                         f"nothing holds the idle line: each driver letting go leaves one byte with a framing error "
+                         f"(0x{sc.release_bytes[0]:02X} after the master, 0x{sc.release_bytes[1]:02X} after a station)"))
+        if not sc.adapter.state_latency:
+            rows.append((t0, t1, "latency_not_stated", -1,
+                         f"the capture header does not state the adapter latency ({sc.adapter.latency_ms:g} ms)"))
         if self.sniffer.polarity_reversed:
             rows.append((t0, t1, "sniffer_polarity_reversed", -1, "the sniffer's A and B wires are swapped"))
         if self.sniffer_serial != sc.serial:
@@ -222,10 +234,12 @@ def simulate(scenario: Scenario, duration_s: float | None = None, seed: int = 1,
                                     else bool(sniffer_polarity_reversed)))
     sniff_serial = sn.serial or sc.serial
     ident = f"{sc.name}|{seed}|{duration}|{sc.serial}|{sniff_serial}|{sn.polarity_reversed}|{sc.adapter.latency_ms}"
+    if not sc.adapter.state_latency:
+        ident += "|latency not stated"
     header = CaptureHeader(
         serial=sniff_serial,
-        ports=[PortInfo(0, "simulated adapter", latency_ms=sc.adapter.latency_ms, latency_source="simulated",
-                        line_errors=True)],
+        ports=[PortInfo(0, "simulated adapter", latency_ms=sc.adapter.latency_ms if sc.adapter.state_latency else None,
+                        latency_source="simulated" if sc.adapter.state_latency else "unknown", line_errors=True)],
         start_utc=sc.start_utc, start_monotonic_ns=START_MONOTONIC_NS, host="simulator",
         notes=f"simulated scenario {sc.name}, seed {seed}", source="simulate", timing="host",
         capture_id=hashlib.sha256(ident.encode()).hexdigest()[:32],

@@ -61,6 +61,7 @@ class Station:
     gap_rate: float = 0.0       # fraction of responses with a silence inside the frame
     gap_chars: float = 3.0      # that silence, in character times (over t1.5 when > 1.5)
     device_id: str = ""         # text answered to FC 17 and FC 43/14 (UTF-8 on the wire)
+    noise_on: str = "both"      # "both": bit errors on frames to and from it; "answers": only on its answers
 
 
 @dataclass(frozen=True)
@@ -104,6 +105,7 @@ class Adapter:
     host_delay_ms: float = 0.2
     host_delay_tail_rate: float = 0.002
     host_delay_tail_ms: float = 4.0
+    state_latency: bool = True  #: False: the capture header does not state the latency (as a foreign log)
 
 
 @dataclass(frozen=True)
@@ -122,6 +124,8 @@ class Scenario:
     description: str = ""
     serial: SerialFormat = field(default_factory=SerialFormat)
     noise_ber_per_km: float = 0.0
+    fail_safe_bias: bool = True
+    release_bytes: tuple[int, int] = (0x00, 0xFE)  #: what an unbiased line leaves after the master, a station
     stations: tuple[Station, ...] = ()
     master: Master = field(default_factory=Master)
     events: tuple[Event, ...] = ()
@@ -249,7 +253,11 @@ class _Checker:
         if not isinstance(name, str) or not name:
             raise self.fail("name", "every scenario needs a name (text)")
         bus = self.table(data.get("bus", {}), "bus")
-        self.known(bus, "bus", {"baud", "format", "noise_ber_per_km"})
+        self.known(bus, "bus", {"baud", "format", "noise_ber_per_km", "fail_safe_bias", "release_byte_master",
+                                "release_byte_station"})
+        bias = bus.get("fail_safe_bias", True)
+        if not isinstance(bias, bool):
+            raise self.fail("bus.fail_safe_bias", "must be true or false")
         stations_raw = data.get("stations")
         if not isinstance(stations_raw, list) or not stations_raw:
             raise self.fail("stations", "must be a non-empty list of stations")
@@ -270,6 +278,9 @@ class _Checker:
             name=name, description=str(data.get("description", "")),
             serial=self.serial(bus, "bus"),
             noise_ber_per_km=self.number(bus, "noise_ber_per_km", "bus", 0.0, 0.0, 0.1),
+            fail_safe_bias=bias,
+            release_bytes=(self.integer(bus, "release_byte_master", "bus", 0x00, 0, 255),
+                           self.integer(bus, "release_byte_station", "bus", 0xFE, 0, 255)),
             stations=stations, master=master, events=events,
             adapter=self.adapter(self.table(data.get("adapter", {}), "adapter")),
             sniffer=self.sniffer(self.table(data.get("sniffer", {}), "sniffer")),
@@ -281,7 +292,7 @@ class _Checker:
     def station(self, data: Any, path: str) -> Station:
         data = self.table(data, path)
         self.known(data, path, {"address", "name", "position_m", "response", "exception_rate", "exception_codes",
-                                "bit_error_rate", "absent", "gap_rate", "gap_chars", "device_id"})
+                                "bit_error_rate", "absent", "gap_rate", "gap_chars", "device_id", "noise_on"})
         if "address" not in data:
             raise self.fail(f"{path}.address", "every station needs an address from 1 to 247")
         address = self.integer(data, "address", path, 0, 1, 247)
@@ -298,6 +309,9 @@ class _Checker:
         absent = data.get("absent", False)
         if not isinstance(absent, bool):
             raise self.fail(f"{path}.absent", "must be true or false")
+        noise_on = data.get("noise_on", "both")
+        if noise_on not in ("both", "answers"):
+            raise self.fail(f"{path}.noise_on", "must be 'both' (frames to and from the station) or 'answers'")
         device_id = data.get("device_id", "")
         if not isinstance(device_id, str) or len(device_id.encode("utf-8")) > MAX_DEVICE_ID_BYTES:
             raise self.fail(f"{path}.device_id", f"must be text of at most {MAX_DEVICE_ID_BYTES} bytes (UTF-8)")
@@ -315,7 +329,7 @@ class _Checker:
             absent=absent,
             gap_rate=self.number(data, "gap_rate", path, 0.0, 0.0, 1.0),
             gap_chars=self.number(data, "gap_chars", path, 3.0, 0.0, 1000.0),
-            device_id=device_id,
+            device_id=device_id, noise_on=noise_on,
         )
 
     def master(self, data: dict, addresses: set[int]) -> Master:
@@ -377,8 +391,13 @@ class _Checker:
                      repeat_every_s=repeat, detail=str(data.get("detail", "")))
 
     def adapter(self, data: dict) -> Adapter:
-        self.known(data, "adapter", {"latency_ms", "host_delay_ms", "host_delay_tail_rate", "host_delay_tail_ms"})
+        self.known(data, "adapter", {"latency_ms", "host_delay_ms", "host_delay_tail_rate", "host_delay_tail_ms",
+                                     "state_latency"})
+        state = data.get("state_latency", True)
+        if not isinstance(state, bool):
+            raise self.fail("adapter.state_latency", "must be true or false")
         return Adapter(latency_ms=self.number(data, "latency_ms", "adapter", 16.0, 0.125, 255.0),
+                       state_latency=state,
                        host_delay_ms=self.number(data, "host_delay_ms", "adapter", 0.2, 0.0, 1000.0),
                        host_delay_tail_rate=self.number(data, "host_delay_tail_rate", "adapter", 0.002, 0.0, 1.0),
                        host_delay_tail_ms=self.number(data, "host_delay_tail_ms", "adapter", 4.0, 0.0, 1000.0))

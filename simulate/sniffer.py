@@ -12,8 +12,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from buswitness.capture.fileformat import FLAG_LINE_ERROR
 from buswitness.decode.timing import SerialFormat
-from buswitness.simulate.bus import WireSlice
+from buswitness.simulate.bus import MASTER, WireSlice
 from buswitness.simulate.line import char_bits, invert, low_intervals, merge_intervals, receive
 
 
@@ -29,6 +30,7 @@ class SliceReception:
     flags: np.ndarray
     stray_bytes: int             # bytes delivered outside any frame (noise on an idle line)
     windowed: np.ndarray         # per sorted frame: went through the bit-level receiver
+    idle_byte: np.ndarray | None = None  # per sorted frame: byte the released line left after it, -1 none
 
 
 def _touching(f_start: np.ndarray, f_end: np.ndarray, wl: np.ndarray, wh: np.ndarray) -> np.ndarray:
@@ -43,8 +45,14 @@ def _touching(f_start: np.ndarray, f_end: np.ndarray, wl: np.ndarray, wh: np.nda
 
 
 def receive_slice(ws: WireSlice, bus: SerialFormat, sniffer: SerialFormat, polarity_reversed: bool,
-                  bursts: list[tuple[int, int, float]], rng: np.random.Generator) -> SliceReception:
-    """Work out the sniffer's bytes for one slice (deterministic for a given generator state)."""
+                  bursts: list[tuple[int, int, float]], rng: np.random.Generator,
+                  release: tuple[int, int] | None = None) -> SliceReception:
+    """Work out the sniffer's bytes for one slice (deterministic for a given generator state).
+
+    ``release`` is ``(after the master, after a station)``: on a line with no fail-safe bias,
+    the byte the sniffer's UART reads, with a framing error, when a driver lets go of the
+    line at the end of its frame (None: a biased line stays idle).
+    """
     n = len(ws)
     starts = np.asarray(ws.f_start, dtype=np.int64)
     in_order = bool((np.diff(starts) >= 0).all())
@@ -140,12 +148,32 @@ def receive_slice(ws: WireSlice, bus: SerialFormat, sniffer: SerialFormat, polar
             for f, vg, fg in zip(groups_f.tolist(), vals_groups, flag_groups):
                 received[f] = vg.tobytes()
                 line_errors[f] = int(np.count_nonzero(fg))
+    idle_byte = np.full(n, -1, dtype=np.int64)
+    if release is not None and n:
+        talker = np.asarray(ws.f_talker, dtype=np.int64)[order]
+        after = _released(f_start, f_end, sniffer)
+        idle_byte[after] = np.where(talker[after] == MASTER, release[0], release[1])
+        arr_parts.append(f_end[after] + int(round(sniffer.char_time_s * 1e9)))
+        val_parts.append(idle_byte[after].astype(np.uint8))
+        flag_parts.append(np.full(int(after.sum()), FLAG_LINE_ERROR, dtype=np.uint8))
     t_arr = np.concatenate(arr_parts)
     val = np.concatenate(val_parts)
     flg = np.concatenate(flag_parts)
     srt = np.argsort(t_arr, kind="stable")
     return SliceReception(order=order, received=received, line_errors=line_errors, t_arrival_ns=t_arr[srt],
-                          value=val[srt], flags=flg[srt], stray_bytes=stray, windowed=windowed)
+                          value=val[srt], flags=flg[srt], stray_bytes=stray, windowed=windowed, idle_byte=idle_byte)
+
+
+def _released(f_start: np.ndarray, f_end: np.ndarray, sniffer: SerialFormat) -> np.ndarray:
+    """Frames after whose last stop bit the line is left to float: no other talker still driving it,
+    and a whole character of silence before the next frame (else the next driver holds the line)."""
+    n = len(f_start)
+    if n == 0:
+        return np.zeros(0, dtype=bool)
+    room = sniffer.char_time_s * 1e9 + 1e9 / sniffer.baud
+    driven_before = np.maximum.accumulate(np.r_[np.iinfo(np.int64).min, f_end[:-1]])
+    next_start = np.r_[f_start[1:], np.iinfo(np.int64).max]
+    return (driven_before <= f_end) & (next_start.astype(np.float64) > f_end + room)
 
 
 def _glitches(lo: list[int], hi: list[int], ber: list[float], bus: SerialFormat, f_start: np.ndarray,

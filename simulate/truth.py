@@ -25,11 +25,11 @@ TRUTH_FORMAT = "buswitness-truth"
 TRUTH_VERSION = 1
 
 FRAME_COLUMNS = ["t_first_bit_ns", "t_last_bit_ns", "talker", "station", "kind", "transaction", "raw", "received",
-                 "corrupted", "collided", "noisy", "crc_ok", "line_errors", "gap_after_byte"]
+                 "corrupted", "collided", "noisy", "crc_ok", "line_errors", "gap_after_byte", "idle_byte_after"]
 TRANSACTION_COLUMNS = ["transaction", "t_request_start_ns", "t_request_end_ns", "t_response_start_ns",
                        "t_response_end_ns", "station", "function", "outcome", "exception_code", "retry",
                        "response_ms", "response_ms_low", "response_ms_high", "request_corrupted", "request_raw",
-                       "response_raw", "responder"]
+                       "response_raw", "responder", "attempt", "retry_of", "master_answer"]
 #: In the file the interval columns are left out: truth is exact, so they equal response_ms.
 _JSON_TRANSACTION_COLUMNS = [c for c in TRANSACTION_COLUMNS if c not in ("response_ms_low", "response_ms_high")]
 EVENT_COLUMNS = ["t_start_ns", "t_end_ns", "kind", "station", "detail"]
@@ -59,7 +59,7 @@ class Truth:
         self.events = pd.DataFrame({c: [] for c in EVENT_COLUMNS})
         self._counts: dict[str, np.ndarray] = {k: np.zeros(256, np.int64) for k in
                                                ("requests", "requests_corrupted", "retries", "crc_errors", "collisions",
-                                                "frames_sent")
+                                                "frames_sent", "idle_line_bytes", "master_took_earlier")
                                                + OUTCOMES}
         self._exc = np.zeros((256, 256), np.int64)
         self._rt: dict[int, list[np.ndarray]] = {}
@@ -67,6 +67,7 @@ class Truth:
         self._n_frames = 0
         self._n_bytes = 0
         self._stray = 0
+        self._idle_master = 0
         self._t_first: int | None = None
         self._t_last: int | None = None
         self.stations: dict[int, dict] = {}
@@ -96,6 +97,9 @@ class Truth:
             np.add.at(self._counts["crc_errors"], talker[resp & bad_on_wire], 1)
             np.add.at(self._counts["collisions"], talker[resp & collided], 1)
             np.add.at(self._counts["frames_sent"], talker[resp], 1)
+            idle = rec.idle_byte if rec.idle_byte is not None else np.full(n, -1, dtype=np.int64)
+            np.add.at(self._counts["idle_line_bytes"], talker[(idle >= 0) & (talker != MASTER)], 1)
+            self._idle_master += int(((idle >= 0) & (talker == MASTER)).sum())
             s, e = merge_intervals(start.astype(np.float64), end.astype(np.float64))
             self._busy_ns += float((e - s).sum())
             self._n_frames += n
@@ -115,6 +119,7 @@ class Truth:
                     "corrupted": corrupted, "collided": collided, "noisy": noisy, "crc_ok": crc_good,
                     "line_errors": rec.line_errors,
                     "gap_after_byte": np.asarray(ws.f_gap_at, dtype=np.int64)[order],
+                    "idle_byte_after": idle,
                 }))
         self._stray += rec.stray_bytes
         if ws.x_id:
@@ -131,6 +136,9 @@ class Truth:
             rsp_raw = [b"" if gone else r for gone, r in zip(no_answer.tolist(), ws.x_resp_raw)]
             responder = np.where(no_answer, -1, np.asarray(ws.x_responder, dtype=np.int64))
             exc = np.asarray(ws.x_exc, dtype=np.int64)
+            ids = np.asarray(ws.x_id, dtype=np.int64)
+            master_answer = np.asarray(ws.x_master_answer, dtype=np.int64)
+            np.add.at(self._counts["master_took_earlier"], st[(master_answer >= 0) & (master_answer < ids)], 1)
             rt = np.where(rsp_start >= 0, (rsp_start - req_end) / 1e6, np.nan)
             station_tx = st != 0
             np.add.at(self._counts["requests"], st[station_tx], 1)
@@ -157,6 +165,9 @@ class Truth:
                     "request_raw": pd.array(ws.x_req_raw, dtype=object),
                     "response_raw": pd.array(rsp_raw, dtype=object),
                     "responder": responder,
+                    "attempt": np.asarray(ws.x_attempt, dtype=np.int64),
+                    "retry_of": np.asarray(ws.x_retry_of, dtype=np.int64),
+                    "master_answer": master_answer,
                 }))
 
     def finish(self, events: pd.DataFrame, duration_s: float) -> None:
@@ -180,6 +191,8 @@ class Truth:
                 "crc_errors": int(c["crc_errors"][a]),
                 "collisions": int(c["collisions"][a]),
                 "retries": int(c["retries"][a]),
+                "master_took_earlier": int(c["master_took_earlier"][a]),
+                "idle_line_bytes": int(c["idle_line_bytes"][a]),
                 "response_ms": _percentiles(rts),
             }
         busy = self._busy_ns / 1e9
@@ -194,6 +207,8 @@ class Truth:
             "transactions": int(sum(int(c[o].sum()) for o in OUTCOMES)),
             "broadcasts": int(c["broadcast"].sum()),
             "stray_bytes": self._stray,
+            "idle_line_bytes": {"master": self._idle_master,
+                                "stations": int(c["idle_line_bytes"].sum())},
         }
 
     # -- tables ------------------------------------------------------------------------------

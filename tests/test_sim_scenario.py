@@ -34,7 +34,9 @@ def test_every_builtin_scenario_loads_and_runs_a_few_seconds():
     names = builtin_names()
     for needed in ("pumpstation", "clean", "saturated115200", "noisy", "fault-late", "fault-silent",
                    "fault-absent", "fault-duplicate", "fault-noise-far", "fault-burst", "fault-fast-turnaround",
-                   "fault-gap", "fault-polarity", "fault-wrong-baud", "fault-exceptions", "fault-no-answers"):
+                   "fault-gap", "fault-polarity", "fault-wrong-baud", "fault-exceptions", "fault-no-answers",
+                   "fault-dead-echo", "fault-late-retry", "fault-damaged-retry", "fault-unbiased",
+                   "fault-two-stop-bits", "fault-latency-unstated"):
         assert needed in names
     for name in names:
         sc = load_scenario(name)

@@ -108,7 +108,8 @@ def never_present(result: AnalysisResult, th: Thresholds) -> list[Finding]:
 
 
 def _silences(series: dict, th: Thresholds) -> list[tuple[float, float, int, bool]]:
-    """(start s, end s, unanswered polls, answered again) of each silent stretch in per-minute counts."""
+    """(start s, end s, unanswered polls, answered again) of each silent stretch in per-minute counts
+    (seconds from the series' first minute)."""
     req = series["requests"]
     alive = [a + b + c + d for a, b, c, d in zip(series["ok"], series["exception"], series["late"],
                                                  series["corrupt"])]
@@ -146,10 +147,11 @@ def silent_period(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     """
     out = []
     duration = result.bus.duration_s
+    offset, span_end = result.series_start_s, result.span_s[1]
     for s in polled(result, th):
         if not _alive(s):
             continue
-        stretches = [(start, min(end, duration), missed, back)
+        stretches = [(offset + start, min(offset + end, span_end), missed, back)
                      for start, end, missed, back in _silences(result.station_series(s.address), th)]
         if not stretches:
             continue

@@ -98,11 +98,13 @@ def slowest_examples(result: AnalysisResult, address: int) -> list[dict]:
 
 
 def capture_span(result: AnalysisResult) -> tuple[float, float]:
-    """The whole capture, as a finding's time range."""
-    return 0.0, round(result.bus.duration_s, 3)
+    """The whole capture, as a finding's time range (seconds on the file's own clock)."""
+    start, end = result.span_s
+    return round(start, 3), round(end, 3)
 
 
 def minute_span(first: int, last: int, result: AnalysisResult) -> tuple[float, float]:
-    """Seconds covered by minutes first..last, clipped to the capture."""
-    end = min(60.0 * (last + 1), max(result.bus.duration_s, 60.0 * last + 1))
-    return 60.0 * first, round(end, 3)
+    """Seconds (on the file's clock) covered by rows first..last of the per-minute series, clipped to the capture."""
+    a, b = result.minute_start_s(first), result.minute_start_s(last + 1)
+    end = min(b, max(result.span_s[1], b - 59.0))
+    return a, round(end, 3)
