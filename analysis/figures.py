@@ -33,6 +33,9 @@ NS_PER_MIN = 60_000_000_000
 WORST_PER_STATION = 25      #: slowest answers kept per station for the frame browser
 FAILURES_PER_STATION = 25   #: first timeouts/corrupt answers kept per station as examples
 LATE_CAP = 5000             #: late answers listed per station (the count is exact beyond it)
+#: Slowest in-time answers kept per station until the timeout is known: those over it are late.
+#: The counts stay exact while a station gives fewer answers over the timeout than this.
+SLOW_KEEP = 2000
 LATE_TOTAL_CAP = 50_000     #: late answers listed over all stations (keeps memory bounded on any bus)
 LARGEST_GAPS = 20           #: longest silences between frames kept
 DEVICE_IDS_PER_STATION = 4  #: distinct identification strings kept per station
@@ -140,6 +143,9 @@ class Accumulator:
     worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, row)
     failures: dict = field(default_factory=dict)         # station -> list of rows
     late_rows: dict = field(default_factory=dict)        # station -> list of rows
+    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, row): in time, slowest
+    slow_dropped: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest one dropped
+    judged_ms: float | None = None  #: the timeout the in-time answers were judged against (judge())
     device_ids: dict = field(default_factory=dict)       # station -> list of str
     station_minutes: dict = field(default_factory=dict)  # station -> _Growing(len(MINUTE_COLUMNS))
     station_minute_rt: dict = field(default_factory=dict)   # station -> _Growing(COARSE.count, np.int32)
@@ -340,6 +346,23 @@ class Accumulator:
                     heapq.heappush(heap, item)
                 elif item[0] > heap[0][0]:
                     heapq.heapreplace(heap, item)
+        in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
+        for st in np.unique(station[in_time]):
+            heap = self.slow.setdefault(int(st), [])
+            floor = heap[0][0] if len(heap) >= SLOW_KEEP else -np.inf
+            idx = np.flatnonzero(in_time & (station == st) & (rt > floor))
+            if len(idx) > SLOW_KEEP:
+                cut = idx[np.argsort(rt[idx], kind="stable")[:-SLOW_KEEP]]
+                self.slow_dropped[st] = max(self.slow_dropped[st], float(rt[cut].max()))
+                idx = np.setdiff1d(idx, cut)
+            for i in idx:
+                self._seq += 1
+                item = (float(rt[i]), self._seq, row(int(i)))
+                if len(heap) < SLOW_KEEP:
+                    heapq.heappush(heap, item)
+                else:
+                    gone = heapq.heappushpop(heap, item)
+                    self.slow_dropped[st] = max(self.slow_dropped[st], gone[0])
         failed = np.isin(outcome, [_OUTCOME_INDEX["timeout"], _OUTCOME_INDEX["corrupt"]])
         for st in np.unique(station[failed]):
             kept = self.failures.setdefault(int(st), [])
@@ -414,6 +437,15 @@ class Accumulator:
             mine = heapq.nlargest(WORST_PER_STATION, self.worst.get(st, []) + heap, key=lambda x: (x[0], x[1]))
             heapq.heapify(mine)
             self.worst[st] = mine
+        if self.judged_ms is not None or other.judged_ms is not None:
+            raise ValueError("accumulators are merged before their answers are judged against a timeout")
+        self.slow_dropped = np.fmax(self.slow_dropped, other.slow_dropped)
+        for st, heap in other.slow.items():
+            both = sorted(self.slow.get(st, []) + heap, key=lambda x: (x[0], x[1]))
+            if len(both) > SLOW_KEEP:
+                self.slow_dropped[st] = max(self.slow_dropped[st], both[-SLOW_KEEP - 1][0])
+            self.slow[st] = both[-SLOW_KEEP:]
+            heapq.heapify(self.slow[st])
         for target, source, cap in ((self.failures, other.failures, FAILURES_PER_STATION),
                                     (self.late_rows, other.late_rows, LATE_CAP)):
             for st, rows in source.items():
@@ -440,6 +472,54 @@ class Accumulator:
                 else:
                     target[st] = series
         self.bus_minutes.merge(other.bus_minutes)
+
+    # -- judging against the timeout ----------------------------------------------------------------
+
+    def judge(self, timeout_ms: float | None) -> int:
+        """Count answers the master awaited but that came after ``timeout_ms`` as late; return how many.
+
+        The decoder records facts only (an answer before the master moved on is in time); the
+        timeout, given or inferred, is known once the capture has been read, and this applies it
+        once, the same way for both. Exact while a station gave fewer than SLOW_KEEP in-time
+        answers over the timeout; beyond that its count comes from the response-time histogram.
+        """
+        if self.judged_ms is not None:
+            raise ValueError("the answers were already judged against a timeout")
+        self.judged_ms = timeout_ms
+        if timeout_ms is None:
+            return 0
+        moved = 0
+        ok, exc, late = (_OUTCOME_INDEX[o] for o in ("ok", "exception", "late"))
+        for st, heap in self.slow.items():
+            rows = sorted((r for r in heap if r[0] > timeout_ms), key=lambda r: r[2]["t_s"])
+            if not rows:
+                continue
+            if self.slow_dropped[st] > timeout_ms:
+                # more answers over the timeout than were kept: the rest from the histogram
+                extra = max(0, count_above(self.rt_mid[st], timeout_ms, FINE) - len(rows)
+                            - int(self.outcomes[st, late]))
+                take = min(extra, int(self.outcomes[st, ok]))
+                self.outcomes[st, ok] -= take
+                self.outcomes[st, late] += take
+                moved += take
+            series = self.station_minutes.get(st)
+            for _rt, _seq, r in rows:
+                was = ok if r["outcome"] == "ok" else exc
+                self.outcomes[st, was] -= 1
+                self.outcomes[st, late] += 1
+                if was == exc:
+                    self.exception_codes[st, r["exception_code"]] -= 1
+                if series is not None:
+                    m = int(r["t_s"] * 1e9 // NS_PER_MIN) - self.minute0
+                    data = series.ensure(m + 1)
+                    data[m, 1 if was == ok else 2] -= 1
+                    data[m, 4] += 1
+                kept = self.late_rows.setdefault(st, [])
+                if len(kept) < LATE_CAP and sum(len(v) for v in self.late_rows.values()) < LATE_TOTAL_CAP:
+                    kept.append(dict(r, outcome="late", exception_code=0))
+            self.late_rows[st] = sorted(self.late_rows[st], key=lambda r: r["t_s"])
+            moved += len(rows)
+        return moved
 
     # -- reading out -----------------------------------------------------------------------------
 

@@ -137,6 +137,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             exporter.abort()
         raise
     timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, acc.in_time)
+    acc.judge(timeout.timeout_ms)
     return build_result(header, paths or [], damage, acc, smap, timeout)
 
 

@@ -95,6 +95,11 @@ DEAD_AFTER = 3
 LATE_PROOF = 3.0
 FIT_SLACK = 1.5
 STATION_MIN_ANSWERS = 5
+#: In-time answer times kept per station to know its usual range; an answer time counts as usual
+#: within USUAL_LOW times its 5th and USUAL_HIGH times its 95th percentile.
+RECENT_ANSWERS = 256
+USUAL_LOW = 0.8
+USUAL_HIGH = 1.25
 
 _NOT_YET = 1 << 62
 
@@ -111,8 +116,6 @@ class _Open:
     moved_on_hi_ns: int = _NOT_YET  # latest end of the request that followed it (master moved on)
     moved_on_port: int = -1
     age: int = 0
-    answers_at_move_on: int = 0  # answers on the bus, and from its own station, when the master moved on
-    own_at_move_on: int = 0
 
     @property
     def moved_on(self) -> bool:
@@ -133,6 +136,14 @@ class _Station:
     slowest_ns: float = 0.0       # slowest answer given before the master moved on
     unanswered: int = 0           # requests the master moved on from without an answer
     open: deque = field(default_factory=deque)  # its open requests, oldest first
+    recent: deque = field(default_factory=lambda: deque(maxlen=RECENT_ANSWERS))  # its latest in-time answer times
+
+    def usual_ns(self) -> tuple[float, float] | None:
+        """The range of its usual answer times (5th to 95th percentile of the recent ones), once known."""
+        if len(self.recent) < STATION_MIN_ANSWERS:
+            return None
+        lo, hi = np.percentile(np.fromiter(self.recent, float), [5, 95])
+        return float(lo), float(hi)
 
 
 class Pairing:
@@ -152,6 +163,7 @@ class Pairing:
         self._wait_dirty = False
         self._held: Frame | None = None  # an identical frame whose class waits for what follows it
         self._events: list[Damage] = []  # events made while settling it, handed out with the next frame
+        self._collided: list[Damage] = []  # collision events of the last damage, for collisions()
 
     # -- what has been learnt -----------------------------------------------------------------
     def station(self, address: int) -> _Station:
@@ -252,39 +264,65 @@ class Pairing:
         return self._ready(), events
 
     def on_damage(self, damage: Damage) -> Damage:
-        """Note damage while awaiting; return the event with the station it most likely concerns."""
+        """Note damage; return the event with the station it most likely concerns.
+
+        Damaged bytes shaped like station M's answer (its address, then the function of a
+        request of M's that the master already gave up on) are M's late answer, hit: in order,
+        they answer M's oldest open request, which closes ``corrupt``; where the master awaited
+        another answer meanwhile, both answers collided (see :meth:`collisions`). Other damage
+        while the master awaits an answer is that answer, probably hit.
+        """
         if self._held is not None and damage.kind in ANSWER_DAMAGE:
             self._settle(None)
+        self._collided = []
+        if damage.kind not in ANSWER_DAMAGE:
+            return damage
         w = self.current
+        late = self._late_owner(damage)
+        if late is not None:
+            self._collided = self._collision_events(damage, late)
+            st = self.station(late.req.address)
+            st.open.remove(late)
+            while st.open and st.open[0].moved_on and st.open[0].req.t_end_ns < late.req.t_end_ns:
+                self._close(st.open.popleft())
+            late.damage = damage
+            self._close(late)
+            if w is not None and w is not late and w.damage is None and self._collided:
+                w.damage = damage  # the awaited answer was hit by the late one
+            return damage if damage.station >= 0 else replace(damage, station=late.req.address)
         # On the request's own port, stream order already says the damage came after it.
-        if w is not None and damage.kind in ANSWER_DAMAGE and (damage.port == w.req.port
-                                                                 or damage.t_ns >= w.req.t_end_lo_ns):
+        if w is not None and (damage.port == w.req.port or damage.t_ns >= w.req.t_end_lo_ns):
             if damage.station < 0:
                 damage = replace(damage, station=w.req.address)
             if w.damage is None:
                 w.damage = damage
         return damage
 
-    def collisions(self, damage: Damage) -> list[Damage]:
-        """Collision events when damage while awaiting N is shaped like a late answer from M.
+    def _late_owner(self, damage: Damage) -> _Open | None:
+        """The open request, given up on by the master, whose answer these damaged bytes are shaped like."""
+        if len(damage.raw) < 2 or damage.raw[0] == 0:
+            return None
+        st = self.stations.get(damage.raw[0])
+        if st is None:
+            return None
+        fc = damage.raw[1] & 0x7F
+        for o in st.open:
+            if o.moved_on and o.req.function == fc:
+                return o
+        return None
 
-        A station M whose request went unanswered moments ago answers late while station N
-        answers the master's next request: damaged bytes that begin with M's address and
-        function code are M's late answer running into N's (M may be N itself: a late answer
-        running into the answer to the master's retry). Each of the two answers gets a
-        ``collision`` event (once per wait); N's request becomes ``corrupt`` through the damage.
-        """
+    def collisions(self, damage: Damage) -> list[Damage]:
+        """The collision events the last :meth:`on_damage` found (``damage`` is that same event)."""
+        events, self._collided = self._collided, []
+        return events
+
+    def _collision_events(self, damage: Damage, late: _Open) -> list[Damage]:
+        """M's late answer ran into the answer the master awaited from N (M may be N: its retry's)."""
         w = self.current
-        if w is None or w.collided or len(damage.raw) < 2 or damage.kind not in ANSWER_DAMAGE:
-            return []
-        n_addr = w.req.address
-        m = damage.raw[0]
-        st = self.stations.get(m)
-        if st is None or m == 0:
-            return []
-        if not any(o.moved_on and o.req.function == damage.raw[1] & 0x7F for o in st.open):
+        if w is None or w.collided:
             return []
         w.collided = True
+        m, n_addr = late.req.address, w.req.address
         if m == n_addr:
             text = (f"station {m}'s late answer overlapped its own answer to the master's retry "
                     f"(two answers from one station)")
@@ -317,8 +355,12 @@ class Pairing:
             slowest = np.full(uniq.size, -np.inf)
             finite = np.isfinite(response_ns)
             np.maximum.at(slowest, inverse[finite], response_ns[finite])
-            for a, n, s in zip(uniq.tolist(), counts.tolist(), slowest.tolist()):
+            order = np.argsort(inverse, kind="stable")
+            bounds = np.cumsum(counts)
+            for k, (a, n, s) in enumerate(zip(uniq.tolist(), counts.tolist(), slowest.tolist())):
                 st = self.station(int(a))
+                mine = response_ns[order[bounds[k] - min(n, RECENT_ANSWERS):bounds[k]]]
+                st.recent.extend(mine[np.isfinite(mine)].tolist())
                 st.answers += int(n)
                 self.answers += int(n)
                 if s > st.slowest_ns:
@@ -332,9 +374,7 @@ class Pairing:
         if prev is not None:
             prev.moved_on_hi_ns = req.t_end_hi_ns
             prev.moved_on_port = req.port
-            prev.answers_at_move_on = self.answers
             st = self.station(prev.req.address)
-            prev.own_at_move_on = st.answers
             if prev.damage is not None:
                 self._drop(prev)
                 self._close(prev)
@@ -489,12 +529,6 @@ class Pairing:
         """The open request of ``st`` this answer belongs to (invariant 3), or None."""
         fc = rsp.function & 0x7F
         cands = [o for o in st.open if o.req.function == fc and o.req.t_end_lo_ns <= rsp.t_end_hi_ns]
-        if len(cands) > 1:
-            # Another station answered after the master gave up on an older request: the line
-            # was someone else's, so that request is not what this (later) answer is for.
-            keep = [o for o in cands[:-1]
-                    if not o.moved_on or self.answers - o.answers_at_move_on == st.answers - o.own_at_move_on]
-            cands = keep + cands[-1:]
         if not cands:
             return None
         first = cands[0]
@@ -507,6 +541,14 @@ class Pairing:
         slack = rsp.t_end_hi_ns - rsp.t_end_lo_ns
         if from_first > LATE_PROOF * slowest + slack and -slack <= from_newest <= FIT_SLACK * slowest + slack:
             return newest
+        usual = st.usual_ns()
+        if usual is not None and from_newest >= -slack:
+            def is_usual(t: float) -> bool:
+                return USUAL_LOW * usual[0] - slack <= t <= USUAL_HIGH * usual[1] + slack
+            # the answer fits the newest request like this station's answers do, and the oldest
+            # one only as an outlier: its answer to the oldest was lost, this one is the newest's
+            if is_usual(from_newest) and not is_usual(from_first):
+                return newest
         return first
 
     def _on_response(self, rsp: Frame, events: list[Damage]) -> None:
@@ -545,6 +587,7 @@ class Pairing:
             self.answers += 1
             if not late and not math.isnan(txn.response_ms):
                 st.slowest_ns = max(st.slowest_ns, txn.response_ms * 1e6)
+                st.recent.append(txn.response_ms * 1e6)
             return
         w = self.current
         fc = rsp.function & 0x7F

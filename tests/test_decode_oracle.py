@@ -23,7 +23,7 @@ pytestmark = pytest.mark.slow
 def _run(name: str, duration_s: float, latency_ms: float):
     sc = load_scenario(name)
     res = simulate(sc, duration_s=duration_s, seed=1, latency_ms=latency_ms)
-    dec = Decoder(DecoderConfig.from_header(res.header, response_timeout_ms=sc.master.timeout_ms))
+    dec = Decoder(DecoderConfig.from_header(res.header))
     outs = [dec.feed_batch(b) for b in res.batches()] + [dec.flush()]
     frames = pd.concat([o.frames for o in outs], ignore_index=True)
     txns = pd.concat([o.transactions for o in outs], ignore_index=True)

@@ -103,9 +103,7 @@ def late_answers(result: AnalysisResult, th: Thresholds) -> list[Finding]:
         suggestion = suggested_timeout_ms(result, s, th)
         timeout_ms = result.timeout.timeout_ms
         against = f" against {_timeout_text(result)}" if timeout_ms is not None else ""
-        lost_text = (f"missed {pct(lost_share)} of polls ({s.timeouts} timeouts, {s.late} late answers)" if lost
-                     else f"gave {over} answers ({pct(share(over, s.requests))} of polls) later than the timeout, "
-                          f"which the master still took")
+        lost_text = f"missed {pct(lost_share)} of polls ({s.timeouts} timeouts, {s.late} late answers)"
         statement = (f"{s.label} {lost_text}{period}; its answers take {ms(r['p50'])} typically, p99 "
                      f"{ms(r['p99'])}, up to {ms(r['max'])}{against}: the device is slow, not the wire.")
         rows = result.late_answers(s.address)[:EXAMPLES]
