@@ -1,0 +1,95 @@
+"""The installation check's outputs: the text ``plan check`` prints, its JSON and the standalone plan.html.
+
+The page is built like the dashboard (analysis/dashboard.py): plain data first, then an
+autoescaping template with inline CSS and no script, under the same Content-Security-Policy.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+from buswitness.analysis.busplan import BusPlan
+from buswitness.analysis.finding import Finding
+from buswitness.analysis.planrules import PLAN_CAUTION, PlanResult, counts
+from buswitness.analysis.result import AnalysisResult
+from buswitness.fsutil import atomic_write
+
+WIDTH = 100
+
+
+def _wrap(text: str, indent: str) -> str:
+    return textwrap.fill(text, width=WIDTH, initial_indent=indent, subsequent_indent=indent)
+
+
+def plan_heading(plan: BusPlan) -> str:
+    segs = plan.segments()
+    start, end = plan.trunk_span()
+    rate = f", {plan.baud} bps" if plan.baud else ""
+    return (f"{plan.name or 'Bus'}: {len(plan.devices)} devices, {len(plan.repeaters)} repeater(s), "
+            f"{len(segs)} segment(s), trunk {end - start:g} m{rate}")
+
+
+def plan_text(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
+              result: AnalysisResult | None) -> str:
+    """What ``plan check`` prints: the verdicts (failures first), then the findings joined with the capture."""
+    n = counts(results)
+    lines = [f"Bus description {plan.path}", f"  {plan_heading(plan)}",
+             f"  {n['fail']} fail, {n['warn']} warn, {n['pass']} pass", ""]
+    for r in results:
+        lines.append(_wrap(f"{r.status.upper():5} {r.rule}: {r.statement}", ""))
+        if r.status != "pass":
+            if r.fix:
+                lines.append(_wrap(f"fix: {r.fix}", "      "))
+            lines.append(_wrap(f"source: {r.source}", "      "))
+    if any(r.caution for r in results):
+        lines += ["", _wrap(f"Caution: {PLAN_CAUTION}", "")]
+    if result is not None:
+        lines += ["", f"Joined with the capture {', '.join(Path(p).name for p in result.paths) or ''} "
+                      f"({result.bus.requests} requests, {result.bus.duration_s / 3600:.2f} h):"]
+        joined = [f for f in findings if f.rule.startswith("plan-")]
+        if not joined:
+            lines.append("  The traffic shows no pattern along the cable that the description explains.")
+        for f in findings:
+            tag = "plan+traffic" if f.rule.startswith("plan-") else "traffic"
+            lines.append(_wrap(f"{f.severity.upper()} [{tag}] {f.rule}: {f.statement}", "  "))
+    return "\n".join(lines)
+
+
+def plan_json(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
+              result: AnalysisResult | None) -> dict:
+    """The check as JSON: the description's summary, every result, and the findings when a capture was given."""
+    from buswitness.analysis.planjoin import health
+    out: dict = {"description": plan.path, "name": plan.name, "baud": plan.baud, "counts": counts(results),
+                 "segments": [{"index": s.index, "start_m": s.start_m, "end_m": s.end_m} for s in plan.segments()],
+                 "results": [r.to_dict() for r in results]}
+    if result is not None:
+        out["capture"] = [str(p) for p in result.paths]
+        out["findings"] = [f.to_dict() for f in findings]
+        out["stations"] = [{"address": d.address, "position_m": d.position_m,
+                            "failed_share": health(result.station(d.address) if d.address is not None else None)}
+                           for d in plan.stations]
+    return out
+
+
+def render_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
+                     result: AnalysisResult | None) -> str:
+    """plan.html as one string: the drawing, the verdicts and the joined findings."""
+    from buswitness.analysis.plandraw import draw_plan, legend_items
+    from buswitness.analysis.render import environment, stylesheet
+    from markupsafe import Markup
+    env = environment()
+    n = counts(results)
+    return env.get_template("plan.html").render(
+        plan=plan, heading=plan_heading(plan), results=results, n=n, caution=PLAN_CAUTION,
+        findings=findings, result=result, svg=Markup(draw_plan(plan, results, result)), legend=legend_items(),
+        css=Markup(stylesheet("plan.css")))
+
+
+def write_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
+                    result: AnalysisResult | None, path: str | Path) -> Path:
+    """Write plan.html atomically."""
+    text = render_plan_page(plan, results, findings, result)
+    with atomic_write(path) as f:
+        f.write(text)
+    return Path(path)
