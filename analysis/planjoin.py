@@ -169,8 +169,13 @@ def distance_trend(plan: BusPlan, results: list[PlanResult], result: AnalysisRes
     return out
 
 
-def station_apart(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds) -> list[Finding]:
-    """One station far worse than its neighbours, or silent while they answer, with a flaw at its drop."""
+def station_apart(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds,
+                  explained: frozenset[int] = frozenset()) -> list[Finding]:
+    """One station far worse than its neighbours, or silent while they answer, with a flaw at its drop.
+
+    Stations in ``explained`` are the far end of a trend with distance already joined: their
+    damage is the trend's, not their drop's.
+    """
     on = [p for p in placed_stations(plan, result, th) if p.figures.late < th.late_min_count]
     out = []
     for i, p in enumerate(on):
@@ -182,7 +187,7 @@ def station_apart(plan: BusPlan, results: list[PlanResult], result: AnalysisResu
             o.figures.answered for o in on if o is not p)
         apart = (p.figures.corrupt >= th.min_events and p.damaged >= th.error_notice_share
                  and p.damaged >= th.concentrated_ratio * max(rest, th.near_floor_share))
-        if not (silent or apart):
+        if not (silent or apart) or p.figures.address in explained:
             continue
         plan_rule = _failing(results, APART_RULES, device=p.device.key)
         if plan_rule is None:
@@ -293,8 +298,9 @@ def joined_findings(plan: BusPlan, results: list[PlanResult] | None, result: Ana
     th = th or Thresholds()
     results = check_plan(plan) if results is None else results
     found = silence(plan, results, result, th)
-    found += distance_trend(plan, results, result, th)
-    found += station_apart(plan, results, result, th)
+    trend = distance_trend(plan, results, result, th)
+    found += trend
+    found += station_apart(plan, results, result, th, frozenset(f.station for f in trend if f.station is not None))
     found += whole_bus(plan, results, result, th)
     return found
 

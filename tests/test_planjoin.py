@@ -1,0 +1,119 @@
+"""The bus description joined with simulated traffic whose faults match its flaws: the right rule and
+device rank first, and the findings cite both the plan rule and the traffic.
+
+The scenarios (simulate/scenarios/plan-*.json) inject each flaw's traffic symptom; the expected
+station and rule come from the sample description's flaws (sample_captures/pumpstation-bus.toml),
+not from the analysis. Plan rule sources: MSL V1.02 §3.4.3 (stubs), §3.4.5 (terminators), §3.4.6 (bias).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import tomllib
+from buswitness.analysis.busplan import load_plan, parse_plan
+from buswitness.analysis.pipeline import AnalysisOptions, analyze
+from buswitness.analysis.planjoin import health, joined_findings
+from buswitness.analysis.planrules import PLAN_CAUTION, check_plan
+from buswitness.capture.sources import open_capture
+from buswitness.simulate import load_scenario, simulate
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_captures" / "pumpstation-bus.toml"
+DURATION_S = 240.0
+
+#: Each scenario's flaw in the sample description: the sample's text with the other two flaws repaired.
+FIXES = {
+    "stub": ("stub_m = 60\n", "stub_m = 5\n"),
+    "bias": ('name = "Remote I/O panel"\nposition_m = 240\nbias = true\n',
+             'name = "Remote I/O panel"\nposition_m = 240\n'),
+    "far-end": ('position_m = 420\nterminator = false\n', 'position_m = 420\nterminator = true\n'),
+}
+CASES = {  # scenario -> (flaw left in, joined rule, station, traffic pattern)
+    "plan-far-end-open": ("far-end", "plan-termination", 9, "distance-trend"),
+    "plan-long-stub": ("stub", "plan-stub-length", 6, "station-apart"),
+    "plan-two-bias": ("bias", "plan-bias", None, "whole-bus"),
+}
+
+
+def plan_with_only(flaw: str):
+    text = SAMPLE.read_text()
+    for name, (bad, good) in FIXES.items():
+        if name != flaw:
+            assert bad in text
+            text = text.replace(bad, good)
+    return parse_plan(tomllib.loads(text), text, f"only-{flaw}.toml")
+
+
+@pytest.fixture(scope="module")
+def captures(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("planjoin")
+    out = {}
+    for name in CASES:
+        path = tmp / f"{name}.bwcap"
+        simulate(load_scenario(name), duration_s=DURATION_S, seed=5).write(path)
+        out[name] = path
+    return out
+
+
+def analysed(path: Path, plan):
+    return analyze(open_capture(path), AnalysisOptions(station_map=plan.station_map(), progress=False))
+
+
+@pytest.mark.parametrize("scenario", list(CASES))
+@pytest.mark.parametrize("which", ["only-this-flaw", "sample-with-all-three"])
+def test_matching_flaw_and_device_rank_first(captures, scenario, which):
+    flaw, rule, station, pattern = CASES[scenario]
+    plan = plan_with_only(flaw) if which == "only-this-flaw" else load_plan(SAMPLE)
+    result = analysed(captures[scenario], plan)
+    top = result.findings[0]
+    assert (top.rule, top.station) == (rule, station), [(f.rule, f.station) for f in result.findings[:4]]
+    assert top.evidence["traffic_pattern"] == pattern
+    assert top.evidence["plan_status"] == "fail" and "MSL §3.4" in top.evidence["plan_source"]
+    assert "The traffic and the description agree" in top.statement and top.caution == PLAN_CAUTION
+    # the traffic-only finding it explains is not listed beside it
+    assert not {"far-station-errors", "station-errors", "errors-bus-wide"} & {f.rule for f in result.findings}
+
+
+def test_errors_grow_toward_the_unterminated_far_end(captures):
+    result = analysed(captures["plan-far-end-open"], plan_with_only("far-end"))
+    top = result.findings[0]
+    by_pos = top.evidence["by_position"]
+    assert [row["position_m"] for row in by_pos] == sorted(row["position_m"] for row in by_pos)
+    assert by_pos[-1]["damaged_share"] > 3 * by_pos[0]["damaged_share"]
+    assert top.evidence["toward_end_m"] == 420 and "far end" in top.statement
+
+
+def test_a_clean_capture_joins_nothing(tmp_path):
+    path = tmp_path / "clean.bwcap"
+    simulate(load_scenario("clean"), duration_s=60.0, seed=1).write(path)
+    result = analyze(open_capture(path), AnalysisOptions(station_map=load_plan(SAMPLE).station_map(),
+                                                         progress=False))
+    assert not [f for f in result.findings if f.rule.startswith("plan-")]
+    assert joined_findings(load_plan(SAMPLE), check_plan(load_plan(SAMPLE)), result) == []
+
+
+def test_health_is_the_share_of_failed_polls(captures):
+    result = analysed(captures["plan-long-stub"], load_plan(SAMPLE))
+    s6, s1 = result.station(6), result.station(1)
+    assert health(s6) == pytest.approx((s6.timeouts + s6.late + s6.corrupt) / s6.requests)
+    assert health(s6) > 0.05 > health(s1)
+    assert health(None) is None
+
+
+def test_plan_check_with_capture_prints_the_joined_finding(captures, capsys, tmp_path):
+    from buswitness.cli.main import main
+    assert main(["plan", "check", str(SAMPLE), "--capture", str(captures["plan-long-stub"]), "--no-progress",
+                 "--json", str(tmp_path / "p.json")]) == 0
+    text = capsys.readouterr().out
+    joined = text[text.index("Joined with the capture"):]
+    assert "[plan+traffic] plan-stub-length" in joined.splitlines()[1]
+    assert "Energy meter (6)" in joined
+
+
+def test_analyze_accepts_the_description(captures, capsys, tmp_path):
+    from buswitness.cli.main import main
+    assert main(["analyze", str(captures["plan-two-bias"]), "--stations", str(SAMPLE), "--no-progress",
+                 "--json", str(tmp_path / "s.json")]) == 0
+    assert "biased at 2 points" in capsys.readouterr().out
