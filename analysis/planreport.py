@@ -75,15 +75,24 @@ def plan_json(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
 def render_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
                      result: AnalysisResult | None) -> str:
     """plan.html as one string: the drawing, the verdicts and the joined findings."""
-    from buswitness.analysis.plandraw import draw_plan, legend_items
+    from buswitness import __version__
     from buswitness.analysis.render import environment, stylesheet
     from markupsafe import Markup
     env = environment()
-    n = counts(results)
     return env.get_template("plan.html").render(
-        plan=plan, heading=plan_heading(plan), results=results, n=n, caution=PLAN_CAUTION,
-        findings=findings, result=result, svg=Markup(draw_plan(plan, results, result)), legend=legend_items(),
-        css=Markup(stylesheet("plan.css")))
+        plan=plan, heading=plan_heading(plan), results=results, n=counts(results), findings=findings,
+        result=result, p=panel_data(plan, results, result), version=__version__,
+        files=[Path(p).name for p in result.paths] if result is not None else [],
+        css=Markup(stylesheet("plan.css") + stylesheet("plan_panel.css")))
+
+
+def panel_data(plan: BusPlan, results: list[PlanResult], result: AnalysisResult | None) -> dict:
+    """What templates/plan_panel.html shows: the drawing, its legend and the numbered marks."""
+    from buswitness.analysis.plandraw import draw_plan, legend_items, numbered_marks
+    from markupsafe import Markup
+    marks = numbered_marks(results)
+    return {"svg": Markup(draw_plan(plan, results, result)), "legend": legend_items(), "marks": marks,
+            "shaded": result is not None, "caution": PLAN_CAUTION if any(r.caution for _, r in marks) else ""}
 
 
 def write_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],

@@ -22,6 +22,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     c.add_argument("description", metavar="BUS.toml", help="bus description (a station map with a [bus] table)")
     c.add_argument("--capture", metavar="CAPTURE", default=None,
                    help="capture file, hex text or raw bytes of the same bus, to join with the description")
+    c.add_argument("--html", metavar="FILE", help="write the drawing and the results as one page (plan.html)")
     c.add_argument("--json", metavar="FILE", help="write the results as JSON")
     from buswitness.cli.cmd_analyze import timeout_arg
     c.add_argument("--timeout", type=timeout_arg, default=None,
@@ -41,7 +42,7 @@ def _no_subcommand(args: argparse.Namespace) -> int:
 
 def run_check(args: argparse.Namespace) -> int:
     from buswitness.analysis.busplan import load_plan
-    from buswitness.analysis.planreport import plan_json, plan_text
+    from buswitness.analysis.planreport import plan_json, plan_text, write_plan_page
     from buswitness.analysis.planrules import check_plan
 
     plan = load_plan(args.description)
@@ -54,6 +55,8 @@ def run_check(args: argparse.Namespace) -> int:
         findings = result.findings  # the joined findings (analysis/planjoin.py) rank with the traffic's own
     print(plan_text(plan, results, findings, result))
     written = []
+    if args.html:
+        written.append(write_plan_page(plan, results, findings, result, args.html))
     if args.json:
         from buswitness.fsutil import atomic_write
         with atomic_write(args.json) as f:
