@@ -209,7 +209,7 @@ def draw_plan(plan: BusPlan, results: list[PlanResult], result: AnalysisResult |
         title = f"{d.label} at {d.position_m:g} m, {_ul(d.unit_load)}" + \
             (f", {d.stub_m:g} m stub" if d.stub_m else "") + health_text
         body.append(f'<text class="name" x="{lx}" y="{ly - 10}" text-anchor="middle">{_e(d.name or d.key)}'
-                    f'{"" if d.address is None else f" ({d.address})"}</text>'
+                    f'{"" if d.address is None or not d.name else f" ({d.address})"}</text>'
                     f'<text class="small" x="{lx}" y="{ly + 3}" text-anchor="middle">{d.position_m:g} m · '
                     f'{_ul(d.unit_load)}</text>')
         attrs = f' data-address="{d.address}"' if d.address is not None else ""
