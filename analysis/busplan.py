@@ -89,7 +89,9 @@ class Repeater:
 
     @property
     def label(self) -> str:
-        return f"{self.name} (repeater)" if self.name else "repeater"
+        if not self.name or "repeater" in self.name.lower():
+            return self.name or "repeater"
+        return f"{self.name} (repeater)"
 
 
 @dataclass(frozen=True)

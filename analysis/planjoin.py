@@ -280,7 +280,7 @@ def silence(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th
                                 f"beyond {rep.label} never answer while {len(before) - len([p for p in before if p in dead])} "
                                 f"before it do; {_lower(r.statement)} (plan rule {r.rule}, {r.source}).",
                                 {"silent_beyond": [p.figures.address for p in beyond], "repeater_m": rep.position_m},
-                                1.0, beyond[0], "silence-beyond-repeater"))
+                                1.0, None, "silence-beyond-repeater"))
             break
     return out
 

@@ -117,3 +117,85 @@ def test_analyze_accepts_the_description(captures, capsys, tmp_path):
     assert main(["analyze", str(captures["plan-two-bias"]), "--stations", str(SAMPLE), "--no-progress",
                  "--json", str(tmp_path / "s.json")]) == 0
     assert "biased at 2 points" in capsys.readouterr().out
+
+
+# -- silence after the master's requests, on hand-built figures ---------------------------------------
+
+def _result(plan, silent: set[int], seconds: float = 120.0):
+    from buswitness.analysis.pipeline import analyze_tables
+    from test_analysis_support import Tx, header, tables
+    txs, t = [], 0.1
+    while t < seconds:
+        for i, st in enumerate(d.address for d in plan.stations):
+            txs.append(Tx(t + i * 0.05, st, "timeout" if st in silent else "ok",
+                          float("nan") if st in silent else 10.0))
+        t += 0.5
+    result = analyze_tables(header(), [tables(txs)], AnalysisOptions(timeout_ms=200.0,
+                                                                     station_map=plan.station_map()))
+    from buswitness.analysis.pipeline import evaluate_findings
+    result.findings = evaluate_findings(result)
+    return result
+
+
+REPEATED = """
+[bus]
+name = "two segments"
+baud = 19200
+signal_common = true
+[master]
+position_m = 0
+terminator = true
+bias = true
+[stations.1]
+position_m = 200
+[stations.2]
+position_m = 450
+[[repeaters]]
+name = "hall repeater"
+position_m = 500
+terminator_near = true
+terminator_far = true
+[stations.3]
+position_m = 700
+[stations.4]
+position_m = 900
+terminator = true
+[shield]
+grounded_at_m = [0, 600]
+"""
+
+
+def test_no_station_answers_and_the_master_pair_is_reversed():
+    # MSL §3.3.2 naming; common practice: a master whose every request goes unanswered has A/B swapped first
+    text = REPEATED.replace("[master]\nposition_m = 0\n", '[master]\nposition_m = 0\nlabel_a = "D1"\n')
+    plan = parse_plan(tomllib.loads(text), text, "t.toml")
+    result = _result(plan, silent={1, 2, 3, 4})
+    top = result.findings[0]
+    assert top.rule == "plan-ab-wiring" and top.evidence["traffic_pattern"] == "silence-after-requests"
+    assert "no station answers" in top.statement and top.evidence["plan_status"] == "fail"
+    assert "no-answers" not in {f.rule for f in result.findings}
+
+
+def test_no_station_answers_names_the_master_pair_even_when_described_right():
+    plan = parse_plan(tomllib.loads(REPEATED), REPEATED, "t.toml")
+    joined = joined_findings(plan, None, _result(plan, silent={1, 2, 3, 4}))
+    assert [(f.rule, f.evidence["plan_status"]) for f in joined] == [("plan-ab-wiring", "warn")]
+
+
+def test_every_station_beyond_the_repeater_silent():
+    plan = parse_plan(tomllib.loads(REPEATED), REPEATED, "t.toml")
+    result = _result(plan, silent={3, 4})
+    joined = [f for f in result.findings if f.rule.startswith("plan-")]
+    assert [f.rule for f in joined] == ["plan-repeater"] and result.findings[0] is joined[0]
+    assert joined[0].evidence["silent_beyond"] == [3, 4] and joined[0].evidence["repeater_m"] == 500
+    assert "2 station(s) beyond hall repeater never answer while 2 before it do" in joined[0].statement
+    assert not {"never-present", "no-answers"} & {f.rule for f in result.findings}  # the dead segment explains them
+
+
+def test_one_silent_station_with_its_pair_reversed():
+    text = REPEATED.replace("[stations.3]\nposition_m = 700\n", '[stations.3]\nposition_m = 700\nwire_on_a = "D1"\n')
+    plan = parse_plan(tomllib.loads(text), text, "t.toml")
+    result = _result(plan, silent={3})
+    top = result.findings[0]
+    assert (top.rule, top.station) == ("plan-ab-wiring", 3)
+    assert top.evidence["traffic_pattern"] == "station-apart" and "never answered" in top.statement
