@@ -155,6 +155,7 @@ def distance_trend(plan: BusPlan, results: list[PlanResult], result: AnalysisRes
                        "near_damaged_share": round(near_share, 5),
                        "by_position": [{"station": p.figures.address, "position_m": p.position_m,
                                         "requests": p.figures.requests, "damaged": p.figures.corrupt,
+                                        "timeouts": p.figures.timeouts, "collisions": p.figures.collisions,
                                         "line_marks": p.marks, "damaged_share": round(p.damaged, 5)} for p in on]}
             seen = (f"errors grow with distance toward {end_name} of {seg.name}: {worst.figures.label} at "
                     f"{worst.position_m:g} m has {pct(worst.damaged)} of its answers damaged against "

@@ -59,17 +59,31 @@ def plan_text(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
 def plan_json(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
               result: AnalysisResult | None) -> dict:
     """The check as JSON: the description's summary, every result, and the findings when a capture was given."""
-    from buswitness.analysis.planjoin import health
     out: dict = {"description": plan.path, "name": plan.name, "baud": plan.baud, "counts": counts(results),
                  "segments": [{"index": s.index, "start_m": s.start_m, "end_m": s.end_m} for s in plan.segments()],
                  "results": [r.to_dict() for r in results]}
     if result is not None:
         out["capture"] = [str(p) for p in result.paths]
         out["findings"] = [f.to_dict() for f in findings]
-        out["stations"] = [{"address": d.address, "position_m": d.position_m,
-                            "failed_share": health(result.station(d.address) if d.address is not None else None)}
-                           for d in plan.stations]
+        out["stations"] = along_cable(plan, result)
     return out
+
+
+def along_cable(plan: BusPlan, result: AnalysisResult) -> list[dict]:
+    """Each described station's trouble in the capture, in position order (plan.html's table, the JSON)."""
+    from buswitness.analysis.planjoin import health
+    rows = []
+    for d in sorted(plan.stations, key=lambda d: d.position_m):
+        s = result.station(d.address) if d.address is not None else None
+        ev = s.events if s is not None else {}
+        rows.append({"address": d.address, "label": d.label, "position_m": d.position_m, "stub_m": d.stub_m,
+                     "segment": plan.segment_of(d.position_m).index,
+                     "requests": s.requests if s else 0, "failed_share": health(s),
+                     "damaged": s.corrupt if s else 0, "timeouts": s.timeouts if s else 0,
+                     "late": s.late if s else 0, "collisions": s.collisions if s else 0,
+                     "line_marks": int(ev.get("line_error", 0) + ev.get("break", 0)),
+                     "stray_bytes": int(ev.get("stray_bytes", 0))})
+    return rows
 
 
 def render_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],
@@ -82,6 +96,7 @@ def render_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Fi
     return env.get_template("plan.html").render(
         plan=plan, heading=plan_heading(plan), results=results, n=counts(results), findings=findings,
         result=result, p=panel_data(plan, results, result), version=__version__,
+        along=along_cable(plan, result) if result is not None else [],
         files=[Path(p).name for p in result.paths] if result is not None else [],
         css=Markup(stylesheet("plan.css") + stylesheet("plan_panel.css")))
 

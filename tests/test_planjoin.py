@@ -105,11 +105,20 @@ def test_health_is_the_share_of_failed_polls(captures):
 def test_plan_check_with_capture_prints_the_joined_finding(captures, capsys, tmp_path):
     from buswitness.cli.main import main
     assert main(["plan", "check", str(SAMPLE), "--capture", str(captures["plan-long-stub"]), "--no-progress",
-                 "--json", str(tmp_path / "p.json")]) == 0
+                 "--json", str(tmp_path / "p.json"), "--html", str(tmp_path / "plan.html")]) == 0
     text = capsys.readouterr().out
     joined = text[text.index("Joined with the capture"):]
     assert "[plan+traffic] plan-stub-length" in joined.splitlines()[1]
     assert "Energy meter (6)" in joined
+    import json
+    data = json.loads((tmp_path / "p.json").read_text())
+    along = data["stations"]
+    assert [a["position_m"] for a in along] == sorted(a["position_m"] for a in along)
+    worst = max(along, key=lambda a: a["failed_share"])
+    assert (worst["address"], worst["stub_m"]) == (6, 60)
+    assert data["findings"][0]["rule"] == "plan-stub-length"
+    page = (tmp_path / "plan.html").read_text()
+    assert page.count('<tr data-address="') == len(along) == 8
 
 
 def test_analyze_accepts_the_description(captures, capsys, tmp_path):
