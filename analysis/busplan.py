@@ -32,10 +32,10 @@ DEFAULT_IMPEDANCE_OHM = 120.0
 CONDUCTORS = ("D0", "D1")
 
 _TOP = {"bus", "cable", "master", "stations", "repeaters", "terminators", "bias", "shield"}
-_BUS = {"name", "baud", "format", "length_m", "signal_common", "ring", "notes"}
+_BUS = {"name", "baud", "format", "length_m", "signal_common", "common_earthed_at_m", "ring", "notes"}
 _CABLE = {"name", "impedance_ohm", "capacitance_pf_per_m", "gauge_awg", "notes"}
 _DEVICE = {"name", "position_m", "notes", "unit_load", "terminator", "terminator_ohm", "bias", "bias_ohm",
-           "stub_m", "label_a", "wire_on_a"}
+           "stub_m", "label_a", "wire_on_a", "common"}
 _REPEATER = {"name", "position_m", "notes", "unit_load", "stub_m", "terminator_near", "terminator_far",
              "terminator_ohm", "bias_near", "bias_far", "bias_ohm"}
 _TERMINATOR = {"position_m", "ohm", "stub_m", "notes"}
@@ -61,6 +61,7 @@ class Device:
     wire_on_a: str = "D0"    # the trunk conductor actually landed on that terminal
     notes: str = ""
     line: int = 0
+    common: bool | None = None  # the signal common is landed at this device (None: as the bus says)
 
     @property
     def label(self) -> str:
@@ -150,6 +151,7 @@ class BusPlan:
     char_format: str = ""
     length_m: float | None = None
     signal_common: bool | None = None
+    common_earthed_at_m: list[float] | None = None
     ring: bool = False
     notes: str = ""
     cable: Cable = field(default_factory=Cable)
@@ -339,6 +341,8 @@ def parse_plan(data: dict, text: str, path: str | os.PathLike) -> BusPlan:
             bus.fail("baud", f"{baud!r} is not a baud rate", "write the bus's rate as a whole number, e.g. baud = 19200")
         plan.baud = int(baud)
     plan.char_format = bus.text("format")
+    if "common_earthed_at_m" in bus.entry:
+        plan.common_earthed_at_m = _positions(bus, "common_earthed_at_m", "the signal common is bonded to earth")
     if "cable" in data:
         c = _Reader(p, lines, "cable", 0, data["cable"], _CABLE)
         gauge = c.number("gauge_awg", None, minimum=10, unit="AWG", example="24")
@@ -380,11 +384,7 @@ def parse_plan(data: dict, text: str, path: str | os.PathLike) -> BusPlan:
                                    or 0.0, ohm, r.number("stub_m", 0.0) or 0.0, r.text("notes"), r.line))
     if "shield" in data:
         s = _Reader(p, lines, "shield", 0, data["shield"], _SHIELD)
-        g = s.entry.get("grounded_at_m", [])
-        if not isinstance(g, list) or any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in g):
-            s.fail("grounded_at_m", f"{g!r} is not a list of positions",
-                   "write the positions in metres where the shield is bonded to ground, e.g. grounded_at_m = [0]")
-        plan.shield_grounds_m = [float(v) for v in g]
+        plan.shield_grounds_m = _positions(s, "grounded_at_m", "the shield is bonded to earth")
     _check_layout(plan, p, lines)
     return plan
 
@@ -397,13 +397,21 @@ def _array(p: Path, lines: _Lines, data: dict, name: str) -> list:
     return v
 
 
+def _positions(r: _Reader, key: str, what: str) -> list[float]:
+    g = r.entry.get(key, [])
+    if not isinstance(g, list) or any(isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0 for v in g):
+        r.fail(key, f"{g!r} is not a list of positions", f"write the positions in metres where {what}, e.g. {key} = [0]")
+    return [float(v) for v in g]
+
+
 def _device(r: _Reader, key: str, address: int | None) -> Device:
     return Device(
         key, r.text("name"), r.number("position_m", required=True, example="310") or 0.0, address,
         r.unit_load(), bool(r.flag("terminator")),
         r.number("terminator_ohm", DEFAULT_TERMINATOR_OHM, minimum=1, unit="ohm") or DEFAULT_TERMINATOR_OHM,
         bool(r.flag("bias")), r.number("bias_ohm", None, minimum=1, unit="ohm", example="560"),
-        r.number("stub_m", 0.0) or 0.0, r.conductor("label_a"), r.conductor("wire_on_a"), r.text("notes"), r.line)
+        r.number("stub_m", 0.0) or 0.0, r.conductor("label_a"), r.conductor("wire_on_a"), r.text("notes"), r.line,
+        r.flag("common", None))
 
 
 def _check_layout(plan: BusPlan, p: Path, lines: _Lines) -> None:

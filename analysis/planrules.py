@@ -63,8 +63,8 @@ SOURCES = {
     "topology": "MSL §3.4 (one trunk, devices daisy-chained or on short derivations: from memory); master at "
                 "one end: common practice",
     "shield": "common practice (ground the shield at one point per segment)",
-    "signal-common": "MSL §3.3.2 (a third conductor, the common, links every device: from memory); "
-                     "TIA/EIA-485-A common-mode range -7 to +12 V (TI SLLA628)",
+    "signal-common": "MSL §3.3.2 (a third conductor, the common, links every device, bonded to protective "
+                     "earth at one point: from memory); TIA/EIA-485-A common-mode range -7 to +12 V (TI SLLA628)",
     "repeater": "MSL §3.4.1 (a repeater starts a new segment with its own 32 unit loads); placement: common "
                 "practice",
     "ab-wiring": "MSL §3.3.2 (D0 = A, D1 = B); makers label A and B differently: common practice",
@@ -468,15 +468,37 @@ def signal_common(plan: BusPlan) -> list[PlanResult]:
     if plan.signal_common is None:
         return [PlanResult("signal-common", "warn", "bus", "The description does not say whether a signal common "
                            "runs with the pair.", {}, "Check the cable and add signal_common = true or false to [bus].")]
-    if plan.signal_common:
-        return [PlanResult("signal-common", "pass", "bus", "A signal common runs with the pair to every device.",
-                           {"signal_common": True})]
-    return [PlanResult(
-        "signal-common", "fail", "bus",
-        "No signal common runs with the pair: the devices' grounds may differ by more than the receivers' "
-        "-7 to +12 V common-mode range, and the pair then carries return currents.", {"signal_common": False},
-        "Run a third conductor (a spare core of the cable) as the signal common to every device, connected to "
-        "protective earth at one point.", position_m=plan.trunk_span()[0])]
+    if not plan.signal_common:
+        return [PlanResult(
+            "signal-common", "fail", "bus",
+            "No signal common runs with the pair: the devices' grounds may differ by more than the receivers' "
+            "-7 to +12 V common-mode range, and the pair then carries return currents.", {"signal_common": False},
+            "Run a third conductor (a spare core of the cable) as the signal common to every device, connected to "
+            "protective earth at one point.", position_m=plan.trunk_span()[0])]
+    out = []
+    for d in plan.devices:
+        if d.common is False:
+            out.append(PlanResult(
+                "signal-common", "fail", d.label,
+                f"{d.label}: the signal common runs with the pair but is not landed at this device, so its "
+                f"receiver's ground floats against the others'.", {"common_at_device": False},
+                "Land the common core on the device's signal-common (0 V, GND or C) terminal.",
+                position_m=d.position_m, devices=[d.key], segment=plan.segment_of(d.position_m).index))
+    earthed = plan.common_earthed_at_m
+    if earthed is not None and len(earthed) != 1:
+        out.append(PlanResult(
+            "signal-common", "warn", "bus",
+            ("The signal common is bonded to earth nowhere." if not earthed else
+             f"The signal common is bonded to earth at {len(earthed)} points ({', '.join(_g(g) for g in earthed)} m): "
+             f"ground currents between them flow in it."), {"earthed_at_m": earthed},
+            "Bond the signal common to protective earth at one point only, usually at the master.",
+            position_m=earthed[1] if len(earthed) > 1 else plan.trunk_span()[0]))
+    if not out:
+        where = "" if not earthed else f", bonded to earth at {earthed[0]:g} m"
+        out.append(PlanResult("signal-common", "pass", "bus",
+                              f"A signal common runs with the pair to every device{where}.",
+                              {"signal_common": True, "earthed_at_m": earthed}))
+    return out
 
 
 def repeater(plan: BusPlan) -> list[PlanResult]:

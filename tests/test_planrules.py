@@ -242,3 +242,13 @@ def test_every_rule_names_its_source_and_every_fix_carries_the_caution():
         assert r.source
         if r.status != "pass" and r.fix:
             assert r.caution == PLAN_CAUTION
+
+
+def test_common_missing_at_one_device_fails_and_earthed_twice_warns():
+    # MSL §3.3.2 (from memory): the common links every device and is bonded to earth at one point
+    r = verdicts(GOOD.replace("position_m = 100\n", "position_m = 100\ncommon = false\n"), "signal-common")
+    assert [(x.status, x.devices) for x in r] == [("fail", ["station 1"])]
+    twice = GOOD.replace("signal_common = true", "signal_common = true\ncommon_earthed_at_m = [0, 300]")
+    assert statuses(twice, "signal-common") == {"warn"}
+    once = GOOD.replace("signal_common = true", "signal_common = true\ncommon_earthed_at_m = [0]")
+    assert statuses(once, "signal-common") == {"pass"}
