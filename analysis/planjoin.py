@@ -26,6 +26,7 @@ from buswitness.analysis.busplan import BusPlan, Device
 from buswitness.analysis.finding import Cause, Finding
 from buswitness.analysis.planrules import PLAN_CAUTION, PlanResult, check_plan
 from buswitness.analysis.result import AnalysisResult, StationFigures
+from buswitness.analysis.rules import duplicate, line
 from buswitness.analysis.rules.common import capture_span, damaged_share, failure_examples, pct, share
 from buswitness.analysis.rules.thresholds import Thresholds
 
@@ -83,12 +84,13 @@ def health(figures: StationFigures | None) -> float | None:
     return share(figures.timeouts + figures.late + figures.corrupt, figures.requests)
 
 
-def placed_stations(plan: BusPlan, result: AnalysisResult, th: Thresholds) -> list[Placed]:
-    """Described stations polled often enough to judge, in position order."""
+def placed_stations(plan: BusPlan, result: AnalysisResult, th: Thresholds,
+                    skip: frozenset[int] = frozenset()) -> list[Placed]:
+    """Described stations polled often enough to judge, in position order, without those in ``skip``."""
     out = []
     for d in plan.stations:
         s = result.station(d.address) if d.address is not None else None
-        if s is not None and s.requests >= th.min_requests:
+        if s is not None and s.requests >= th.min_requests and d.address not in skip:
             out.append(Placed(d, s))
     return sorted(out, key=lambda p: p.position_m)
 
@@ -128,11 +130,12 @@ def _finding(rule: PlanResult, result: AnalysisResult, statement: str, traffic: 
         examples=examples or [], causes=causes, caution=PLAN_CAUTION)
 
 
-def distance_trend(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds) -> list[Finding]:
+def distance_trend(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds,
+                   placed: list[Placed]) -> list[Finding]:
     """Damage growing toward one end of a segment."""
     out = []
     for seg in plan.segments():
-        on = [p for p in placed_stations(plan, result, th) if plan.segment_of(p.position_m).index == seg.index
+        on = [p for p in placed if plan.segment_of(p.position_m).index == seg.index
               and p.figures.late < th.late_min_count]
         if len(on) < 3:
             continue
@@ -171,13 +174,13 @@ def distance_trend(plan: BusPlan, results: list[PlanResult], result: AnalysisRes
 
 
 def station_apart(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds,
-                  explained: frozenset[int] = frozenset()) -> list[Finding]:
+                  placed: list[Placed], explained: frozenset[int] = frozenset()) -> list[Finding]:
     """One station far worse than its neighbours, or silent while they answer, with a flaw at its drop.
 
     Stations in ``explained`` are the far end of a trend with distance already joined: their
     damage is the trend's, not their drop's.
     """
-    on = [p for p in placed_stations(plan, result, th) if p.figures.late < th.late_min_count]
+    on = [p for p in placed if p.figures.late < th.late_min_count]
     out = []
     for i, p in enumerate(on):
         others = [o.damaged for o in on if o is not p]
@@ -213,9 +216,10 @@ def station_apart(plan: BusPlan, results: list[PlanResult], result: AnalysisResu
     return out
 
 
-def whole_bus(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds) -> list[Finding]:
+def whole_bus(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds,
+              placed: list[Placed]) -> list[Finding]:
     """Damage on most stations alike (not a trend with distance) with a flaw that touches the whole segment."""
-    on = [p for p in placed_stations(plan, result, th) if p.figures.late < th.late_min_count]
+    on = [p for p in placed if p.figures.late < th.late_min_count]
     if len(on) < 3:
         return []
     hit = [p for p in on if p.damaged >= th.error_notice_share]
@@ -246,9 +250,10 @@ def whole_bus(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, 
                      traffic, typical, None, "whole-bus")]
 
 
-def silence(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds) -> list[Finding]:
+def silence(plan: BusPlan, results: list[PlanResult], result: AnalysisResult, th: Thresholds,
+            placed: list[Placed]) -> list[Finding]:
     """No answers after the master's requests: from every station, or from every one beyond a repeater."""
-    on = placed_stations(plan, result, th)
+    on = placed
     if not on:
         return []
     dead = [p for p in on if p.figures.answered == 0 and p.figures.late == 0 and p.figures.corrupt == 0]
@@ -297,12 +302,18 @@ def joined_findings(plan: BusPlan, results: list[PlanResult] | None, result: Ana
                     th: Thresholds | None = None) -> list[Finding]:
     """Findings where the description and the capture's traffic agree."""
     th = th or Thresholds()
+    if line.unreadable_line(result, th):
+        return []  # the sniffer cannot read the line: nothing placed along it can be trusted
     results = check_plan(plan) if results is None else results
-    found = silence(plan, results, result, th)
-    trend = distance_trend(plan, results, result, th)
+    # two devices on one address garble its answers wherever it sits: its damage says nothing of the wire
+    skip = frozenset(f.station for f in duplicate.duplicate_address(result, th) if f.station is not None)
+    placed = placed_stations(plan, result, th, skip)
+    found = silence(plan, results, result, th, placed)
+    trend = distance_trend(plan, results, result, th, placed)
     found += trend
-    found += station_apart(plan, results, result, th, frozenset(f.station for f in trend if f.station is not None))
-    found += whole_bus(plan, results, result, th)
+    found += station_apart(plan, results, result, th, placed,
+                           frozenset(f.station for f in trend if f.station is not None))
+    found += whole_bus(plan, results, result, th, placed)
     return found
 
 

@@ -208,3 +208,21 @@ def test_one_silent_station_with_its_pair_reversed():
     top = result.findings[0]
     assert (top.rule, top.station) == ("plan-ab-wiring", 3)
     assert top.evidence["traffic_pattern"] == "station-apart" and "never answered" in top.statement
+
+
+def test_two_devices_on_one_address_are_not_read_as_the_wire():
+    # the demo night: the far station's damage comes from a second device on its address, not the open end
+    capture = ROOT / "sample_captures" / "pumpstation-5min.bwcap"
+    result = analyze(open_capture(capture), AnalysisOptions(station_map=load_plan(SAMPLE).station_map(),
+                                                            progress=False))
+    assert (result.findings[0].rule, result.findings[0].station) == ("duplicate-address", 9)
+    assert not [f for f in result.findings if f.rule.startswith("plan-") and f.station == 9]
+
+
+def test_an_unreadable_line_joins_nothing(tmp_path):
+    path = tmp_path / "polarity.bwcap"
+    simulate(load_scenario("fault-polarity"), duration_s=30.0, seed=1).write(path)
+    result = analyze(open_capture(path), AnalysisOptions(station_map=load_plan(SAMPLE).station_map(),
+                                                         progress=False))
+    assert result.findings[0].rule == "unreadable-line"
+    assert not [f for f in result.findings if f.rule.startswith("plan-")]
