@@ -8,7 +8,7 @@ pumpstation-bus.toml) and the rules' verdicts, pinned against MSL V1.02 in tests
 from __future__ import annotations
 
 import pytest
-from browser import OfflinePage, require_chromium, screenshot
+from browser import ARTIFACTS, OfflinePage, require_chromium, screenshot
 from buswitness.analysis.busplan import load_plan
 from buswitness.analysis.planrules import check_plan
 from buswitness.cli.main import main
@@ -81,6 +81,8 @@ def test_dashboard_plan_panel_shows_every_device_and_every_failed_rule(pages):
     with OfflinePage(pages / "report.html") as (page, visit):
         page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
         _check_drawing(page, "section#plan")
-        page.locator("section#plan").screenshot(path=str(screenshot(page, "dashboard-full.png").parent
-                                                         / "dashboard-plan-panel.png"))
+        ARTIFACTS.mkdir(exist_ok=True)
+        shot = ARTIFACTS / "dashboard-plan-panel.png"
+        page.locator("section#plan").screenshot(path=str(shot))
+    assert shot.stat().st_size > 10_000
     assert visit.errors == [] and visit.blocked == [] and visit.dialogs == []
