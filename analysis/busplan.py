@@ -31,7 +31,7 @@ DEFAULT_TERMINATOR_OHM = 120.0
 DEFAULT_IMPEDANCE_OHM = 120.0
 CONDUCTORS = ("D0", "D1")
 
-_TOP = {"bus", "cable", "master", "stations", "repeaters", "terminators", "bias", "shield"}
+_TOP = {"bus", "cable", "master", "sniffer", "stations", "repeaters", "terminators", "bias", "shield"}
 _BUS = {"name", "baud", "format", "length_m", "signal_common", "common_earthed_at_m", "ring", "notes"}
 _CABLE = {"name", "impedance_ohm", "capacitance_pf_per_m", "gauge_awg", "notes"}
 _DEVICE = {"name", "position_m", "notes", "unit_load", "terminator", "terminator_ohm", "bias", "bias_ohm",
@@ -47,7 +47,7 @@ _SHIELD = {"grounded_at_m", "notes"}
 class Device:
     """A master or a station: where it sits and what its transceiver brings to the line."""
 
-    key: str                 # "master" or "station 7": how results and the drawing name it
+    key: str                 # "master", "sniffer" or "station 7": how results and the drawing name it
     name: str
     position_m: float
     address: int | None = None
@@ -65,6 +65,8 @@ class Device:
 
     @property
     def label(self) -> str:
+        if self.key == "sniffer":
+            return f"{self.name} (listening adapter)" if self.name else "listening adapter"
         if self.address is None:
             return f"{self.name} (master)" if self.name else "master"
         return f"{self.name} ({self.address})" if self.name else f"station {self.address}"
@@ -156,6 +158,7 @@ class BusPlan:
     notes: str = ""
     cable: Cable = field(default_factory=Cable)
     master: Device | None = None
+    sniffer: Device | None = None
     stations: list[Device] = field(default_factory=list)
     repeaters: list[Repeater] = field(default_factory=list)
     parts: list[Part] = field(default_factory=list)
@@ -163,8 +166,9 @@ class BusPlan:
 
     @property
     def devices(self) -> list[Device]:
-        """The master, then the stations in position order."""
-        return ([self.master] if self.master else []) + sorted(self.stations, key=lambda d: d.position_m)
+        """The master, then the stations and the listening adapter in position order."""
+        others = self.stations + ([self.sniffer] if self.sniffer else [])
+        return ([self.master] if self.master else []) + sorted(others, key=lambda d: d.position_m)
 
     def trunk_span(self) -> tuple[float, float]:
         """Where the trunk starts (0 m, the master's end, unless something sits before it) and ends
@@ -355,6 +359,8 @@ def parse_plan(data: dict, text: str, path: str | os.PathLike) -> BusPlan:
                            None if gauge is None else int(gauge), c.text("notes"))
     if "master" in data:
         plan.master = _device(_Reader(p, lines, "master", 0, data["master"], _DEVICE), "master", None)
+    if "sniffer" in data:
+        plan.sniffer = _device(_Reader(p, lines, "sniffer", 0, data["sniffer"], _DEVICE), "sniffer", None)
     stations = data.get("stations", {})
     if not isinstance(stations, dict):
         raise InputFileError(p, f"line {lines.of('stations')}: stations must be [stations.N] tables",

@@ -186,7 +186,7 @@ def draw_plan(plan: BusPlan, results: list[PlanResult], result: AnalysisResult |
         lvl = level[d.key]
         figures = result.station(d.address) if result is not None and d.address is not None else None
         share_ = health(figures)
-        fill = "#ffffff" if d.address is None else health_colour(share_)
+        fill = health_colour(share_)
         dy = trunk_y
         body = []
         if d.stub_m > 0:
@@ -197,9 +197,13 @@ def draw_plan(plan: BusPlan, results: list[PlanResult], result: AnalysisResult |
         lx = label_x[d.key]
         body.append(f'<polyline points="{dx},{min(dy, trunk_y) - 11} {dx},{ly + 12} {lx},{ly + 7}" fill="none" '
                     f'stroke="#b9b2a4" stroke-dasharray="1 3"/>')
-        if d.address is None:
+        if d.key == "master":
             body.append(f'<rect x="{dx - 11}" y="{dy - 11}" width="22" height="22" rx="3" fill="{INK}"/>'
                         f'<text x="{dx}" y="{dy + 4}" text-anchor="middle" style="fill:#fff;font-weight:700">M</text>')
+        elif d.key == "sniffer":
+            body.append(f'<rect x="{dx - 8}" y="{dy - 8}" width="16" height="16" rx="2" fill="#fff" stroke="{INK}" '
+                        f'stroke-width="2" stroke-dasharray="3 2"/><text x="{dx}" y="{dy + 4}" text-anchor="middle" '
+                        f'style="font-weight:700;font-size:10px">L</text>')
         else:
             body.append(f'<circle cx="{dx}" cy="{dy}" r="9" fill="{fill}" stroke="{INK}" stroke-width="2"/>')
         if d.label_a != d.wire_on_a:

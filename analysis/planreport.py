@@ -107,7 +107,7 @@ def panel_data(plan: BusPlan, results: list[PlanResult], result: AnalysisResult 
     from markupsafe import Markup
     marks = numbered_marks(results)
     return {"svg": Markup(draw_plan(plan, results, result)), "legend": legend_items(), "marks": marks,
-            "shaded": result is not None, "caution": PLAN_CAUTION if any(r.caution for _, r in marks) else ""}
+            "shaded": result is not None, "sniffer": plan.sniffer is not None, "caution": PLAN_CAUTION if any(r.caution for _, r in marks) else ""}
 
 
 def write_plan_page(plan: BusPlan, results: list[PlanResult], findings: list[Finding],

@@ -529,7 +529,7 @@ def ab_wiring(plan: BusPlan) -> list[PlanResult]:
     out = []
     for d in plan.devices:
         if d.label_a != d.wire_on_a:
-            master = d.address is None
+            master = d.key == "master"
             out.append(PlanResult(
                 "ab-wiring", "fail", d.label,
                 f"{d.label}: its terminal A is {d.label_a} by its maker's labels, but {d.wire_on_a} is landed on it: "

@@ -43,6 +43,9 @@ terminator = true
 position_m = 1400
 terminator = true
 stub_m = 30
+[sniffer]
+name = "Laptop adapter"
+position_m = 690
 [shield]
 grounded_at_m = [0, 700]
 """
@@ -77,6 +80,8 @@ def test_two_segments_drawn_split_at_the_repeater():
     # station 4 (at the end of its stub)
     assert len(groups(svg, "terminator")) == 5
     assert "D0/D1 reversed" in svg
+    assert [g.get("data-device") for g in groups(svg, "device")] == ["master", "station 2", "sniffer", "station 3",
+                                                                     "station 4"]  # in position order
 
 
 def test_hostile_names_stay_text():

@@ -252,3 +252,16 @@ def test_common_missing_at_one_device_fails_and_earthed_twice_warns():
     assert statuses(twice, "signal-common") == {"warn"}
     once = GOOD.replace("signal_common = true", "signal_common = true\ncommon_earthed_at_m = [0]")
     assert statuses(once, "signal-common") == {"pass"}
+
+
+def test_the_listening_adapter_is_one_more_load_and_its_terminator_is_judged():
+    # TIA/EIA-485-A via TI SLLA628: 32 unit loads; the adapter's transceiver counts while connected
+    text = with_far_end(HEAD + stations(30), 500)
+    assert statuses(text, "unit-loads") == {"pass"}
+    with_sniffer = text + "[sniffer]\nposition_m = 250\n"
+    r = verdicts(with_sniffer, "unit-loads")
+    assert [x.status for x in r] == ["fail"] and r[0].numbers["unit_loads"] == 33
+    # MSL §3.4.5: the adapter's own terminator switched on in mid-trunk fails like any other
+    bad = [x for x in verdicts(with_sniffer.replace("position_m = 250\n", "position_m = 250\nterminator = true\n"),
+                               "termination") if x.status == "fail"]
+    assert [x.devices for x in bad] == [["sniffer"]]
