@@ -155,17 +155,29 @@ def dashboard_data(result: AnalysisResult) -> dict:
         r["clock"] = r["utc"][11:23] if r.get("utc") else f"{r['t_s']:.3f} s"
         browser.append(r)
     damage = result.damage
-    return {"untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "result": result, "bus": result.bus, "timeout": result.timeout, "rows": rows, "browser": browser,
+    return {"plan": plan_panel(result), "untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "result": result, "bus": result.bus, "timeout": result.timeout, "rows": rows, "browser": browser,
             "findings": finding_views(result), "damage": None if damage is None or damage.clean else damage,
             "start": result.header.start_utc, "duration_h": result.bus.duration_s / 3600.0,
             "files": [Path(p).name for p in result.paths]}
 
 
+def plan_panel(result: AnalysisResult) -> dict | None:
+    """The drawing of the bus when the station map is a bus description (analysis/planreport.py), else None."""
+    plan = getattr(result.station_map, "plan", None)
+    if plan is None:
+        return None
+    from buswitness.analysis.planreport import panel_data
+    from buswitness.analysis.planrules import check_plan
+    return panel_data(plan, check_plan(plan), result)
+
+
 def render_dashboard(result: AnalysisResult) -> str:
     """The dashboard page as one string."""
     env = environment()
+    data = dashboard_data(result)
+    css = stylesheet("dashboard.css") + (stylesheet("plan_panel.css") if data["plan"] else "")
     return env.get_template("dashboard.html").render(
-        d=dashboard_data(result), css=Markup(stylesheet("dashboard.css")), plotly_js=Markup(_plotly_js()),
+        d=data, css=Markup(css), plotly_js=Markup(_plotly_js()),
         chart_json=Markup(script_json(charts(result))))
 
 

@@ -12,6 +12,8 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from buswitness.analysis.finding import Finding, ranked
+from buswitness.analysis.planjoin import SUPERSEDES as JOINED_SUPERSEDES
+from buswitness.analysis.planjoin import plan_findings
 from buswitness.analysis.result import AnalysisResult
 from buswitness.analysis.rules import (
     absence,
@@ -71,7 +73,8 @@ SUPERSEDES: dict[str, frozenset[str]] = {
 
 
 def _explains(strong: Finding, weak: Finding) -> bool:
-    if weak.rule not in SUPERSEDES.get(strong.rule, ()):
+    # joined findings of a bus description and the traffic: analysis/planjoin.py
+    if weak.rule not in SUPERSEDES.get(strong.rule, JOINED_SUPERSEDES.get(strong.rule, ())):
         return False
     return strong.station is None or weak.station is None or strong.station == weak.station
 
@@ -80,6 +83,7 @@ def evaluate(result: AnalysisResult, thresholds: Thresholds | None = None) -> li
     """Every rule's findings, without those a stronger finding explains, one per rule and station, ranked."""
     th = thresholds or Thresholds()
     found = [f for rule in RULES.values() for f in rule(result, th)]
+    found += plan_findings(result, th)
     kept = [f for f in found if not any(_explains(g, f) for g in found if g is not f)]
     best: dict[tuple, Finding] = {}
     for f in ranked(kept):

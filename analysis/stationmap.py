@@ -7,7 +7,8 @@ position_m = 310
 notes = "replaced 2025"
 ```
 
-Every table and chart then says "Pump drive B (7)" instead of "7".
+Every table and chart then says "Pump drive B (7)" instead of "7". A file with a ``[bus]`` table
+is a bus description (analysis/busplan.py, docs/plan.md) and is read as a station map too.
 """
 
 from __future__ import annotations
@@ -37,6 +38,7 @@ class StationMap:
 
     stations: dict[int, StationInfo] = field(default_factory=dict)
     path: str = ""
+    plan: object | None = None  #: the BusPlan when the file is a bus description (analysis/busplan.py)
 
     def label(self, address: int) -> str:
         info = self.stations.get(address)
@@ -68,6 +70,9 @@ def load_station_map(path: str | os.PathLike) -> StationMap:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputFileError(p, f"is not valid TOML: {exc}", "see docs/reading-the-report.md for the layout") from None
+    from buswitness.analysis.busplan import is_bus_description, parse_plan
+    if is_bus_description(data):
+        return parse_plan(data, text, p).station_map()
     stations = data.get("stations")
     if not isinstance(stations, dict):
         raise InputFileError(p, "has no [stations.N] tables", 'write e.g. [stations.7] name = "Pump drive B"')

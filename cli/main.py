@@ -14,13 +14,15 @@ from buswitness.cli import (
     cmd_detect,
     cmd_evidence,
     cmd_inspect,
+    cmd_plan,
     cmd_record,
     cmd_simulate,
     cmd_watch,
 )
 from buswitness.errors import EXIT_USAGE, BuswitnessError
 
-VERBS = (cmd_demo, cmd_record, cmd_analyze, cmd_evidence, cmd_simulate, cmd_detect, cmd_watch, cmd_inspect)
+VERBS = (cmd_demo, cmd_record, cmd_analyze, cmd_evidence, cmd_plan, cmd_simulate, cmd_detect, cmd_watch,
+         cmd_inspect)
 
 EPILOG = """exit codes: 0 success, 2 usage error, 3 unreadable or invalid input file,
 4 serial device error"""
