@@ -140,3 +140,63 @@ def test_late_answers_are_credited_to_their_request():
     # first attempt; pairing those chains is issue 12's pairing work. Everything else must agree.
     assert (t.outcome == "late").sum() > 50
     assert (differ & ~chain).sum() <= 0.01 * len(t)
+
+
+# -- issue 12's patterns, on the simulator's scenarios for them -----------------------------------------
+
+def _judged(txns: pd.DataFrame, timeout_ms: float) -> np.ndarray:
+    """Our outcomes judged as the analysis does: an answer the master awaited past its timeout is late."""
+    ours = txns.outcome.astype(str).to_numpy().copy()
+    over = np.isin(ours, ["ok", "exception"]) & (txns.response_ms.to_numpy() > timeout_ms)
+    ours[over] = "late"
+    return ours
+
+
+def _events(name: str, duration_s: float, latency_ms: float) -> pd.DataFrame:
+    sc = load_scenario(name)
+    res = simulate(sc, duration_s=duration_s, seed=1, latency_ms=latency_ms)
+    dec = Decoder(DecoderConfig.from_header(res.header))
+    outs = [dec.feed_batch(b) for b in res.batches()] + [dec.flush()]
+    return pd.concat([o.events for o in outs], ignore_index=True)
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_retries_to_a_station_with_no_device_are_never_its_answers(latency_ms):
+    truth, _frames, txns = _run("fault-dead-echo", 300, latency_ms)
+    t, j = _match(truth.transactions, txns)
+    assert len(txns) == len(t)  # every attempt, retries included, is a request
+    assert (txns.outcome.astype(str).to_numpy()[j] == t.outcome.astype(str).to_numpy()).all()
+    assert (txns.retry.to_numpy()[j] == t.retry.to_numpy()).all()
+    dead = txns[txns.station == 5]
+    assert len(dead) > 500 and set(dead.outcome.astype(str)) == {"timeout"}
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_a_slow_stations_late_answers_are_measured_from_the_request_they_answer(latency_ms):
+    truth, _frames, txns = _run("fault-late-retry", 300, latency_ms)
+    t, j = _match(truth.transactions, txns)
+    ours = _judged(txns, 200.0)[j]  # the scenario's master timeout
+    late = t.outcome.astype(str).to_numpy() == "late"
+    own = np.abs(txns.response_ms.to_numpy()[j] - t.response_ms.to_numpy()) < 1.0 + latency_ms
+    print(f"\nfault-late-retry {latency_ms} ms: {late.sum()} late answers, {(late & own).sum()} paired with their own")
+    assert late.sum() > 100
+    assert (late & own & (ours == "late")).sum() >= 0.95 * late.sum()
+    truth_outcome = t.outcome.astype(str).to_numpy()
+    # a late answer damaged by the master's retry is a damaged answer on the wire; the master saw none
+    damaged_late = (ours == "corrupt") & (truth_outcome == "timeout")
+    # an answer whose interval straddles the timeout: the timestamps cannot say which side it fell
+    straddles = (txns.response_ms_low.to_numpy()[j] <= 200.0) & (200.0 <= txns.response_ms_high.to_numpy()[j])
+    differ = (ours != truth_outcome) & ~damaged_late & ~straddles
+    assert differ.sum() <= 0.002 * len(t)
+
+
+@pytest.mark.parametrize("latency_ms", [16.0, 1.0])
+def test_a_damaged_answer_then_a_retry_is_one_corrupt_attempt_and_no_collision(latency_ms):
+    truth, _frames, txns = _run("fault-damaged-retry", 300, latency_ms)
+    t, j = _match(truth.transactions, txns)
+    ours = txns.outcome.astype(str).to_numpy()[j]
+    differ = ours != t.outcome.astype(str).to_numpy()
+    assert differ.sum() <= 0.002 * len(t)
+    assert (ours == "corrupt").sum() >= 40
+    events = _events("fault-damaged-retry", 300, latency_ms)
+    assert not events.kind.astype(str).isin(["collision", "orphan_response", "unexpected_responder"]).any()
