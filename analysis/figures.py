@@ -21,7 +21,7 @@ from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, qu
 OUTCOMES = ("ok", "exception", "timeout", "late", "corrupt", "broadcast")
 EVENT_KINDS = ("crc_error", "truncated", "gap_in_frame", "turnaround_short", "line_error", "break",
                "stray_bytes", "collision", "bytes_lost", "port_gap", "unexpected_responder", "orphan_response",
-               "other")
+               "idle_line_byte", "other")
 #: Columns of the per-station per-minute series.
 MINUTE_COLUMNS = ("requests", "ok", "exception", "timeout", "late", "corrupt", "retries", "crc_errors",
                   "collisions")

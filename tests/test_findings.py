@@ -383,7 +383,7 @@ def test_clean_traffic_gives_nothing_above_information():
 def test_every_wiring_finding_carries_the_caution():
     wiring = {"unreadable-line", "no-answers", "never-present", "silent-period", "duplicate-address",
               "errors-clustered", "far-station-errors", "station-errors", "errors-bus-wide", "idle-stray-bytes",
-              "missed-polls", "device-count", "cable-length"}
+              "line-not-held-idle", "missed-polls", "device-count", "cable-length"}
     assert "not a measurement of the wire" in WIRING_CAUTION
     cases = [result_of(polls(300, fate=_corrupt_every({1: 50, 2: 50, 3: 50}))),
              result_of(polls(120, fate=lambda st, k, t: ("timeout", float("nan")))),
