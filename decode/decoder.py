@@ -12,7 +12,7 @@ from __future__ import annotations
 import heapq
 from bisect import bisect_left, bisect_right
 from collections.abc import Iterator
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 from buswitness.capture.fileformat import (
@@ -130,24 +130,14 @@ def _describe_damage(raw: bytes, at_boundary: bool) -> tuple[str, int, str]:
     return "stray_bytes", -1, f"{n} stray byte{'s' if n != 1 else ''} that form no frame"
 
 
-def _describe_idle(raw: bytes, follows: tuple[int, bool], marked: bool) -> tuple[str, int, str]:
-    """Kind, talker and a sentence for a byte a driver left on a line nobody holds idle.
-
-    The talker is the station whose answer the byte follows, or -1 for the master (it has no
-    address) when the byte follows a request.
-    """
-    address, request = follows
-    after = f"the master's frame to station {address}" if request else f"station {address}'s answer"
-    how = ", marked bad by the UART" if marked else ""
-    if marked and not raw[0]:
-        how = ", marked bad by the UART (PARMRK reports it as a break: both have one escape)"
-    return "idle_line_byte", -1 if request else address, (
-        f"byte 0x{raw[0]:02X}{how} right after {after}: the line floated when the driver let go "
-        f"(not part of the frame)")
-
-
 class _Port:
     """One port's stream: unsettled bytes, the framer's state and the byte-time model."""
+
+    #: When the bulk walk yields fewer frames than this, the sequential framer takes
+    #: SEQUENTIAL_RUN frames before the walk is tried again (numpy's fixed cost per call
+    #: outweighs runs of one frame, as behind every idle-line byte).
+    BULK_SHORT_RUN = 2
+    SEQUENTIAL_RUN = 64
 
     def __init__(self, port: int, cfg: DecoderConfig) -> None:
         self.port = port
@@ -175,6 +165,22 @@ class _Port:
         self._held: list[tuple[int, tuple]] = []
         self._merge_ns = cfg.latency_for(port) * 1e6 + cfg.host_delay_ms * 1e6 + 4 * self.char_ns
         self._last_end = (0, 0)  # end interval of the last frame handed on (for a break right behind it)
+
+    @staticmethod
+    def _describe_idle(raw: bytes, follows: tuple[int, bool], marked: bool) -> tuple[str, int, str]:
+        """Kind, talker and a sentence for a byte a driver left on a line nobody holds idle.
+
+        The talker is the station whose answer the byte follows, or -1 for the master (it has no
+        address) when the byte follows a request.
+        """
+        address, request = follows
+        after = f"the master's frame to station {address}" if request else f"station {address}'s answer"
+        how = ", marked bad by the UART" if marked else ""
+        if marked and not raw[0]:
+            how = ", marked bad by the UART (PARMRK reports it as a break: both have one escape)"
+        return "idle_line_byte", -1 if request else address, (
+            f"byte 0x{raw[0]:02X}{how} right after {after}: the line floated when the driver let go "
+            f"(not part of the frame)")
 
     def add(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
         """Take one record; append (sort key, item) pairs for what it completes to ``out``."""
@@ -250,14 +256,15 @@ class _Port:
                 k = pos - first
                 for start, raw in ((first, damage.raw[:k]), (pos + 1, damage.raw[k + 1:])):
                     if raw:
-                        self._held.append((start, (t, ("damage", replace(damage, raw=raw)))))
+                        part = Damage(damage.kind, damage.port, damage.t_ns, raw, damage.station, damage.detail)
+                        self._held.append((start, (t, ("damage", part))))
                 return True
         return False
 
     def _held_before(self, pos: int | None, settled: bool = False) -> list:
         """Held events whose bytes start before absolute ``pos`` (all of them for None).
 
-        With ``settled`` (``pos`` is where the framer stopped), a line error on the byte right
+        With ``settled`` (``pos`` is where the framer stopped), a line-error or break mark right
         after a frame stays held: the framer may yet call that byte an idle-line byte.
         """
         if not self._held:
@@ -265,10 +272,12 @@ class _Port:
         if pos is None:
             ready, self._held = self._held, []
         else:
-            wait = pos if settled and isinstance(self.scanner, RegionScanner) and self.scanner.after_frame else -1
+            undecided = settled and isinstance(self.scanner, RegionScanner) and self.scanner.after_frame
 
             def due(h: tuple) -> bool:
-                return h[0] < pos or (h[0] == pos and not (h[0] == wait and h[1][1][1].kind in ("line_error", "break")))
+                if h[0] != pos:
+                    return h[0] < pos
+                return not (undecided and h[1][1][1].kind in ("line_error", "break"))
 
             ready = [h for h in self._held if due(h)]
             self._held = [h for h in self._held if not due(h)]
@@ -318,6 +327,7 @@ class _Port:
         stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
         while True:
             progressed = False
+            run = 2  # frames the sequential framer takes before the bulk walk tries again
             held = self._held_before(self.base + sc.settled, settled=True)
             if held:
                 pieces.append(("items", held))
@@ -351,9 +361,13 @@ class _Port:
                     sc.known_addresses.update(np.unique(addrs).tolist())
                     self.expect_response = expect
                     progressed = True
+                if starts.size < self.BULK_SHORT_RUN:
+                    # Traffic the walk cannot follow for long (an idle-line byte behind every frame):
+                    # the sequential framer goes on further than the usual two frames.
+                    run = self.SEQUENTIAL_RUN
             spans: list[Span] = []
             before = sc.pos
-            sc.scan(buf, end, False, spans, frames=2)
+            sc.scan(buf, end, False, spans, frames=run)
             if spans:
                 items: list = []
                 for span in spans:
@@ -409,7 +423,7 @@ class _Port:
             # Damaged bytes are mostly one talker's back-to-back bytes: bound them like a frame.
             t = (lo + hi) // 2 - round(len(raw) * self.char_ns)
             if span.follows is not None:
-                kind, station, detail = _describe_idle(raw, span.follows, marked)
+                kind, station, detail = self._describe_idle(raw, span.follows, marked)
             else:
                 kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
