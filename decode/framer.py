@@ -36,6 +36,7 @@ from buswitness.decode.lengths import (
     REQUEST,
     RESPONSE,
     SEARCH_CODES,
+    answer_length,
     candidate_lengths,
     plausible,
 )
@@ -334,13 +335,16 @@ class RegionScanner:
             return valid
         longer = short + 1
         keep_longer = (not self._marked(p + short) and bytes(buf[p:p + short]) != self.last_raw
-                       and self._fit(buf, p, [s for n, s in valid if n == longer])
-                       > self._fit(buf, p, [s for n, s in valid if n == short]))
+                       and self._fit(buf, p, longer, [s for n, s in valid if n == longer])
+                       > self._fit(buf, p, short, [s for n, s in valid if n == short]))
         drop = short if keep_longer else longer
         return [(n, s) for n, s in valid if n != drop]
 
-    def _fit(self, buf: bytes, p: int, shapes: list[int]) -> int:
-        """How well a frame at ``p`` of these shapes fits the frame before: 2 fits, 1 cannot tell, 0 does not."""
+    def _fit(self, buf: bytes, p: int, length: int, shapes: list[int]) -> int:
+        """How well a frame at ``p`` of this length and these shapes fits the frame before: 2 fits,
+        1 cannot tell, 0 does not. An answer fits a request to its station with its code and,
+        where the request fixes it, the answer's length (an FC03 answer carries 2 bytes per
+        register asked for)."""
         best = 0
         for shape in shapes:
             if self.one_way:
@@ -350,6 +354,9 @@ class RegionScanner:
             elif shape == RESPONSE:
                 answer = (self.last_request and buf[p] == self.last_raw[0]
                           and (buf[p + 1] & 0x7F) == (self.last_raw[1] & 0x7F))
+                if answer and not buf[p + 1] & 0x80:
+                    expected = answer_length(self.last_raw)
+                    answer = expected is None or expected == length
                 fit = 2 if answer else 0
             else:
                 fit = 1 if self.last_request else 2  # after a request, a retry or the next poll may come
