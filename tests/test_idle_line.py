@@ -452,3 +452,31 @@ def test_any_polls_with_idle_bytes_in_any_chunking_give_the_frames_alone(picks, 
     assert frames(out) == expected
     assert kinds(out)["idle_line_byte"] == len(expected)
     assert not {"stray_bytes", "line_error", "break", "crc_error"} & set(kinds(out))
+
+
+@pytest.mark.parametrize("marked", [True, False], ids=["marked", "unmarked"])
+def test_four_wire_ports_tell_the_talker_from_their_role(marked):
+    # One adapter on the master's pair, one on the stations' pair (port roles): each hears its
+    # own talker's frames and idle bytes.
+    line = wire(POLLS)
+    idle_at = [i for i, x in enumerate(line) if x[2]]
+    requests, answers, talker = [], [], 0
+    start = 0
+    for i in idle_at:
+        (requests if talker == 0 else answers).extend(line[start:i + 1])
+        talker, start = 1 - talker, i + 1
+    records = [Record(0, r.t_ns, r.data, r.flags)
+               for r in reads_to_records(adapter_reads(requests, 16.0, marked), parmrk=marked)]
+    records += [Record(1, r.t_ns, r.data, r.flags)
+                for r in reads_to_records(adapter_reads(answers, 16.0, marked), parmrk=marked)]
+    records.sort(key=lambda r: r.t_ns)
+    dec = Decoder(DecoderConfig(serial=FMT, latency_ms={0: 16.0, 1: 16.0}, port_roles={0: "master", 1: "slaves"}))
+    out: list = []
+    for r in records:
+        out += dec.feed(r.port, r.t_ns, r.data, r.flags)
+    out += dec.flush_events()
+    txs = [x for x in out if isinstance(x, Transaction)]
+    assert [t.outcome for t in txs] == ["ok"] * 44
+    idle = [x for x in out if isinstance(x, Damage)]
+    assert Counter(x.kind for x in idle) == Counter({"idle_line_byte": 88})
+    assert Counter(x.station for x in idle) == Counter({-1: 44, 1: 11, 2: 11, 3: 11, 17: 11})
