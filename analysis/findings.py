@@ -47,6 +47,7 @@ RULES: dict[str, Rule] = {
     "station-errors": line.station_errors,
     "errors-bus-wide": line.errors_bus_wide,
     "idle-stray-bytes": line.idle_stray_bytes,
+    "line-not-held-idle": line.line_not_held_idle,
     "turnaround-short": timing.turnaround_short,
     "possible-short-turnaround": timing.possible_short_turnaround,
     "gap-in-frame": timing.gap_in_frame,
@@ -69,6 +70,7 @@ SUPERSEDES: dict[str, frozenset[str]] = {
     "silent-period": frozenset({"missed-polls"}),
     "errors-clustered": frozenset({"errors-bus-wide", "idle-stray-bytes", "sniffer-format"}),
     "far-station-errors": frozenset({"station-errors", "errors-bus-wide", "cable-length"}),
+    "line-not-held-idle": frozenset({"idle-stray-bytes"}),
 }
 
 

@@ -232,8 +232,10 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
     """How many leading candidates are sure frames: CRC good, and no longer split equally possible.
 
     A frame followed by 0x00 stays CRC-valid when that byte is added (the CRC of 0x00 from a
-    zero state is zero); where the other direction's rule allows exactly that length, the
-    candidate is ambiguous and left to the sequential framer.
+    zero state is zero); where the other direction's rule allows exactly one byte more, or one
+    byte less while the candidate ends in 0x00, the candidate is ambiguous (a frame and the
+    idle-line byte behind it, or one frame whose CRC ends in 0x00) and left to the sequential
+    framer, which weighs the context.
     """
     n = starts.shape[0]
     if n == 0:
@@ -252,6 +254,9 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
     if longer.any():
         nxt = arr[np.minimum(ends, arr.shape[0] - 1)]
         bad |= longer & (nxt == 0)
+    shorter = (alts == lens - 1)
+    if shorter.any():
+        bad |= shorter & (arr[ends - 1] == 0)
     first = np.flatnonzero(bad)
     return int(first[0]) if first.size else n
 
@@ -335,6 +340,7 @@ def split_spans(payload: bytes | np.ndarray) -> SpanTable:
                 scanner.pos = int(s[-1] + n[-1])
                 scanner.anchored = True
                 scanner.known_addresses.update(np.unique(arr[s]).tolist())
+                scanner.note_frame(buf[int(s[-1]):scanner.pos], int(sh[-1]), request=expect)
         before = scanner.pos
         out: list[Span] = []
         scanner.scan(buf, end, True, out, frames=2)

@@ -130,6 +130,12 @@ def _describe_damage(raw: bytes, at_boundary: bool) -> tuple[str, int, str]:
 class _Port:
     """One port's stream: unsettled bytes, the framer's state and the byte-time model."""
 
+    #: When the bulk walk yields fewer frames than this, the sequential framer takes
+    #: SEQUENTIAL_RUN frames before the walk is tried again (numpy's fixed cost per call
+    #: outweighs runs of one frame, as behind every idle-line byte).
+    BULK_SHORT_RUN = 2
+    SEQUENTIAL_RUN = 64
+
     def __init__(self, port: int, cfg: DecoderConfig) -> None:
         self.port = port
         fmt = cfg.serial
@@ -143,6 +149,8 @@ class _Port:
         self.untimed = cfg.untimed
         self.role = cfg.role_for(port)
         self.one_way = REQUEST if self.role == "master" else RESPONSE if self.role == "slaves" else 0
+        if isinstance(self.scanner, RegionScanner):
+            self.scanner.one_way = self.one_way
         self.buf = bytearray()
         self.base = 0  # absolute stream position of buf[0]
         # record starts (absolute positions, increasing) with a silence over t1.5 before them
@@ -153,9 +161,28 @@ class _Port:
         self._marks: dict[str, list] = {}
         self._held: list[tuple[int, tuple]] = []
         self._merge_ns = cfg.latency_for(port) * 1e6 + cfg.host_delay_ms * 1e6 + 4 * self.char_ns
+        self._last_end = (0, 0)  # end interval of the last frame handed on (for a break right behind it)
+
+    @staticmethod
+    def _describe_idle(raw: bytes, follows: tuple[int, bool], marked: bool) -> tuple[str, int, str]:
+        """Kind, talker and a sentence for a byte a driver left on a line nobody holds idle.
+
+        The talker is the station whose answer the byte follows, or -1 for the master (it has no
+        address) when the byte follows a request.
+        """
+        address, request = follows
+        after = f"the master's frame to station {address}" if request else f"station {address}'s answer"
+        how = ", marked bad by the UART" if marked else ""
+        if marked and not raw[0]:
+            how = ", marked bad by the UART (PARMRK reports it as a break: both have one escape)"
+        return "idle_line_byte", -1 if request else address, (
+            f"byte 0x{raw[0]:02X}{how} right after {after}: the line floated when the driver let go "
+            f"(not part of the frame)")
 
     def add(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
         """Take one record; append (sort key, item) pairs for what it completes to ``out``."""
+        if flags & FLAG_BREAK and isinstance(self.scanner, RegionScanner):
+            self.scanner.add_break(len(self.buf))
         if flags & _CUT_FLAGS:
             self._scan(False, out)
             self.scanner.add_boundary(len(self.buf))
@@ -167,6 +194,9 @@ class _Port:
             if silence > self.t15_ns:
                 self.silence_at.append(start)
                 self.silence_ns.append(silence)
+            if flags & FLAG_LINE_ERROR and isinstance(self.scanner, RegionScanner):
+                for k in range(len(self.buf), len(self.buf) + len(data)):
+                    self.scanner.add_mark(k)
             self.buf.extend(data)
         self._scan(False, out)
 
@@ -203,16 +233,58 @@ class _Port:
         t = int(t_first - self._merge_ns / 2)
         self._held.append((pos, (t, ("damage", Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind])))))
 
-    def _held_before(self, pos: int | None) -> list:
-        """Held events whose bytes start before absolute ``pos`` (all of them for None)."""
+    def _unmark(self, pos: int, kind: str) -> bool:
+        """Take the byte at absolute ``pos`` out of the ``kind`` event (line_error, break) holding it;
+        True if there was one.
+
+        An idle-line byte is its own event: the mark the UART gave it is not a line error, and
+        the break PARMRK reports for a marked 0x00 is no break.
+        """
+        def holds(first: int, raw: bytes) -> bool:
+            return first == pos if kind == "break" else first <= pos < first + len(raw)
+
+        run = self._marks.get(kind)
+        if run is not None and holds(run[3], run[2]):
+            self._close_mark(kind)
+        for entry in self._held:
+            first, (t, (_tag, damage)) = entry
+            if damage.kind == kind and holds(first, damage.raw):
+                self._held.remove(entry)
+                k = pos - first
+                for start, raw in ((first, damage.raw[:k]), (pos + 1, damage.raw[k + 1:])):
+                    if raw:
+                        part = Damage(damage.kind, damage.port, damage.t_ns, raw, damage.station, damage.detail)
+                        self._held.append((start, (t, ("damage", part))))
+                return True
+        return False
+
+    def _held_before(self, pos: int | None, settled: bool = False) -> list:
+        """Held events whose bytes start before absolute ``pos`` (all of them for None).
+
+        With ``settled`` (``pos`` is where the framer stopped), a line-error or break mark right
+        after a frame stays held: the framer may yet call that byte an idle-line byte.
+        """
         if not self._held:
             return []
         if pos is None:
             ready, self._held = self._held, []
         else:
-            ready = [h for h in self._held if h[0] <= pos]
-            self._held = [h for h in self._held if h[0] > pos]
+            undecided = settled and isinstance(self.scanner, RegionScanner) and self.scanner.after_frame
+
+            def due(h: tuple) -> bool:
+                if h[0] != pos:
+                    return h[0] < pos
+                return not (undecided and h[1][1][1].kind in ("line_error", "break"))
+
+            ready = [h for h in self._held if due(h)]
+            self._held = [h for h in self._held if not due(h)]
         return [item for _pos, item in sorted(ready, key=lambda h: h[0])]
+
+    def _span_items(self, span: Span) -> list:
+        """A span as queue items, with the held events that come before it."""
+        marked = span.follows is not None and self._unmark(self.base + span.start,
+                                                           "break" if span.start == span.end else "line_error")
+        return self._held_before(self.base + span.start) + [self._item(span, marked)]
 
     def has_marks(self) -> bool:
         return bool(self._marks or self._held)
@@ -252,7 +324,8 @@ class _Port:
         stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
         while True:
             progressed = False
-            held = self._held_before(self.base + sc.settled)
+            run = 2  # frames the sequential framer takes before the bulk walk tries again
+            held = self._held_before(self.base + sc.settled, settled=True)
             if held:
                 pieces.append(("items", held))
             if sc.junk_start is None:
@@ -277,20 +350,25 @@ class _Port:
                     addrs = arr[starts]
                     first = starts + self.base
                     lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
+                    self._last_end = (int(lo[-1]), int(hi[-1]))
                     pieces.append(("bulk", lo, hi, lens, shapes, addrs, arr[starts + 1], raws))
                     sc.pos = ends[-1]
                     sc.anchored = True
+                    sc.note_frame(raws[-1], int(shapes[-1]), request=expect)
                     sc.known_addresses.update(np.unique(addrs).tolist())
                     self.expect_response = expect
                     progressed = True
+                if starts.size < self.BULK_SHORT_RUN:
+                    # Traffic the walk cannot follow for long (an idle-line byte behind every frame):
+                    # the sequential framer goes on further than the usual two frames.
+                    run = self.SEQUENTIAL_RUN
             spans: list[Span] = []
             before = sc.pos
-            sc.scan(buf, end, False, spans, frames=2)
+            sc.scan(buf, end, False, spans, frames=run)
             if spans:
                 items: list = []
                 for span in spans:
-                    items.extend(self._held_before(self.base + span.start))
-                    items.append(self._item(span))
+                    items.extend(self._span_items(span))
                 pieces.append(("items", items))
                 for span in reversed(spans):
                     if span.shape:
@@ -315,9 +393,8 @@ class _Port:
         spans: list[Span] = []
         self.scanner.scan(self.buf, len(self.buf), final, spans)
         for span in spans:
-            out.extend(self._held_before(self.base + span.start))
-            out.append(self._item(span))
-        out.extend(self._held_before(None if final else self.base + self.scanner.settled))
+            out.extend(self._span_items(span))
+        out.extend(self._held_before(None if final else self.base + self.scanner.settled, settled=True))
         self._trim()
 
     def _trim(self) -> None:
@@ -331,15 +408,23 @@ class _Port:
             if gone:
                 del self.silence_at[:gone], self.silence_ns[:gone]
 
-    def _item(self, span: Span) -> tuple:
+    def _item(self, span: Span, marked: bool = False) -> tuple:
         a, b = self.base + span.start, self.base + span.end
         raw = bytes(self.buf[span.start:span.end])
-        lo, hi = self.timeline.end_bounds(a, b - 1)
+        if a == b:  # a break mark right behind a frame: the marked 0x00 one character after its last byte
+            raw = b"\x00"
+            lo, hi = (x + round(self.char_ns) for x in self._last_end)
+        else:
+            lo, hi = self.timeline.end_bounds(a, b - 1)
         if span.shape == JUNK:
             # Damaged bytes are mostly one talker's back-to-back bytes: bound them like a frame.
             t = (lo + hi) // 2 - round(len(raw) * self.char_ns)
-            kind, station, detail = _describe_damage(raw, span.at_boundary)
+            if span.follows is not None:
+                kind, station, detail = self._describe_idle(raw, span.follows, marked)
+            else:
+                kind, station, detail = _describe_damage(raw, span.at_boundary)
             return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
+        self._last_end = (lo, hi)
         gaps = self.silence_ns[bisect_right(self.silence_at, a):bisect_left(self.silence_at, b)]
         # Sort key among ports: a master's frame by its earliest start, a station's by its latest,
         # so an answer never sorts before the request it answers, however coarse the timestamps.

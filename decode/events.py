@@ -13,7 +13,7 @@ from dataclasses import dataclass
 #: Damage and notable-traffic kinds (docs/tables.md, "events").
 EVENT_KINDS = ("crc_error", "truncated", "gap_in_frame", "turnaround_short", "line_error", "break",
                "stray_bytes", "collision", "bytes_lost", "port_gap", "unexpected_responder",
-               "orphan_response", "timing_conflict")
+               "orphan_response", "timing_conflict", "idle_line_byte")
 
 #: Transaction outcomes (docs/tables.md).
 OUTCOMES = ("ok", "exception", "timeout", "late", "corrupt", "broadcast", "ambiguous")

@@ -12,6 +12,13 @@ A frame found in the middle of damaged bytes is accepted at once when its addres
 already seen in good frames; otherwise it must be *supported* (followed by another valid
 frame or by a certain silence) or have fields within the specification's limits. That keeps
 random noise from inventing stations.
+
+*Idle-line bytes.* On a line without fail-safe bias each driver that switches off leaves one
+byte behind its frame (FIELD-NOTES 21): often 0x00 after the master, 0xFE after a station,
+usually marked with a framing error. CRC-16/MODBUS has residue zero, so "frame + 00" still
+checks: the length rules choose the frame, never "the CRC is still zero one byte later". Such a
+byte right after a frame end, marked or one of 0x00/0xFE/0xFF, followed by a frame or a
+silence, becomes a span of its own (``Span.follows`` names the talker it follows).
 """
 
 from __future__ import annotations
@@ -26,7 +33,10 @@ from buswitness.decode.lengths import (
     MAX_FRAME,
     MIN_FRAME,
     PUBLIC_CODES,
+    REQUEST,
+    RESPONSE,
     SEARCH_CODES,
+    answer_length,
     candidate_lengths,
     plausible,
 )
@@ -45,16 +55,23 @@ class Span:
     shape: int
     at_boundary: bool = False  # damaged run that ends at a certain silence (or the end of input)
     crosses: bool = False  # frame with a certain silence inside it
+    #: An idle-line byte (shape ``JUNK``): the address of the frame it follows and whether that
+    #: frame was taken as a request (the master let go of the line) or as an answer.
+    follows: tuple[int, bool] | None = None
 
     @property
     def kind(self) -> str:
-        """``frame`` or ``damage``."""
-        return "frame" if self.shape else "damage"
+        """``frame``, ``idle`` (a byte a driver left behind its frame) or ``damage``."""
+        return "frame" if self.shape else "idle" if self.follows is not None else "damage"
 
 
 def _valid(buf: bytes, p: int, n: int) -> bool:
     return crc16_modbus(buf[p:p + n]) == 0
 
+
+#: Values a floating line leaves behind a frame when nothing marks them (FIELD-NOTES 21:
+#: 0x00 after the master, 0xFE after a station; 0xFF is seen too).
+IDLE_VALUES = frozenset({0x00, 0xFE, 0xFF})
 
 _TABLE = CRC_TABLE.tolist()
 _INVERSE = {v >> 8: i for i, v in enumerate(_TABLE)}  # the table's high bytes are all distinct
@@ -84,6 +101,14 @@ class RegionScanner:
         self._search_at = -1  # position, bytes done and CRC register of a CRC search waiting for bytes
         self._search_len = 0
         self._search_crc = 0xFFFF
+        self.marks: list[int] = []  # positions of bytes the UART marked bad (parity/framing error)
+        self.breaks: list[int] = []  # positions before which a break (or a marked 0x00) was received
+        self.one_way = 0  # REQUEST or RESPONSE on a port that hears one direction only
+        # The frame before ``pos``: its bytes, whether it was taken as a request, and whether
+        # ``pos`` is right at its end (where a driver lets go of the line).
+        self.last_raw = b""
+        self.last_request: bool | None = None
+        self.after_frame = False
 
     def shift(self, n: int) -> None:
         self.pos -= n
@@ -92,6 +117,40 @@ class RegionScanner:
         if self.junk_start is not None:
             self.junk_start -= n
         self.boundaries = [b - n for b in self.boundaries if b - n > 0]
+        if self.marks:
+            self.marks = [m - n for m in self.marks if m - n >= 0]
+        if self.breaks:
+            self.breaks = [b - n for b in self.breaks if b - n >= 0]
+
+    def add_mark(self, at: int) -> None:
+        """``buf[at]`` arrived marked bad by the UART (a parity or framing error)."""
+        if not self.marks or at > self.marks[-1]:
+            self.marks.append(at)
+
+    def add_break(self, at: int) -> None:
+        """A break, or a 0x00 with a framing error (PARMRK tells them not apart), came before ``buf[at]``."""
+        if not self.breaks or at > self.breaks[-1]:
+            self.breaks.append(at)
+
+    def note_frame(self, raw: bytes, shape: int, request: bool | None = None) -> bool:
+        """Remember the frame that ends at ``pos``; return whether it is taken as a request.
+
+        ``request`` is the caller's own judgement (the bulk walk's); without it the shape
+        decides, and an echo-shaped frame is an answer when it repeats the address and code of
+        a request just before it.
+        """
+        if request is None:
+            if self.one_way:
+                request = self.one_way != RESPONSE
+            elif shape != EITHER:
+                request = shape == REQUEST
+            else:
+                request = not (self.last_request and raw[0] == self.last_raw[0]
+                               and (raw[1] & 0x7F) == (self.last_raw[1] & 0x7F))
+        self.last_raw = bytes(raw)
+        self.last_request = request
+        self.after_frame = True
+        return request
 
     @property
     def settled(self) -> int:
@@ -118,12 +177,26 @@ class RegionScanner:
         bounds = self.boundaries
         bi = bisect_left(bounds, self.pos)
         while self.pos < end:
+            if self.breaks:
+                self._break_after_frame(out)
             while bi < len(bounds) and bounds[bi] < self.pos:
                 bi += 1
             if bi < len(bounds) and bounds[bi] == self.pos:
                 self._close_junk(out, True)
                 self.anchored = True
+                self.after_frame = False  # a byte after a certain silence is no driver letting go
                 bi += 1
+            if self.after_frame:
+                idle = self._idle(buf, self.pos, end, final)
+                if idle is None:
+                    return
+                if idle:
+                    p = self.pos
+                    out.append(Span(p, p + 1, JUNK, follows=(self.last_raw[0], bool(self.last_request))))
+                    self.pos += 1
+                    self.anchored = True
+                    self.after_frame = False
+                    continue
             res = self._match(buf, self.pos, end, final)
             if res == _NEED:
                 return
@@ -133,6 +206,7 @@ class RegionScanner:
                 crosses = bi < len(bounds) and bounds[bi] < self.pos + length
                 out.append(Span(self.pos, self.pos + length, shape, crosses=crosses))
                 self.known_addresses.add(buf[self.pos])
+                self.note_frame(buf[self.pos:self.pos + length], shape)
                 self.pos += length
                 self.anchored = True
                 found += 1
@@ -143,11 +217,52 @@ class RegionScanner:
                 self.junk_start = self.pos
             self.pos += 1
             self.anchored = False
+            self.after_frame = False
             if self.pos - self.junk_start >= MAX_FRAME:
                 self._close_junk(out, False)
+        if self.breaks:
+            self._break_after_frame(out)
         if final:
             self._close_junk(out, True)
             self.anchored = True
+
+    def _break_after_frame(self, out: list[Span]) -> None:
+        """A break mark right at a frame's end is the idle-line 0x00 of a driver letting go.
+
+        PARMRK gives a 0x00 with a framing error and a break the same escape (``FF 00 00``,
+        termios(3)), so the byte never reaches the buffer: it becomes an empty idle span.
+        """
+        i = bisect_left(self.breaks, self.pos)
+        at_end = i < len(self.breaks) and self.breaks[i] == self.pos
+        if at_end and self.after_frame and self.junk_start is None:
+            out.append(Span(self.pos, self.pos, JUNK, follows=(self.last_raw[0], bool(self.last_request))))
+            self.after_frame = False
+            i += 1
+        del self.breaks[:i]
+
+    def _marked(self, q: int) -> bool:
+        i = bisect_left(self.marks, q)
+        return i < len(self.marks) and self.marks[i] == q
+
+    def _idle_byte(self, buf: bytes, q: int) -> bool:
+        """Could ``buf[q]`` be a byte a floating line left (marked bad, or 0x00/0xFE/0xFF)?"""
+        return buf[q] in IDLE_VALUES or self._marked(q)
+
+    def _idle(self, buf: bytes, p: int, end: int, final: bool) -> bool | None:
+        """Is ``buf[p]``, right at a frame's end, an idle-line byte? None: not known yet.
+
+        It is when a frame by rule or a certain silence follows it, and it does not itself
+        start a frame by rule (a broadcast begins with 0x00).
+        """
+        if not self._idle_byte(buf, p):
+            return False
+        sup = self._follows(buf, p + 1, end, final)
+        if not sup:
+            return sup
+        for length, _shape in candidate_lengths(buf, p, end) if end - p >= 2 else ():
+            if length is not None and MIN_FRAME <= length <= min(MAX_FRAME, end - p) and _valid(buf, p, length):
+                return False
+        return True
 
     def _close_junk(self, out: list[Span], at_boundary: bool) -> None:
         if self.junk_start is not None and self.junk_start < self.pos:
@@ -190,6 +305,7 @@ class RegionScanner:
         byte shorter (the CRC of 0x00 from a zero state stays zero), and request and response
         rules may coincide. The split that explains the most bytes wins.
         """
+        valid = self._unglue(buf, p, valid)
         trusted = self.anchored or buf[p] in self.known_addresses
         undecided = False
         for length, shape in valid:
@@ -203,6 +319,49 @@ class RegionScanner:
         if not trusted and not plausible(buf, p, length, shape):
             return _NO
         return self._pick(valid, length, shape)
+
+    def _unglue(self, buf: bytes, p: int, valid: list[tuple[int, int]]) -> list[tuple[int, int]]:
+        """Between CRC-valid lengths n and n + 1 (byte n is then 0x00), keep the one the rules and context give.
+
+        Residue zero makes "frame + 00" check whenever a rule allows n + 1, and a floating line
+        puts a 0x00 behind most master frames. The shorter frame stands, with the 0x00 apart,
+        unless that byte is unmarked, the shorter frame does not repeat the frame before, and
+        only the longer one fits what came before (the answer to the request just seen, or a
+        request after an answer): a real frame whose CRC ends in 0x00 keeps its last byte.
+        """
+        lengths = {n for n, _ in valid}
+        short = next((n for n in sorted(lengths) if n + 1 in lengths), None)
+        if short is None:
+            return valid
+        longer = short + 1
+        keep_longer = (not self._marked(p + short) and bytes(buf[p:p + short]) != self.last_raw
+                       and self._fit(buf, p, longer, [s for n, s in valid if n == longer])
+                       > self._fit(buf, p, short, [s for n, s in valid if n == short]))
+        drop = short if keep_longer else longer
+        return [(n, s) for n, s in valid if n != drop]
+
+    def _fit(self, buf: bytes, p: int, length: int, shapes: list[int]) -> int:
+        """How well a frame at ``p`` of this length and these shapes fits the frame before: 2 fits,
+        1 cannot tell, 0 does not. An answer fits a request to its station with its code and,
+        where the request fixes it, the answer's length (an FC03 answer carries 2 bytes per
+        register asked for)."""
+        best = 0
+        for shape in shapes:
+            if self.one_way:
+                fit = 2 if shape in (self.one_way, EITHER) else 0
+            elif self.last_request is None or shape == EITHER:
+                fit = 1
+            elif shape == RESPONSE:
+                answer = (self.last_request and buf[p] == self.last_raw[0]
+                          and (buf[p + 1] & 0x7F) == (self.last_raw[1] & 0x7F))
+                if answer and not buf[p + 1] & 0x80:
+                    expected = answer_length(self.last_raw)
+                    answer = expected is None or expected == length
+                fit = 2 if answer else 0
+            else:
+                fit = 1 if self.last_request else 2  # after a request, a retry or the next poll may come
+            best = max(best, fit)
+        return best
 
     @staticmethod
     def _pick(valid: list[tuple[int, int]], length: int, shape: int) -> int:
@@ -241,6 +400,17 @@ class RegionScanner:
         return _NO
 
     def _support(self, buf: bytes, q: int, end: int, final: bool) -> bool | None:
+        """Does a valid frame (by rule) or a certain silence follow at ``q``, directly or after
+        one idle-line byte? None: not known yet."""
+        direct = self._follows(buf, q, end, final)
+        if direct or q >= end or not self._idle_byte(buf, q):
+            return direct
+        after = self._follows(buf, q + 1, end, final)
+        if after:
+            return True
+        return None if direct is None or after is None else False
+
+    def _follows(self, buf: bytes, q: int, end: int, final: bool) -> bool | None:
         """Does a valid frame (by rule) or a certain silence follow at ``q``? None: not known yet."""
         if q >= end:
             return True if final else None

@@ -151,6 +151,33 @@ def vector_lengths(buf: np.ndarray, pos: np.ndarray) -> tuple[np.ndarray, np.nda
     return req, rsp
 
 
+def answer_length(request: bytes) -> int | None:
+    """Length of the normal answer a request calls for, where its fields fix it (MAP V1.1b3 section 6).
+
+    None where the answer's length depends on the device (report server ID, FIFO, file records,
+    diagnostics other than sub-function 00) or the request is not one the table knows.
+    """
+    if len(request) < 4:
+        return None
+    fc = request[1]
+    if fc in (0x05, 0x06, 0x0F, 0x10, 0x0B):
+        return 8
+    if fc == 0x07:
+        return 5
+    if fc == 0x16:
+        return 10
+    if fc == 0x08:
+        return len(request) if request[2:4] == b"\x00\x00" else None  # "return query data" echoes
+    if len(request) < 8:
+        return None
+    q = request[4] << 8 | request[5]
+    if fc in (0x01, 0x02):
+        return 5 + (q + 7) // 8
+    if fc in (0x03, 0x04, 0x17):
+        return 5 + 2 * q
+    return None
+
+
 def plausible(buf: bytes, p: int, length: int, shape: int) -> bool:
     """Do the fields of the CRC-valid frame ``buf[p:p+length]`` make sense (MAP V1.1b3 limits)?
 

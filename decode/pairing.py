@@ -268,7 +268,8 @@ class Pairing:
 
         Damaged bytes shaped like station M's answer (its address, then the function of a
         request of M's that the master already gave up on) are M's late answer, hit: in order,
-        they answer M's oldest open request, which closes ``corrupt``; where the master awaited
+        they answer M's oldest open request, which closes (a ``timeout`` for the master, who had
+        given up; the damage is its own event) so that M's next answer is not credited to it; where the master awaited
         another answer meanwhile, both answers collided (see :meth:`collisions`). Other damage
         while the master awaits an answer is that answer, probably hit.
         """
@@ -285,7 +286,7 @@ class Pairing:
             st.open.remove(late)
             while st.open and st.open[0].moved_on and st.open[0].req.t_end_ns < late.req.t_end_ns:
                 self._close(st.open.popleft())
-            late.damage = damage
+            # the master had given up on it: still a timeout for the master, now closed (in order)
             self._close(late)
             if w is not None and w is not late and w.damage is None and self._collided:
                 w.damage = damage  # the awaited answer was hit by the late one

@@ -274,6 +274,39 @@ def test_stray_bytes_between_intact_frames_point_at_bias():
     assert line.idle_stray_bytes(result_of(txs, stray + crcs), TH) == []
 
 
+def _idle_after(txs, every: int = 1):
+    """An idle-line byte behind every ``every``-th request (the master's, station -1) and answer."""
+    out = []
+    for t in txs[::every]:
+        out.append((t.t_s + 0.0006, "idle_line_byte", -1, b"\x00"))
+        out.append((t.t_s + 0.0006 + (t.response_ms + 5.0) / 1e3, "idle_line_byte", t.station, b"\xfe"))
+    return out
+
+
+def test_bytes_behind_most_frames_mean_the_line_is_not_held_idle():
+    txs = polls(120)  # 720 polls, 1440 frames
+    r = result_of(txs, _idle_after(txs))
+    (f,) = line.line_not_held_idle(r, TH)
+    assert f.severity == "warning" and "not held idle" in f.statement
+    assert "fail-safe bias / termination" in f.statement and f.caution == WIRING_CAUTION
+    assert f.evidence["by_talker"] == {"master": 720, "1": 240, "2": 240, "3": 240}
+    assert "MSL §3.4.6" in f.causes[0].cause
+    assert {"line-not-held-idle"} <= set(rules_of(evaluate(r)))
+    # the edge: half the frames (IDLE_BYTES_PER_FRAME) and no fewer
+    assert line.line_not_held_idle(result_of(txs, _idle_after(txs, 2)), TH)  # 0.5 per frame
+    assert line.line_not_held_idle(result_of(txs, _idle_after(txs, 3)), TH) == []  # 0.33 per frame
+
+
+def test_idle_line_bytes_are_no_evidence_of_the_sniffers_format_nor_damage():
+    txs = polls(120)
+    found = rules_of(evaluate(result_of(txs, _idle_after(txs))))
+    assert "sniffer-format" not in found and "unreadable-line" not in found and "errors-bus-wide" not in found
+    # real marks inside frames still make the format finding, beside the bias one
+    marks = [(t.t_s + 0.001, "line_error", -1, b"\x03") for t in txs[::5]]
+    found = rules_of(evaluate(result_of(txs, _idle_after(txs) + marks)))
+    assert "sniffer-format" in found and "line-not-held-idle" in found
+
+
 def test_one_address_garbled_with_framing_errors_is_a_duplicate_address():
     fate = _corrupt_every({3: 2})  # half of station 3's answers
     fights = [(0.1 + 1.0 * i, "line_error", 3, b"\x03\xff") for i in range(150)]
@@ -387,7 +420,7 @@ def test_clean_traffic_gives_nothing_above_information():
 def test_every_wiring_finding_carries_the_caution():
     wiring = {"unreadable-line", "no-answers", "never-present", "silent-period", "duplicate-address",
               "errors-clustered", "far-station-errors", "station-errors", "errors-bus-wide", "idle-stray-bytes",
-              "missed-polls", "device-count", "cable-length"}
+              "line-not-held-idle", "missed-polls", "device-count", "cable-length"}
     assert "not a measurement of the wire" in WIRING_CAUTION
     cases = [result_of(polls(300, fate=_corrupt_every({1: 50, 2: 50, 3: 50}))),
              result_of(polls(120, fate=lambda st, k, t: ("timeout", float("nan")))),

@@ -1,11 +1,13 @@
 """Damage on the line: unreadable to the sniffer, bus-wide, rising along the cable, at one drop,
-in bursts, or as stray bytes at idle."""
+in bursts, or as stray bytes at idle; and a line nobody holds idle between frames."""
 
 from __future__ import annotations
 
 from itertools import pairwise
 from statistics import median
 
+import numpy as np
+from buswitness.analysis.figures import EVENT_KINDS
 from buswitness.analysis.finding import WIRING_CAUTION, Cause, Finding
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.analysis.rules.common import (
@@ -75,7 +77,11 @@ def unreadable_line(result: AnalysisResult, th: Thresholds) -> list[Finding]:
 
 
 def sniffer_format(result: AnalysisResult, th: Thresholds) -> list[Finding]:
-    """Frames with good CRCs but parity or framing errors throughout: the sniffer's character format is wrong."""
+    """Frames with good CRCs but parity or framing errors throughout: the sniffer's character format is wrong.
+
+    Reads ``line_error`` events only: a marked byte a driver left behind its frame is an
+    ``idle_line_byte`` (a line nobody holds idle), not a sign of the wrong format.
+    """
     ev, frames = result.bus.events, result.bus.frames
     errors = ev.get("line_error", 0)
     damaged = ev.get("crc_error", 0) + ev.get("truncated", 0)
@@ -359,4 +365,53 @@ def idle_stray_bytes(result: AnalysisResult, th: Thresholds) -> list[Finding]:
                       "terminators at the trunk's ends."),
                 Cause("A station's driver switches on or off with a glitch just before or after its frames.",
                       "If the stray bytes sit right before one station's answers, look at that device.")],
+        caution=WIRING_CAUTION)]
+
+
+IDLE_KIND = "idle_line_byte"
+
+
+def idle_bytes_by_talker(result: AnalysisResult) -> dict[str, int]:
+    """Idle-line bytes per talker: ``master`` (bytes after its requests carry no station) and each station."""
+    col = EVENT_KINDS.index(IDLE_KIND)
+    counts = result.acc.events[:, col]
+    out = {"master": int(counts[0])} if counts[0] else {}
+    for row in np.flatnonzero(counts[1:]).tolist():
+        out[str(row)] = int(counts[row + 1])
+    return out
+
+
+def line_not_held_idle(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """A byte left behind most frames as each driver lets go: nothing holds the idle line (bias, termination)."""
+    idle = result.bus.events.get(IDLE_KIND, 0)
+    frames = result.bus.frames
+    per_frame = share(idle, frames)
+    if frames < th.min_requests or idle < th.min_events or per_frame < th.idle_bytes_per_frame:
+        return []
+    talkers = idle_bytes_by_talker(result)
+    labels = {str(s.address): s.label for s in result.stations}
+    named = ", ".join(f"{'the master' if k == 'master' else labels.get(k, f'station {k}')} {n}"
+                      for k, n in sorted(talkers.items(), key=lambda kv: -kv[1])[:6])
+    t0, t1 = capture_span(result)
+    return [Finding(
+        rule="line-not-held-idle", severity="warning", score=min(1.0, per_frame), t_start_s=t0, t_end_s=t1,
+        statement=(f"Line not held idle: {idle} single bytes appeared right behind frames ({per_frame:.2f} per "
+                   f"frame, {frames} frames; after {named}) as each driver let go of the line: missing or weak "
+                   f"fail-safe bias / termination. The frames themselves are intact; these bytes are counted "
+                   f"apart and are not damage, and they do not mean the sniffer's format is wrong."),
+        evidence={"idle_line_bytes": idle, "frames": frames, "per_frame": round(per_frame, 4),
+                  "by_talker": talkers, "line_errors": result.bus.events.get("line_error", 0),
+                  "damaged_frames": result.bus.events.get("crc_error", 0) + result.bus.events.get("truncated", 0)},
+        causes=[Cause("No fail-safe bias on the line, or too weak: when a driver switches off, nothing holds the "
+                      "bus outside the receivers' +/-200 mV undefined band and they read the float as a byte, "
+                      "often with a framing error (MSL §3.4.6; NSC AN-847).",
+                      "With the bus idle and powered, measure A-B: it should be well over 200 mV. MSL §3.4.6 asks "
+                      "for a pull-up on D1 and a pull-down on D0 of 450-650 ohm at one point of the line only."),
+                Cause("Termination without bias, or more terminators than the two at the trunk's ends: the "
+                      "terminators pull the idle line to 0 V difference (MSL §3.4.5, §3.4.6; NSC AN-847).",
+                      "Find every terminator and bias switch along the line; keep two terminators at the trunk's "
+                      "ends and one bias point."),
+                Cause("One device's driver switches off with a glitch (when the bytes follow only that talker).",
+                      "Compare the counts per talker in the evidence: bytes after one talker only point at that "
+                      "device.")],
         caution=WIRING_CAUTION)]

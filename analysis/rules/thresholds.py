@@ -61,7 +61,8 @@ POLARITY_BREAK_SHARE = 0.05
 # -- the sniffer's character format ----------------------------------------------------------------
 #: Parity or framing errors per valid frame that show the sniffer's character format differs from
 #: the bus's: the bytes (and CRCs) come through, the parity or stop bit does not (common practice:
-#: noise that marks one frame in ten also breaks CRCs).
+#: noise that marks one frame in ten also breaks CRCs). Only ``line_error`` events count: a marked
+#: byte a driver left behind its frame is an idle-line byte, which says nothing of the format.
 FORMAT_LINE_ERRORS_PER_FRAME = 0.1
 #: ... while no more than this share of frames fails its CRC (common practice).
 FORMAT_MAX_DAMAGED_SHARE = 0.02
@@ -105,6 +106,15 @@ BIAS_STRAY_SHARE = 0.005
 #: Stray bytes must outnumber damaged frames by this factor: the frames themselves are intact,
 #: only the silences between them are not (common practice).
 BIAS_STRAY_OVER_DAMAGE = 2.0
+
+# -- a line nobody holds idle (idle-line bytes) ------------------------------------------------------
+#: Idle-line bytes (one byte a driver leaves behind its frame as it lets go of a floating line) per
+#: valid frame that show the line is not held idle. Without fail-safe bias every driver that
+#: switches off leaves such a byte, so an unbiased line shows one behind nearly every frame
+#: (FIELD-NOTES 21; MSL §3.4.6 and NSC AN-847 on why an idle line needs bias); a biased line
+#: shows them only where noise happens to hit a silence. "Most frames" is the edge (common
+#: practice: marginal bias that holds the line on some turnarounds and not on others still shows).
+IDLE_BYTES_PER_FRAME = 0.5
 
 # -- two stations on one address --------------------------------------------------------------------
 #: Share of one station's answers damaged that looks like two talkers (common practice: noise or a
@@ -185,6 +195,7 @@ class Thresholds:
     cluster_max_minute_share: float = CLUSTER_MAX_MINUTE_SHARE
     bias_stray_share: float = BIAS_STRAY_SHARE
     bias_stray_over_damage: float = BIAS_STRAY_OVER_DAMAGE
+    idle_bytes_per_frame: float = IDLE_BYTES_PER_FRAME
     duplicate_damaged_share: float = DUPLICATE_DAMAGED_SHARE
     duplicate_others_max: float = DUPLICATE_OTHERS_MAX
     duplicate_overlap_per_answer: float = DUPLICATE_OVERLAP_PER_ANSWER
