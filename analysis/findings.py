@@ -49,6 +49,7 @@ RULES: dict[str, Rule] = {
     "possible-short-turnaround": timing.possible_short_turnaround,
     "gap-in-frame": timing.gap_in_frame,
     "timing-not-observable": timing.timing_not_observable,
+    "character-pitch": timing.character_pitch,
     "exceptions": exception_codes.exceptions,
     "device-count": layout.device_count,
     "cable-length": layout.cable_length,
