@@ -7,9 +7,10 @@ number of minutes, not on the capture's length.
 
 from __future__ import annotations
 
+import copy
 import sys
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 import numpy as np
@@ -141,20 +142,34 @@ def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list 
 
 
 def _sample_records(source, limit: int) -> dict[int, tuple[np.ndarray, np.ndarray]]:
-    """Read times and sizes of the first ``limit`` records with bytes, per port (a first pass)."""
+    """Read times and sizes of the first ``limit`` records with bytes, per port (a first pass).
+
+    The source's damage report is left as it was: the analysis pass reads everything again.
+    """
     from buswitness.capture.fileformat import FLAG_UNTIMED
+    report = getattr(source, "report", None)
+    saved = copy.deepcopy(report)
     t: dict[int, list] = {}
     n: dict[int, list] = {}
     seen = 0
-    for batch in source.iter_batches():
-        keep = (batch.length > 0) & ((batch.flags & FLAG_UNTIMED) == 0)
-        for port in np.unique(batch.port[keep]).tolist():
-            sel = keep & (batch.port == port)
-            t.setdefault(port, []).append(batch.t_ns[sel])
-            n.setdefault(port, []).append(batch.length[sel])
-        seen += int(keep.sum())
-        if seen >= limit:
-            break
+    batches = source.iter_batches()
+    try:
+        for batch in batches:
+            keep = (batch.length > 0) & ((batch.flags & FLAG_UNTIMED) == 0)
+            for port in np.unique(batch.port[keep]).tolist():
+                sel = keep & (batch.port == port)
+                t.setdefault(port, []).append(batch.t_ns[sel])
+                n.setdefault(port, []).append(batch.length[sel])
+            seen += int(keep.sum())
+            if seen >= limit:
+                break
+    finally:
+        close = getattr(batches, "close", None)
+        if close is not None:
+            close()
+        if report is not None:
+            for f in fields(report):
+                setattr(report, f.name, getattr(saved, f.name))
     return {p: (np.concatenate(t[p])[:limit], np.concatenate(n[p])[:limit]) for p in t}
 
 

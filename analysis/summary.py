@@ -94,6 +94,10 @@ def _ms(v: float | None) -> str:
     return "-" if v is None else f"{v:.1f} ms"
 
 
+#: Share of frames with crossed timing bounds from which the text summary mentions them.
+CROSSED_SHARE = 0.01
+
+
 def _delivery_lines(result: AnalysisResult) -> list[str]:
     """The adapter latency where the file did not state it, and a character pitch off the stated format."""
     lines = []
@@ -103,6 +107,10 @@ def _delivery_lines(result: AnalysisResult) -> list[str]:
             lines.append(f"adapter latency: {d['latency_ms']:g} ms ({d['latency_source']}: {est['method']})")
         if d.get("notice"):
             lines.append(f"character pitch: {d['notice']}")
+    crossed = sum(d.get("timing_contradictions", 0) for d in result.delivery)
+    if crossed and crossed >= CROSSED_SHARE * max(result.bus.frames, 1):
+        lines.append(f"timing: the timestamp model contradicted itself on {crossed} frames (a host delay over "
+                     f"the assumed one, or characters not back to back); their intervals were widened")
     return lines
 
 

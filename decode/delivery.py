@@ -40,7 +40,13 @@ PACKET_BYTES = 62
 #: Fewest usable gaps before the grid is believed.
 MIN_GAPS = 50
 #: Share of gaps that must sit within tolerance of a multiple of the period.
-MIN_ON_GRID = 0.8
+MIN_ON_GRID = 0.7
+#: A period fits about as well as the best when its share is within this of the best's.
+FIT_MARGIN = 0.03
+#: The cluster of shortest gaps: up to this many times the 1st percentile (plus the tolerance).
+SHORT_CLUSTER = 1.25
+#: The grid tolerance widens to this many standard deviations of the host's jitter.
+JITTER_SIGMAS = 2.5
 #: ... and by this much more than gaps spread at random would.
 MIN_LIFT = 0.3
 #: Share of gaps allowed below one period (a long host delay before a short one).
@@ -50,6 +56,13 @@ GRID_TOL_MS = 0.5
 GRID_TOL_SHARE = 0.25
 #: Gaps longer than this say nothing about the timer (idle periods, clock drift), ms.
 MAX_GAP_MS = 2000.0
+#: Stamp steps looked for (10 ms down to 1 µs), and the share of read times that must sit on one.
+STAMP_STEPS_NS = (10_000_000, 1_000_000, 100_000, 10_000, 1_000)
+STAMP_STEP_SHARE = 0.999
+#: The pitch is measured only from read times stamped at least this finely (a share of the period).
+STAMP_STEP_PITCH = 0.05
+#: A period is judged only where gaps spread at random would land on its grid at most this often.
+MAX_CHANCE = 0.5
 #: Fewest runs (or full-buffer pairs) before a character pitch is reported.
 MIN_PITCH_SAMPLES = 30
 #: Two full-buffer packets further apart than this many times P stated characters had a silence between.
@@ -108,17 +121,32 @@ def _gaps_ms(t_ns: np.ndarray, n: np.ndarray, packet_bytes: int) -> np.ndarray:
     return g[keep]
 
 
-def _tolerance(period_ms: float) -> float:
-    return min(GRID_TOL_MS, GRID_TOL_SHARE * period_ms)
+def timestamp_step_ms(t_ns: np.ndarray) -> float:
+    """The resolution the read times were written with: 1.0 for a log with millisecond stamps, 0 when fine."""
+    t = np.asarray(t_ns, dtype=np.int64)
+    if t.shape[0] < 2:
+        return 0.0
+    d = t - t[0]
+    for step_ns in STAMP_STEPS_NS:
+        if np.mean(d % step_ns == 0) >= STAMP_STEP_SHARE:
+            return step_ns / 1e6
+    return 0.0
 
 
-def _on_grid(gaps: np.ndarray, period_ms: float) -> float:
+def _tolerance(period_ms: float, step_ms: float = 0.0) -> float:
+    """How far from a grid point a read may fall: the host's jitter, or the stamps' own step if coarser."""
+    return max(min(GRID_TOL_MS, GRID_TOL_SHARE * period_ms), step_ms)
+
+
+def _on_grid(gaps: np.ndarray, period_ms: float, step_ms: float = 0.0) -> float:
     r = gaps - period_ms * np.rint(gaps / period_ms)
-    return float(np.mean(np.abs(r) <= _tolerance(period_ms)))
+    return float(np.mean(np.abs(r) <= _tolerance(period_ms, step_ms)))
 
 
 def _fallback(reason: str, gaps: int, packet_bytes: int, floor_ms: float = 0.0) -> DeliveryEstimate:
     latency = max(FALLBACK_LATENCY_MS, float(np.ceil(floor_ms)))
+    if latency > FALLBACK_LATENCY_MS:
+        reason += f" (the records allow a timer up to {latency:g} ms)"
     return DeliveryEstimate(latency, None, packet_bytes, "default",
                             f"{reason}; assuming the conservative {latency:g} ms", "low", 0.0, gaps)
 
@@ -129,7 +157,8 @@ def estimate_delivery(t_ns: np.ndarray, n: np.ndarray, char_s: float,
 
     ``char_s`` is the stated character time, used only for the floor the chunk sizes set (a
     chunk that is not a full buffer arrived within one period). Never smaller than the
-    truth on a grid-forming adapter; the conservative default where the records cannot tell.
+    truth on a grid-forming adapter; where the records show no grid, the conservative
+    default, or the shortest gaps between reads when those are longer.
     """
     t = np.asarray(t_ns, dtype=np.int64)
     k = np.asarray(n, dtype=np.int64)
@@ -142,31 +171,48 @@ def estimate_delivery(t_ns: np.ndarray, n: np.ndarray, char_s: float,
     if gaps.size < MIN_GAPS:
         return _fallback(f"only {gaps.size} gaps between records, too few to see the adapter's grid",
                          int(gaps.size), packet_bytes, floor_ms)
-    # The floor: gaps below one period only where a long host delay preceded a short one.
+    # The shortest gaps are one period plus the difference of two host delays: their cluster's
+    # middle is the longest period the records allow, its spread the host's jitter.
     short = float(np.quantile(gaps, SHORT_GAP_SHARE))
+    cluster = gaps[gaps <= SHORT_CLUSTER * short + GRID_TOL_MS]
+    jitter = 1.4826 * float(np.median(np.abs(cluster - np.median(cluster))))
+    # Read times written with a coarse step (a log with millisecond stamps) blur the grid by that
+    # step, a busy host by its jitter; a period too short to tell from that blur is not judged.
+    step = timestamp_step_ms(t)
+    blur = max(step, JITTER_SIGMAS * jitter)
+    longest = float(np.median(cluster)) + max(GRID_TOL_MS, blur)
     lo_t, hi_t = TIMER_RANGE_MS
-    best: tuple[float, float] | None = None
-    for candidate in range(min(hi_t, int(np.floor(short + GRID_TOL_MS))), lo_t - 1, -1):
-        on = _on_grid(gaps, candidate)
-        chance = min(1.0, 2 * _tolerance(candidate) / candidate)
-        if on >= MIN_ON_GRID and on - chance >= min(MIN_LIFT, 1.0 - chance) * 0.99:
-            best = (float(candidate), on)
+    fits: list[tuple[int, float]] = []
+    for candidate in range(min(hi_t, int(np.floor(longest))), lo_t - 1, -1):
+        chance = 2 * _tolerance(candidate, blur) / candidate
+        if chance > MAX_CHANCE:
             break
-    if best is None:
-        return _fallback(f"the {gaps.size:,} gaps between records sit on no timer grid of 1 to 255 ms "
-                         f"(the shortest 1 % are under {short:.2f} ms)", int(gaps.size), packet_bytes, floor_ms)
-    period, share = best
+        on = _on_grid(gaps, candidate, blur)
+        if on >= MIN_ON_GRID and on - chance >= MIN_LIFT:
+            fits.append((candidate, on))
+    if not fits:
+        why = ""
+        if blur > GRID_TOL_MS:
+            why = (f"; read times are stamped to {step:g} ms" if step >= blur else
+                   f"; the host's delay varies by about {jitter:.2f} ms")
+        return _fallback(f"the {gaps.size:,} gaps between records sit on no timer grid of 1 to 255 ms that "
+                         f"they can show (the shortest are {np.median(cluster):.2f} ms{why})", int(gaps.size),
+                         packet_bytes, max(floor_ms, longest))
+    # Every divisor of the period fits its grid as well: the largest that fits about as well as any.
+    top = max(on for _, on in fits)
+    candidate, share = next((c, on) for c, on in fits if on >= top - FIT_MARGIN)
+    period = float(candidate)
     if period < floor_ms:
         return _fallback(f"the records sit on a {period:g} ms grid but chunks of their size need at least "
-                         f"{floor_ms:.1f} ms", int(gaps.size), packet_bytes, floor_ms)
+                         f"{floor_ms:.1f} ms", int(gaps.size), packet_bytes, max(floor_ms, longest))
     r = gaps - period * np.rint(gaps / period)
-    near = r[np.abs(r) <= _tolerance(period)]
+    near = r[np.abs(r) <= _tolerance(period, blur)]
     # r is the difference of two host delays: its robust spread over √2 is the delay's spread.
     mad = float(np.median(np.abs(near - np.median(near)))) if near.size else 0.0
     spread = 1.4826 * mad / np.sqrt(2.0)
     confidence = "high" if share >= 0.9 and gaps.size >= 1000 else "medium"
     method = (f"records fall on a {period:.2f} ms grid in {100 * share:.0f} % of {gaps.size:,} gaps; "
-              f"no shorter gaps than {short:.2f} ms (1st percentile), so the timer is not longer; "
+              f"the shortest gaps are {np.median(cluster):.2f} ms, so the timer is not longer; "
               f"host delay spread about {spread:.2f} ms")
     return DeliveryEstimate(period, round(float(spread), 4), packet_bytes, "estimated", method, confidence, share,
                             int(gaps.size))
@@ -193,6 +239,8 @@ def measure_pitch(t_ns: np.ndarray, n: np.ndarray, latency_ms: float, stated: Se
     k = np.asarray(n, dtype=np.int64)
     if t.shape[0] < 3:
         return None
+    if timestamp_step_ms(t) > STAMP_STEP_PITCH * latency_ms:
+        return None  # stamps too coarse to count characters between grid points
     tm = (t - t[0]).astype(np.float64) / 1e6
     gap = np.diff(tm)
     tol = _tolerance(latency_ms)
@@ -367,4 +415,5 @@ __all__ = [
     "measure_pitch",
     "merge_same_time",
     "pitch_disagrees",
+    "timestamp_step_ms",
 ]

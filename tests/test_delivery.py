@@ -85,10 +85,11 @@ def sim_records(latency_ms: float, seconds: float = 60, **kw):
 
 # -- the latency timer ---------------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("latency_ms", [1, 2, 4, 8, 16, 32])
+@pytest.mark.parametrize("latency_ms", [1, 2, 5, 8, 16, 20, 32, 64])
 @pytest.mark.parametrize("baud,bits", [(19200, 11), (9600, 11), (115200, 10)])
-def test_hand_model_timer_is_found_and_never_underestimated(latency_ms, baud, bits):
-    t, n, _ = hand_records(latency_ms, baud, bits, seconds=60, seed=latency_ms)
+@pytest.mark.parametrize("host_delay_ms", [0.1, 0.6, 1.5])
+def test_hand_model_timer_is_found_and_never_underestimated(latency_ms, baud, bits, host_delay_ms):
+    t, n, _ = hand_records(latency_ms, baud, bits, seconds=30, seed=latency_ms, host_delay_ms=host_delay_ms)
     est = estimate_delivery(t, n, bits / baud)
     assert est.latency_ms >= latency_ms
     if est.source == "estimated":
@@ -96,6 +97,8 @@ def test_hand_model_timer_is_found_and_never_underestimated(latency_ms, baud, bi
         assert est.confidence in ("high", "medium")
     else:
         assert est.latency_ms >= FALLBACK_LATENCY_MS
+    if host_delay_ms == 0.1:  # a quiet host: the grid is plain to see
+        assert est.source == "estimated"
 
 
 @pytest.mark.parametrize("latency_ms", [1, 16])
@@ -128,6 +131,19 @@ def test_a_loaded_host_leaves_the_grid_unseen_and_the_conservative_default_stand
     assert est.latency_ms >= FALLBACK_LATENCY_MS
     assert est.source == "default" and est.confidence == "low"
     assert "assuming the conservative 16 ms" in est.method
+
+
+@pytest.mark.parametrize("latency_ms", [1, 16])
+def test_read_times_stamped_to_the_millisecond_never_pass_for_a_1ms_grid(latency_ms):
+    t, n, _ = hand_records(latency_ms, 19200, 11, seconds=60)
+    t = t // MS * MS  # a log that writes milliseconds only
+    est = estimate_delivery(t, n, 11 / 19200)
+    assert est.latency_ms >= 16
+    if latency_ms == 16:
+        assert est.source == "estimated"
+    else:
+        assert est.source == "default" and "stamped to 1 ms" in est.method
+    assert measure_pitch(t, n, latency_ms, SerialFormat.parse("8E1", 19200)) is None
 
 
 def test_too_few_records_keep_the_conservative_default():
