@@ -15,6 +15,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from buswitness.analysis.evidence import render_evidence
 from buswitness.analysis.pipeline import AnalysisOptions, analyze, assess_delivery, delivery_headers
 from buswitness.analysis.summary import summary_dict, text_summary
 from buswitness.capture.sources import open_capture
@@ -342,6 +343,10 @@ def test_analyze_reports_the_estimate_and_the_measured_pitch(tmp_path):
     text = text_summary(result)
     assert "adapter latency: 1 ms (estimated" in text
     assert "characters are 0.57" in text
+    html = render_evidence(result, next(s.address for s in result.stations if s.requests))
+    assert "latency timer 1" in html and "(estimated)" in html
+    assert "it was estimated from the read times: records fall on a 1.00 ms grid" in html
+    assert "Measured character time: characters are 0.57" in html
 
 
 def test_a_stated_latency_is_kept():
