@@ -46,7 +46,7 @@ FIT_MARGIN = 0.03
 #: The cluster of shortest gaps: up to this many times the 1st percentile (plus the tolerance).
 SHORT_CLUSTER = 1.25
 #: The grid tolerance widens to this many standard deviations of the host's jitter.
-JITTER_SIGMAS = 2.5
+JITTER_SIGMAS = 2.0
 #: ... and by this much more than gaps spread at random would.
 MIN_LIFT = 0.3
 #: Share of gaps allowed below one period (a long host delay before a short one).
@@ -62,7 +62,7 @@ STAMP_STEP_SHARE = 0.999
 #: The pitch is measured only from read times stamped at least this finely (a share of the period).
 STAMP_STEP_PITCH = 0.05
 #: A period is judged only where gaps spread at random would land on its grid at most this often.
-MAX_CHANCE = 0.5
+MAX_CHANCE = 0.6
 #: Fewest runs (or full-buffer pairs) before a character pitch is reported.
 MIN_PITCH_SAMPLES = 30
 #: Two full-buffer packets further apart than this many times P stated characters had a silence between.

@@ -126,6 +126,14 @@ def test_simulated_timer_is_in_the_truths_class(latency_ms):
     assert est.on_grid > 0.85
 
 
+@pytest.mark.parametrize("seed", range(4))
+def test_the_1ms_estimate_does_not_depend_on_the_seed(seed):
+    res = simulate(load_scenario("clean"), duration_s=60, seed=seed, latency_ms=1, baud=115200)
+    t, n = merge_same_time(np.concatenate([b.t_ns for b in res.batches()]),
+                           np.concatenate([b.length for b in res.batches()]))
+    assert estimate_delivery(t, n, res.header.serial.char_time_s).latency_ms == 1
+
+
 def test_a_loaded_host_leaves_the_grid_unseen_and_the_conservative_default_stands():
     t, n, _ = hand_records(1, 19200, 11, seconds=30, host_delay_ms=3.0)
     est = estimate_delivery(t, n, 11 / 19200)
@@ -303,10 +311,10 @@ def _errors(res, header, source, timeout_ms) -> tuple[float, float, float]:
 
 
 @pytest.mark.parametrize("scenario,baud,bus_format", [("pumpstation", None, None), ("clean", 115200, None),
-                                                      ("pumpstation", None, "8N2")])
+                                                      ("pumpstation", None, "8N2"), ("clean", 115200, "8N2")])
 def test_a_1ms_hex_file_without_latency_decodes_to_truth(tmp_path, scenario, baud, bus_format):
     sc = load_scenario(scenario)
-    kw = {"sniffer": SerialFormat.parse("8N1", sc.serial.baud)} if bus_format else {}
+    kw = {"sniffer": SerialFormat.parse("8N1", baud or sc.serial.baud)} if bus_format else {}
     res = simulate(sc, duration_s=120, seed=2, latency_ms=1, baud=baud, bus_format=bus_format, **kw)
     path = tmp_path / "foreign.txt"
     _write_hex(res, path)
