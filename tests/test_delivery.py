@@ -12,6 +12,8 @@ REFERENCES.md); 16 ms is the usual factory timer and 1 ms the low-latency one (T
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -343,6 +345,8 @@ def test_analyze_reports_the_estimate_and_the_measured_pitch(tmp_path):
     assert (port.latency_ms, port.latency_source) == (1.0, "estimated")
     assert result.header.serial.short_form == "8N1"  # what the file says stays what the file says
     summary = summary_dict(result)
+    json.dumps(summary, allow_nan=False)  # plain JSON types throughout
+    assert isinstance(summary["capture"]["delivery"][0]["timing_contradictions"], int)
     assert summary["capture"]["ports"][0]["latency_source"] == "estimated"
     assert summary["capture"]["delivery"][0]["estimate"]["method"].startswith("records fall on a 1.00 ms grid")
     assert summary["capture"]["delivery"][0]["measured_format"] == "8N2"
