@@ -10,14 +10,14 @@ difference of two host delays — whatever happened in between. Two facts follow
 * the lattice: such gaps sit on multiples of ``L`` (any divisor of ``L`` fits too);
 * the floor: no such gap is much shorter than ``L``.
 
-:func:`estimate_delivery` takes the largest timer the floor allows whose lattice the gaps
-follow. A smaller estimate than the truth would make every interval too narrow, so when the
-evidence is thin or contradictory it keeps the conservative default (16 ms) and says so.
+:func:`estimate_delivery` takes the largest whole-millisecond timer the floor allows whose
+lattice the gaps follow about as well as any. A smaller estimate than the truth would make
+every interval too narrow, so when the evidence is thin or contradictory it keeps the
+conservative default (16 ms), or the shortest gaps when those are longer, and says so.
 
 :func:`measure_pitch` measures the character time ``c`` where the grid is fine enough:
-within one frame the bytes are back to back, so the bytes delivered between two grid times
-inside a run of busy ticks count the time between them in characters; back-to-back
-full-buffer packets are ``P·c`` apart. A bus with two stop bits read under an 8N1 setting
+within one frame the bytes are back to back, so over many whole frames the time their
+records span counts their characters; back-to-back full-buffer packets are ``P·c`` apart. A bus with two stop bits read under an 8N1 setting
 shows 11 bits per character where the setting says 10 (MSL §2.5.1 p12: an RTU character
 is 11 bits; without parity two stop bits keep it 11).
 
@@ -39,18 +39,18 @@ FALLBACK_LATENCY_MS = 16.0
 PACKET_BYTES = 62
 #: Fewest usable gaps before the grid is believed.
 MIN_GAPS = 50
-#: Share of gaps that must sit within tolerance of a multiple of the period.
+#: Share of gaps that must sit within tolerance of a multiple of the period ...
 MIN_ON_GRID = 0.7
+#: ... and by this much more than gaps spread at random would.
+MIN_LIFT = 0.3
 #: A period fits about as well as the best when its share is within this of the best's.
 FIT_MARGIN = 0.03
-#: The cluster of shortest gaps: up to this many times the 1st percentile (plus the tolerance).
+#: The shortest gaps: the 1st percentile (below it, a long host delay before a short one), and
+#: their cluster, up to this many times that percentile (plus the tolerance).
+SHORT_GAP_SHARE = 0.01
 SHORT_CLUSTER = 1.25
 #: The grid tolerance widens to this many standard deviations of the host's jitter.
 JITTER_SIGMAS = 2.0
-#: ... and by this much more than gaps spread at random would.
-MIN_LIFT = 0.3
-#: Share of gaps allowed below one period (a long host delay before a short one).
-SHORT_GAP_SHARE = 0.01
 #: Host-delay jitter tolerated around a grid point (ms), and its share of a short period.
 GRID_TOL_MS = 0.5
 GRID_TOL_SHARE = 0.25
