@@ -101,13 +101,16 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         raise UsageError(f"station {address} does not appear in this capture (stations polled: {seen})")
     findings = [f for f in result.findings if f.station == address]
     ports = result.header.ports
-    latency = [{"name": p.name, "latency_ms": p.latency_ms, "source": p.latency_source} for p in ports]
+    methods = {d["port"]: d["estimate"]["method"] for d in result.delivery if d.get("estimate")}
+    latency = [{"name": p.name, "latency_ms": p.latency_ms, "source": p.latency_source,
+                "method": methods.get(p.id, "")} for p in ports]
     latency_ms = max((p.latency_ms for p in ports if p.latency_ms is not None), default=None)
     return {
         "untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "s": s, "result": result, "timeout": result.timeout, "findings": findings,
         "caution": next((f.caution for f in findings if f.caution), ""),
         "identity": identity if identity is not None else file_identity(result.paths),
         "header": result.header, "latency": latency, "latency_ms": latency_ms,
+        "pitch_notices": [d["notice"] for d in result.delivery if d.get("notice")],
         "late": result.late_answers(address), "hist": _histogram_svg(result, address), "tail": _tail(result, s),
         "failures": [r for r in result.acc.failures.get(address, [])],
         "damage": result.damage, "char_ms": result.header.serial.char_time_s * 1000.0,

@@ -7,11 +7,13 @@ number of minutes, not on the capture's length.
 
 from __future__ import annotations
 
+import copy
 import sys
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 from buswitness.analysis.exports import TableExporter, utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
@@ -22,6 +24,9 @@ from buswitness.capture.fileformat import CaptureHeader, ReadReport
 
 #: Rows gathered before a block is processed: large enough that per-block overhead is small.
 BLOCK_ROWS = 200_000
+#: Records read ahead to estimate what the header does not state (adapter latency, character pitch):
+#: bounded, so memory stays flat however long the capture.
+DELIVERY_SAMPLE_RECORDS = 300_000
 
 
 @dataclass
@@ -141,25 +146,96 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     return build_result(header, paths or [], damage, acc, smap, timeout)
 
 
-def _decoded(source, cfg, on_batch: Callable[[int], None]) -> Iterator:
+def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
     from buswitness.decode import Decoder
     decoder = Decoder(cfg)
     for batch in source.iter_batches():
         on_batch(int(batch.payload.nbytes) + 12 * len(batch))
         yield decoder.feed_batch(batch)
     yield decoder.flush()
+    if contradictions is not None:
+        contradictions.extend((p, port.timeline.contradictions) for p, port in sorted(decoder.ports.items()))
+
+
+def _sample_records(source, limit: int) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """Read times and sizes of the first ``limit`` records with bytes, per port (a first pass).
+
+    The source's damage report is left as it was: the analysis pass reads everything again.
+    """
+    from buswitness.capture.fileformat import FLAG_UNTIMED
+    report = getattr(source, "report", None)
+    saved = copy.deepcopy(report)
+    t: dict[int, list] = {}
+    n: dict[int, list] = {}
+    seen = 0
+    batches = source.iter_batches()
+    try:
+        for batch in batches:
+            keep = (batch.length > 0) & ((batch.flags & FLAG_UNTIMED) == 0)
+            for port in np.unique(batch.port[keep]).tolist():
+                sel = keep & (batch.port == port)
+                t.setdefault(port, []).append(batch.t_ns[sel])
+                n.setdefault(port, []).append(batch.length[sel])
+            seen += int(keep.sum())
+            if seen >= limit:
+                break
+    finally:
+        close = getattr(batches, "close", None)
+        if close is not None:
+            close()
+        if report is not None:
+            for f in fields(report):
+                setattr(report, f.name, getattr(saved, f.name))
+    return {p: (np.concatenate(t[p])[:limit], np.concatenate(n[p])[:limit]) for p in t}
+
+
+def assess_delivery(source, limit: int = DELIVERY_SAMPLE_RECORDS) -> list:
+    """Per port: the adapter latency (estimated where the header does not state it) and the measured
+    character pitch (``buswitness.decode.delivery``), from a bounded first pass over the records."""
+    from buswitness.decode.delivery import assess_port
+    header = source.header
+    if header.timing == "none":
+        return []
+    samples = _sample_records(source, limit)
+    out = []
+    for p in header.ports:
+        t, n = samples.get(p.id, (np.zeros(0, np.int64), np.zeros(0, np.int64)))
+        stated = p.latency_ms if p.latency_ms else None
+        out.append(assess_port(p.id, t, n, header.serial, stated, p.latency_source))
+    return out
+
+
+def delivery_headers(header: CaptureHeader, delivery: list) -> tuple[CaptureHeader, CaptureHeader]:
+    """(the header as reported, the header the decoder works with).
+
+    Both carry the estimated latencies (``latency_source: estimated``); the decoder's also carries
+    the character format the measured pitch shows where it disagrees with the file's.
+    """
+    by_port = {d.port: d for d in delivery}
+    ports = []
+    for p in header.ports:
+        d = by_port.get(p.id)
+        if d is not None and d.estimate is not None and d.latency_source == "estimated":
+            p = replace(p, latency_ms=d.latency_ms, latency_source="estimated")
+        ports.append(p)
+    reported = replace(header, ports=ports)
+    measured = next((d.measured_format for d in delivery if d.measured_format is not None), None)
+    return reported, (replace(reported, serial=measured) if measured is not None else reported)
 
 
 def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
     """Decode and analyse an opened capture source (see ``buswitness.capture.sources.open_capture``)."""
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
-    cfg = DecoderConfig.from_header(source.header, port_roles=options.port_roles)
+    delivery = assess_delivery(source)
+    header, decoding = delivery_headers(source.header, delivery)
+    cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles)
     show = sys.stderr.isatty() if options.progress is None else options.progress
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None
+    crossed: list = []
     if not show:
-        result = analyze_tables(source.header, _decoded(source, cfg, lambda n: None), options, paths,
+        result = analyze_tables(header, _decoded(source, cfg, lambda n: None, crossed), options, paths,
                                 getattr(source, "report", None))
     else:
         from rich.console import Console
@@ -167,8 +243,11 @@ def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
         with Progress(TextColumn("analysing"), BarColumn(), DownloadColumn(), TimeRemainingColumn(),
                       console=Console(stderr=True), transient=True) as progress:
             task = progress.add_task("analyse", total=total)
-            result = analyze_tables(source.header, _decoded(source, cfg, lambda n: progress.advance(task, n)),
+            result = analyze_tables(header, _decoded(source, cfg, lambda n: progress.advance(task, n), crossed),
                                     options, paths, getattr(source, "report", None))
+    result.delivery = [d.to_dict() for d in delivery]
+    for entry in result.delivery:
+        entry["timing_contradictions"] = dict(crossed).get(entry["port"], 0)
     result.findings = evaluate_findings(result)
     return result
 

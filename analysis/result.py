@@ -109,6 +109,8 @@ class AnalysisResult:
     stations: list[StationFigures]
     bus: BusFigures
     findings: list[Finding] = field(default_factory=list)
+    #: per port: adapter latency used and how it was found, measured character pitch (decode/delivery.py)
+    delivery: list[dict] = field(default_factory=list)
     tool_version: str = __version__
     analysed_utc: str = ""
 

@@ -42,6 +42,7 @@ def capture_metadata(result: AnalysisResult) -> dict:
         "host": h.host, "recorded_with": h.tool_version, "serial": {"baud": h.serial.baud, "format": h.serial.short_form},
         "ports": [{"id": p.id, "name": p.name, "latency_ms": p.latency_ms, "latency_source": p.latency_source}
                   for p in h.ports],
+        "delivery": result.delivery,
         "timing": h.timing, "notes": h.notes,
         "damage": None if damage is None else {
             "clean": damage.clean, "records": damage.records, "truncated_tail": damage.truncated_tail,
@@ -94,12 +95,33 @@ def _ms(v: float | None) -> str:
     return "-" if v is None else f"{v:.1f} ms"
 
 
+#: Share of frames with crossed timing bounds from which the text summary mentions them.
+CROSSED_SHARE = 0.01
+
+
+def _delivery_lines(result: AnalysisResult) -> list[str]:
+    """The adapter latency where the file did not state it, and a character pitch off the stated format."""
+    lines = []
+    for d in result.delivery:
+        est = d.get("estimate")
+        if est is not None:
+            lines.append(f"adapter latency: {d['latency_ms']:g} ms ({d['latency_source']}: {est['method']})")
+        if d.get("notice"):
+            lines.append(f"character pitch: {d['notice']}")
+    crossed = sum(d.get("timing_contradictions", 0) for d in result.delivery)
+    if crossed and crossed >= CROSSED_SHARE * max(result.bus.frames, 1):
+        lines.append(f"timing: the timestamp model contradicted itself on {crossed} frames (a host delay over "
+                     f"the assumed one, or characters not back to back); their intervals were widened")
+    return lines
+
+
 def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
     """The short text ``analyze`` prints: the capture, top findings, a line per station."""
     bus = result.bus
     lines = [(f"capture: {bus.duration_s / 3600:.2f} h, {bus.frames} frames, {bus.requests} requests, "
               f"line busy {0 if bus.utilisation is None else 100 * bus.utilisation:.1f}%"),
              f"master timeout: {result.timeout.explanation}"]
+    lines.extend(_delivery_lines(result))
     if result.header.timing == "none":
         lines.append(UNTIMED_NOTE)
     if result.damage is not None and not result.damage.clean:

@@ -11,6 +11,14 @@ about ``d + c`` — the sharper estimate of TIMING.md, at no extra cost.
 
 Records that hold more than one packet's worth of bytes (the host read late) relax the
 lower bound for their older bytes by one character time per byte beyond ``P``.
+
+Carrying a bound from one record to a byte of another assumes the bytes between them came
+back to back at pitch ``c``. Where that fails (the line's characters are longer than the
+stated format says, a device paused inside a frame, the host delay exceeded ``d``) the
+carried bounds can cross: the earliest end lies after the latest. The interval then falls
+back to what the record holding the byte says without any pitch (its bytes ended after the
+record's floor and by its read time), is never narrowed to a point, and the crossing is
+counted in :attr:`Timeline.contradictions` for the report.
 """
 
 from __future__ import annotations
@@ -38,6 +46,8 @@ class Timeline:
     lasts: list[int] = field(default_factory=list)
     times: list[int] = field(default_factory=list)
     floors: list[float] = field(default_factory=list)
+    #: frames whose carried bounds crossed, so their interval fell back to one record's own bounds
+    contradictions: int = 0
     _last_t: int | None = None
     _next_pos: int = 0
 
@@ -68,17 +78,23 @@ class Timeline:
         i = max(0, bisect_right(self.starts, first) - 1)
         lo = float("-inf")
         hi = float("inf")
+        own = (float("-inf"), float("inf"))
         while i < len(self.starts) and self.starts[i] <= last:
             k0 = max(first, self.starts[i], self.lasts[i] - self.packet_bytes + 1)
             if k0 <= last:
                 lo = max(lo, self.floors[i] + (last - k0) * c)
+                own = (self.floors[i], float(self.times[i]))
             else:
                 lo = max(lo, self.floors[i] - (k0 - last) * c)
+                own = (self.floors[i] - (k0 - last) * c, float(self.times[i]))
             hi = min(hi, self.times[i] + (last - self.lasts[i]) * c)
             i += 1
         if self.untimed or lo == float("-inf"):
             lo = hi
-        lo = min(lo, hi)
+        elif lo > hi:
+            # the carried bounds crossed: widen to the byte's own record, never to a point
+            self.contradictions += 1
+            lo, hi = min(own[0], hi), own[1]
         return round(lo), round(hi)
 
     def drop_before(self, pos: int) -> None:
@@ -138,5 +154,14 @@ class Timeline:
             lo[sel] = np.maximum(lo[sel], np.maximum.reduceat(g, idx)[::2] + e[sel] * c)
         if self.untimed:
             lo = hi.copy()
-        lo = np.minimum(lo, hi)
+        else:
+            crossed = np.flatnonzero(lo > hi)
+            if crossed.size:
+                # as in end_bounds: the byte's own record, without any pitch
+                self.contradictions += int(crossed.size)
+                j = rb[crossed]
+                k0j = np.maximum(np.maximum(first[crossed], starts[j]), lasts[j] - self.packet_bytes + 1)
+                own_lo = floors[j] - np.maximum(k0j - last[crossed], 0) * c
+                lo[crossed] = np.minimum(own_lo, hi[crossed])
+                hi[crossed] = times[j]
         return np.rint(lo).astype(np.int64), np.rint(hi).astype(np.int64)

@@ -139,3 +139,28 @@ def timing_not_observable(result: AnalysisResult, th: Thresholds) -> list[Findin
                   "t15_ms": round(t15, 3), "t35_ms": round(t35, 3), "t35_observable": width < t35},
         causes=[Cause("The adapter delivers bytes in packets on a latency timer.",
                       "Record with the latency timer at 1 ms (record --low-latency) to check t1.5 and t3.5.")])]
+
+
+def character_pitch(result: AnalysisResult, th: Thresholds) -> list[Finding]:
+    """The records show characters further apart (or closer) than the stated format: a notice naming the
+    measured character time, and whether the timing model used it (decode/delivery.py)."""
+    out = []
+    for d in result.delivery:
+        notice, pitch = d.get("notice"), d.get("pitch")
+        if not notice or not pitch:
+            continue
+        t0, t1 = capture_span(result)
+        used = d.get("measured_format") is not None
+        out.append(Finding(
+            rule="character-pitch", severity="notice", score=abs(pitch["char_ms"] / d["stated_char_ms"] - 1.0),
+            t_start_s=t0, t_end_s=t1, statement=notice[0].upper() + notice[1:] + ".",
+            evidence={"port": d["port"], "measured_char_ms": pitch["char_ms"], "spread_ms": pitch["spread_ms"],
+                      "samples": pitch["samples"], "stated_char_ms": d["stated_char_ms"],
+                      "stated_format": result.header.serial.short_form, "used_format": d.get("measured_format"),
+                      "method": pitch["method"]},
+            causes=[Cause("The bus runs another character format than the capture states (two stop bits, or parity, "
+                          "where the file says 8N1: 11 bits instead of 10, MSL §2.5.1).",
+                          "Read the format from the master's configuration and give it with --format."
+                          if used else
+                          "Check the baud rate (detect) and the devices' settings for pauses between characters.")]))
+    return out
