@@ -225,6 +225,25 @@ class BusRun:
     wall_s: float
     lateness_ns: list[int] = field(default_factory=list)  # the wire's delivery after each stop bit
 
+    def save(self, path: Path) -> Path:
+        """Write the run as JSON, so a tap can be remade and decoded again without the bus."""
+        data = {"baud": self.baud, "fmt": self.fmt, "plan": self.plan, "wall_s": self.wall_s,
+                "master_log": self.master_log, "station_log": self.station_log,
+                "lateness_ns": self.lateness_ns,
+                "bursts": [{"party": b.party, "start_ns": b.start_ns, "ends_ns": b.ends_ns, "sent": b.sent.hex(),
+                            "wire": b.wire.hex(), "read_ns": b.read_ns, "collided": b.collided}
+                           for b in self.bursts]}
+        Path(path).write_text(json.dumps(data))
+        return Path(path)
+
+    @classmethod
+    def load(cls, path: Path) -> BusRun:
+        d = json.loads(Path(path).read_text())
+        bursts = [Burst(b["party"], b["start_ns"], b["ends_ns"], bytes.fromhex(b["sent"]), bytes.fromhex(b["wire"]),
+                        b["read_ns"], b["collided"]) for b in d["bursts"]]
+        return cls(d["baud"], d["fmt"], d["plan"], bursts, d["master_log"], d["station_log"], d["wall_s"],
+                   d["lateness_ns"])
+
     def pacing(self) -> str:
         """How well the wire kept character pace: delivery lateness percentiles."""
         if not self.lateness_ns:
@@ -372,6 +391,7 @@ class Attempt:
     answer: Burst | None       # the frame the station sent to this very request (server log + FIFO)
     truth: str                 # ok / exception / timeout / late / corrupt / collision / edge
     rt_ns: int | None          # answer's first start bit - request's last stop bit end (wire)
+    stack_took: Burst | None = None  # the frame the pymodbus client accepted in this attempt
 
 
 def crc16(data: bytes) -> int:
@@ -394,46 +414,58 @@ def build_truth(run: BusRun) -> list[Attempt]:
     sends = [e for e in run.master_log if e["ev"] == "send"]
     if [bytes.fromhex(e["raw"]) for e in sends] != [b.sent for b in master_bursts]:
         raise AssertionError("the wire did not carry exactly what the pymodbus client says it sent")
-    # the stack's own outcome per attempt, from the events between one send and the next
+    # each station's frames on the wire, in order (the wire's hold keeps each station's order)
+    answers: dict[int, list[Burst]] = {}
+    for b in run.bursts:
+        if b.party != "master":
+            answers.setdefault(int(b.party), []).append(b)
+    # the stack's own outcome per attempt, from the client's events between one send and the next;
+    # for an accepted answer, which frame it was: the station's last one ended before pymodbus took it
     stack: list[str] = []
+    stack_took: list[Burst | None] = []
     events = run.master_log
     send_pos = [i for i, e in enumerate(events) if e["ev"] == "send"] + [len(events)]
     for k in range(len(sends)):
         chunk = events[send_pos[k] + 1:send_pos[k + 1]]
         pdus = [e for e in chunk if e["ev"] == "pdu"]
         recv = [e for e in chunk if e["ev"] == "recv"]
+        took = None
         if pdus:
             stack.append("exception" if pdus[0]["fc"] & 0x80 else "answer")
+            before = [b for b in answers.get(pdus[0]["dev"], []) if b.end_ns <= pdus[0]["t"]]
+            took = before[-1] if before else None
         elif recv:
             stack.append("corrupt")
         else:
             stack.append("timeout")
-    # each station's own log: requests for its address and the frames it sent, in order;
-    # its answers go onto the wire first in first out (the wire's hold keeps the order)
-    answers: dict[int, list[Burst]] = {}
-    for b in run.bursts:
-        if b.party != "master":
-            answers.setdefault(int(b.party), []).append(b)
+        stack_took.append(took)
+    # each station's own log: a pymodbus server answers the requests it decoded, first in first
+    # out; the request is the master's latest attempt to that station that had ended by then
     attempts: list[Attempt] = []
     by_station: dict[int, list[int]] = {}
     for k, b in enumerate(master_bursts):
         by_station.setdefault(b.sent[0], []).append(k)
     own_answer: dict[int, Burst] = {}
     for addr in answers:
-        reqs = [e for e in run.station_log if e.get("addr") == addr and e["ev"] == "req"]
-        rsps = [e for e in run.station_log if e.get("addr") == addr and e["ev"] == "rsp"]
+        log = [e for e in run.station_log if e.get("addr") == addr]
+        rsps = [e for e in log if e["ev"] == "rsp"]
         if [bytes.fromhex(e["raw"]) for e in rsps] != [b.sent for b in answers[addr]]:
             raise AssertionError(f"station {addr}: the wire did not carry what its pymodbus server sent")
-        # map each request the server decoded to the master's attempt it heard (latest one ended before)
         cands = by_station.get(addr, [])
         used: set[int] = set()
-        for j, req in enumerate(reqs):
-            heard = [k for k in cands if master_bursts[k].end_ns <= req["t"] and k not in used]
-            if not heard or j >= len(answers[addr]):
-                continue
-            k = heard[-1]
-            used.add(k)
-            own_answer[k] = answers[addr][j]
+        waiting: list[int | None] = []
+        sent = iter(answers[addr])
+        for e in log:
+            if e["ev"] == "req":
+                heard = [k for k in cands if master_bursts[k].end_ns <= e["t"] and k not in used]
+                waiting.append(heard[-1] if heard else None)
+                if heard:
+                    used.add(heard[-1])
+            else:
+                burst = next(sent)
+                k = waiting.pop(0) if waiting else None
+                if k is not None:
+                    own_answer[k] = burst
     for k, b in enumerate(master_bursts):
         ans = own_answer.get(k)
         nxt = master_bursts[k + 1].start_ns if k + 1 < len(master_bursts) else None
@@ -454,7 +486,7 @@ def build_truth(run: BusRun) -> list[Attempt]:
         else:
             truth = "ok"
         rt = ans.start_ns - b.end_ns if ans is not None else None
-        attempts.append(Attempt(k, b.sent[0], b.sent[1], b, stack[k], ans, truth, rt))
+        attempts.append(Attempt(k, b.sent[0], b.sent[1], b, stack[k], ans, truth, rt, stack_took[k]))
     return attempts
 
 
@@ -485,6 +517,7 @@ class Figures:
     decoded_counts: dict = field(default_factory=dict)
     stack_consistent: float = float("nan")  # true class agrees with the pymodbus client's own view
     stack_disagreements: list = field(default_factory=list)
+    stack_took_earlier: int = 0         # attempts where pymodbus itself accepted an earlier (late) answer
     mismatches: list = field(default_factory=list)
 
     def line(self) -> str:
@@ -557,6 +590,7 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
         else:
             by_attempt[bi] = i
     errs: list[float] = []
+    fig.stack_took_earlier = sum(a.stack_took is not None and a.stack_took is not a.answer for a in attempts)
     stack_ok = [a for a in attempts if a.truth in _STACK_VIEW]
     if stack_ok:
         fig.stack_consistent = sum(_STACK_VIEW[a.truth] == a.stack for a in stack_ok) / len(stack_ok)
@@ -623,14 +657,16 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
 
 
 def tap_and_compare(run: BusRun, attempts: list[Attempt], latency_ms: float, workdir: Path,
-                    seed: int = 7, unbiased_line: bool = False) -> tuple[Figures, Path]:
+                    seed: int = 7, unbiased_line: bool = False,
+                    response_timeout_ms: float | None = None) -> tuple[Figures, Path]:
     """Make the tap at latency L, write it as hex text, decode it and compare it with the truth."""
     records = tap_records(run.bursts, latency_ms, seed, c_ns=char_ns(run.baud, run.fmt),
                           unbiased_line=unbiased_line)
     t0 = run.bursts[0].start_ns - 10_000_000
+    Path(workdir).mkdir(parents=True, exist_ok=True)
     name = f"tap-{run.baud}-{latency_ms:g}ms{'-unbiased' if unbiased_line else ''}.hex"
     path = write_hex(Path(workdir) / name, records, run.baud, run.fmt, t0,
                      note=f"adapter latency {latency_ms:g} ms, not stated to the decoder")
-    frames, tx = decode_tap(path)
+    frames, tx = decode_tap(path, response_timeout_ms)
     dead = next(int(a) for a, r in run.plan["stations"].items() if r == "dead")
     return compare(attempts, run.bursts, frames, tx, t0, dead), path

@@ -23,7 +23,7 @@ from buswitness.capture.importers import HexTextSource
 pytestmark = pytest.mark.slow  # one bus run per baud rate: about 15 s of real time each
 
 RATES = {19200: "8E1", 115200: "8N1"}
-CYCLES = 14
+CYCLES = 12
 #: issue 12, "Done when"
 AGREEMENT = 0.998
 LATE_PAIRED = 0.95
@@ -133,10 +133,10 @@ def test_tap_delivers_on_a_grid_and_at_a_full_buffer():
 # --- issue 12's figures ---------------------------------------------------------------------------
 
 @pytest.mark.parametrize("baud,latency_ms", taps({
-    (19200, 1.0): "measured 87.97 % (117/133): dead-station retries taken as echo answers, late answers swapped",
-    (19200, 16.0): "measured 87.97 % (117/133)",
-    (115200, 1.0): "measured 87.97 % (117/133)",
-    (115200, 16.0): "measured 87.22 % (116/133)",
+    (19200, 1.0): "measured 83.65 % (133/159): dead-station retries taken as echo answers, late answers swapped",
+    (19200, 16.0): "measured 83.65 % (133/159)",
+    (115200, 1.0): "measured 83.65 % (133/159)",
+    (115200, 16.0): "measured 83.02 % (132/159)",
 }))
 def test_transactions_agree_with_the_stacks_log(baud, latency_ms, workdir):
     fig = figures(baud, latency_ms, workdir)
@@ -145,7 +145,7 @@ def test_transactions_agree_with_the_stacks_log(baud, latency_ms, workdir):
 
 
 @pytest.mark.parametrize("baud,latency_ms", taps({
-    (b, lat): "measured 4 answers in 18 attempts: the FC05/FC06 retry is taken as the echo answer"
+    (b, lat): "measured 4 answers (18 attempts): the FC05/FC06 retry is taken as the echo answer"
     for b in RATES for lat in (1.0, 16.0)}))
 def test_station_with_no_device_shows_no_answers(baud, latency_ms, workdir):
     fig = figures(baud, latency_ms, workdir)
@@ -155,7 +155,7 @@ def test_station_with_no_device_shows_no_answers(baud, latency_ms, workdir):
 
 
 @pytest.mark.parametrize("baud,latency_ms", taps({
-    (b, lat): "measured 0/4: each late answer is given the retry's answer, the retry the earlier one"
+    (b, lat): "measured 0/9: each late answer is given the retry's answer, the retry the earlier one"
     for b in RATES for lat in (1.0, 16.0)}))
 def test_late_answers_are_paired_with_the_answer_to_that_request(baud, latency_ms, workdir):
     fig = figures(baud, latency_ms, workdir)
@@ -173,7 +173,7 @@ def test_response_time_intervals_cover_the_wire_time(baud, latency_ms, workdir):
 
 
 @pytest.mark.parametrize("baud,latency_ms", taps({
-    (115200, 1.0): "measured p95 7.57 ms (median 0.22 ms): the 16 ms default is used when the file "
+    (115200, 1.0): "measured p95 7.67 ms, median 0.75 ms: the 16 ms default is used when the file "
                    "does not state the latency, and an 8-byte frame at 115200 fits in one 1 ms packet",
 }, latencies=(1.0,)))
 def test_point_error_on_a_1ms_tap(baud, latency_ms, workdir):
@@ -181,3 +181,15 @@ def test_point_error_on_a_1ms_tap(baud, latency_ms, workdir):
     # truth: the wire's byte times
     assert fig.err_p95_ms <= P95_MS, fig.line()
     assert fig.err_median_ms <= MEDIAN_MS, fig.line()
+
+
+@pytest.mark.parametrize("baud", [pytest.param(b, marks=_xfail(
+    "measured 77.36 % (123/159): the idle byte after a request nobody answers reads as a damaged "
+    "answer (timeouts and late answers become 'corrupt')")) for b in RATES])
+def test_a_line_nobody_holds_idle_changes_no_transaction(baud, workdir):
+    # issue 12, item 4: one more byte after every frame (0x00 after the master, 0xFE after a
+    # station) where the driver lets go. The hex text cannot mark its framing error.
+    run, attempts = bus(baud, workdir)
+    fig, _ = ob.tap_and_compare(run, attempts, 1.0, workdir / str(baud), unbiased_line=True)
+    # truth: pymodbus client's own log + pymodbus servers' own log + wire byte times
+    assert fig.agreement >= AGREEMENT, fig.line() + "\n" + "\n".join(fig.mismatches[:20])
