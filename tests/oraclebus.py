@@ -111,6 +111,16 @@ class Wire:
     delivered to the others once its end time has passed. Pacing on a loaded machine is only
     as good as the scheduler; the recorded times are the line's own schedule, which is what
     the tap uses, so the truth stays consistent.
+
+    Who hears whom: the master's bytes go to every station, a station's bytes to the master
+    (and the tap sees everything). Stations do not hear each other unless
+    ``stations_hear_stations``: pymodbus 3.16's serial server frames by length and CRC alone,
+    without the t3.5 silence, and when a CRC check fails it drops everything it holds, so a
+    server that hears other stations' answers loses requests meant for it (seen: 12 of 35 calls
+    to live stations failed, one station never answered at all). A real device would not.
+
+    Two talkers at once: both bursts are marked ``collided`` and their bytes reach the others
+    (and the tap) interleaved in time order; no attempt is made to model the garbled levels.
     """
 
     def __init__(self, baud: int, fmt: str, seed: int, stations_hear_stations: bool = False) -> None:
@@ -463,9 +473,9 @@ def build_truth(run: BusRun) -> list[Attempt]:
                     used.add(heard[-1])
             else:
                 burst = next(sent)
-                k = waiting.pop(0) if waiting else None
-                if k is not None:
-                    own_answer[k] = burst
+                asked = waiting.pop(0) if waiting else None
+                if asked is not None:
+                    own_answer[asked] = burst
     for k, b in enumerate(master_bursts):
         ans = own_answer.get(k)
         nxt = master_bursts[k + 1].start_ns if k + 1 < len(master_bursts) else None
@@ -601,8 +611,8 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
             for a in stack_ok if _STACK_VIEW[a.truth] != a.stack]
     for a in attempts:
         fig.truth_counts[a.truth] = fig.truth_counts.get(a.truth, 0) + 1
-        i = by_attempt.get(burst_index[id(a.req)])
-        row = tx.loc[i] if i is not None else None
+        ti = by_attempt.get(burst_index[id(a.req)])
+        row = tx.loc[ti] if ti is not None else None
         got = str(row["outcome"]) if row is not None else "missing"
         fig.decoded_counts[got] = fig.decoded_counts.get(got, 0) + 1
         answer_burst = None
@@ -630,7 +640,7 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
             fig.mismatches.append(f"attempt {a.index} at {(a.req.end_ns - t0_ns) / 1e6:.3f} ms: station {a.station} "
                                   f"fc {a.function}: truth {a.truth} (pymodbus client: {a.stack}), decoded {got}, "
                                   f"answer taken: {taken}")
-        if right and a.rt_ns is not None:
+        if right and row is not None and a.rt_ns is not None:
             lo, hi, mid = (float(row[k]) for k in ("response_ms_low", "response_ms_high", "response_ms"))
             rt = a.rt_ns / 1e6
             fig.rt_checked += 1

@@ -92,7 +92,7 @@ async def main(argv: list[str]) -> None:
         server = ModbusSerialServer([_device(addr, role)], port=port, baudrate=baud, timeout=1,
                                     ignore_missing_devices=True, trace_pdu=trace_pdu,
                                     trace_packet=trace_packet)
-        server.context = OneStation(server.context, addr)
+        server.context = OneStation(server.context, addr)  # type: ignore[assignment]
         servers.append(server)
     tasks = [asyncio.create_task(s.serve_forever()) for s in servers]
     print("ready", flush=True)
