@@ -67,6 +67,7 @@ def main() -> None:
             print(f"   truth classes {fig.truth_counts}; decoded {fig.decoded_counts}; "
                   f"pymodbus client's own view consistent with truth: {100 * fig.stack_consistent:.1f}%; "
                   f"attempts where pymodbus itself took an earlier (late) answer: {fig.stack_took_earlier}")
+            print(f"   decoder events: {fig.event_counts}")
             for m in fig.stack_disagreements[:args.show]:
                 print(f"   ! truth and pymodbus client differ: {m}")
             for m in fig.mismatches[:args.show]:

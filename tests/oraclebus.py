@@ -528,6 +528,7 @@ class Figures:
     decoded_counts: dict = field(default_factory=dict)
     stack_consistent: float = float("nan")  # true class agrees with the pymodbus client's own view
     stack_disagreements: list = field(default_factory=list)
+    event_counts: dict = field(default_factory=dict)  # the decoder's events by kind
     stack_took_earlier: int = 0         # attempts where pymodbus itself accepted an earlier (late) answer
     mismatches: list = field(default_factory=list)
 
@@ -547,7 +548,7 @@ _ANSWERED = ("ok", "exception", "late")
 
 
 def decode_tap(path: Path, response_timeout_ms: float | None = None):
-    """Decode a hex tap with buswitness's public API; returns (frames, transactions) tables."""
+    """Decode a hex tap with buswitness's public API; returns (frames, transactions, events) tables."""
     import pandas as pd
     from buswitness.capture.importers import HexTextSource
     from buswitness.decode.decoder import DecoderConfig, decode_source
@@ -557,8 +558,9 @@ def decode_tap(path: Path, response_timeout_ms: float | None = None):
     outs = list(decode_source(src, cfg))
     frames = pd.concat([o.frames for o in outs], ignore_index=True)
     tx = pd.concat([o.transactions for o in outs], ignore_index=True)
+    events = pd.concat([o.events for o in outs], ignore_index=True)
     return (frames.sort_values("t_end_ns", kind="stable").reset_index(drop=True),
-            tx.sort_values("t_request_end_ns", kind="stable").reset_index(drop=True))
+            tx.sort_values("t_request_end_ns", kind="stable").reset_index(drop=True), events)
 
 
 def _frame_to_burst(frames, bursts: list[Burst]) -> dict[int, int]:
@@ -678,6 +680,8 @@ def tap_and_compare(run: BusRun, attempts: list[Attempt], latency_ms: float, wor
     name = f"tap-{run.baud}-{latency_ms:g}ms{'-unbiased' if unbiased_line else ''}.hex"
     path = write_hex(Path(workdir) / name, records, run.baud, run.fmt, t0,
                      note=f"adapter latency {latency_ms:g} ms, not stated to the decoder")
-    frames, tx = decode_tap(path, response_timeout_ms)
+    frames, tx, events = decode_tap(path, response_timeout_ms)
     dead = next(int(a) for a, r in run.plan["stations"].items() if r == "dead")
-    return compare(attempts, run.bursts, frames, tx, t0, dead), path
+    fig = compare(attempts, run.bursts, frames, tx, t0, dead)
+    fig.event_counts = {str(k): int(v) for k, v in events["kind"].value_counts().items() if v}
+    return fig, path
