@@ -39,6 +39,7 @@ def main() -> None:
     ap.add_argument("--replay", type=Path, action="append", help="a saved run.json instead of running the bus")
     ap.add_argument("--unbiased", action="store_true", help="taps of a line nobody holds idle (idle byte per frame)")
     ap.add_argument("--timeout-ms", type=float, help="tell the decoder the master's response timeout")
+    ap.add_argument("--header-format", help="state this character format in the tap file (e.g. 8N1 for an 8E1 bus)")
     args = ap.parse_args()
     work = args.keep or Path(tempfile.mkdtemp(prefix="oracle-run-"))
     runs = [ob.BusRun.load(p) for p in args.replay or []]
@@ -61,7 +62,8 @@ def main() -> None:
         print("   truth (station, class): " + ", ".join(f"{k[0]} {k[1]}: {v}" for k, v in sorted(truth.items())))
         for lat in args.latency or [1.0, 16.0]:
             fig, path = ob.tap_and_compare(run, attempts, lat, work / f"run-{baud}", seed=args.seed,
-                                           unbiased_line=args.unbiased, response_timeout_ms=args.timeout_ms)
+                                           unbiased_line=args.unbiased, response_timeout_ms=args.timeout_ms,
+                                           header_fmt=args.header_format)
             print(f"-- tap L = {lat:g} ms ({path}):")
             print(f"   {fig.line()}")
             print(f"   truth classes {fig.truth_counts}; decoded {fig.decoded_counts}; "

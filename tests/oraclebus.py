@@ -686,15 +686,20 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
 
 
 def tap_and_compare(run: BusRun, attempts: list[Attempt], latency_ms: float, workdir: Path,
-                    seed: int = 7, unbiased_line: bool = False,
-                    response_timeout_ms: float | None = None) -> tuple[Figures, Path]:
-    """Make the tap at latency L, write it as hex text, decode it and compare it with the truth."""
+                    seed: int = 7, unbiased_line: bool = False, response_timeout_ms: float | None = None,
+                    header_fmt: str | None = None) -> tuple[Figures, Path]:
+    """Make the tap at latency L, write it as hex text, decode it and compare it with the truth.
+
+    ``header_fmt`` states another character format in the file than the wire used (issue 12,
+    item 7: an 11-bit bus read under an 8N1 header).
+    """
     records = tap_records(run.bursts, latency_ms, seed, c_ns=char_ns(run.baud, run.fmt),
                           unbiased_line=unbiased_line)
     t0 = run.bursts[0].start_ns - 10_000_000
     Path(workdir).mkdir(parents=True, exist_ok=True)
-    name = f"tap-{run.baud}-{latency_ms:g}ms{'-unbiased' if unbiased_line else ''}.hex"
-    path = write_hex(Path(workdir) / name, records, run.baud, run.fmt, t0,
+    name = (f"tap-{run.baud}-{latency_ms:g}ms{'-unbiased' if unbiased_line else ''}"
+            f"{'-as-' + header_fmt if header_fmt else ''}.hex")
+    path = write_hex(Path(workdir) / name, records, run.baud, header_fmt or run.fmt, t0,
                      note=f"adapter latency {latency_ms:g} ms, not stated to the decoder")
     frames, tx, events = decode_tap(path, response_timeout_ms)
     dead = next(int(a) for a, r in run.plan["stations"].items() if r == "dead")
