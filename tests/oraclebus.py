@@ -420,7 +420,7 @@ class Attempt:
 
 
 def crc16(data: bytes) -> int:
-    """CRC-16/MODBUS (poly 0xA001 reflected, init 0xFFFF; Modbus over serial line V1.02, 6.2.2)."""
+    """CRC-16/MODBUS: init 0xFFFF, shift right, XOR 0xA001, low byte sent first (MSL V1.02 §6.2.2 p39-40)."""
     crc = 0xFFFF
     for b in data:
         crc ^= b
@@ -649,6 +649,8 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
             continue
         fig.attempts += 1
         ok = got == a.truth and (a.truth not in _ANSWERED or right)
+        if ok and a.truth == "exception" and row is not None and a.answer is not None:
+            ok = int(row["exception_code"]) == a.answer.wire[2]
         fig.agree += ok
         if a.truth == "late":
             fig.late_truth += 1

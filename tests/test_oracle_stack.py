@@ -83,6 +83,10 @@ def test_harness_wire_carries_what_the_stack_sent_and_dead_station_never_answers
     calls = [e for e in run.master_log if e["ev"] == "call" and e["addr"] == dead]
     assert calls and all(e["result"] == "no answer" for e in calls)
     assert {e["fc"] for e in calls} == {3, 5, 6}
+    # truth: pymodbus client's own log -- the valve controller's undefined registers give
+    # exception 02, ILLEGAL DATA ADDRESS (MAP V1.1b3 section 7, p47-49)
+    codes = {e["code"] for e in run.master_log if e["ev"] == "call" and e["result"] == "exception"}
+    assert codes == {2}
     # ... and no server logged anything for it (nothing is behind that address)
     assert not [e for e in run.station_log if e.get("addr") == dead]
     assert not [b for b in run.bursts if b.party == str(dead)]
@@ -110,6 +114,13 @@ def test_tap_file_does_not_state_the_adapter_latency(baud, workdir):
     src = HexTextSource(path)
     assert src.header.serial.baud == baud
     assert src.header.ports[0].latency_ms is None
+
+
+def test_truth_crc_check_matches_the_spec_example():
+    # MSL V1.02 p39, p41: frame 02 07 has CRC 0x1241, sent low byte first as 41 12
+    assert ob.crc16(bytes([0x02, 0x07])) == 0x1241
+    assert ob.crc_ok(bytes([0x02, 0x07, 0x41, 0x12]))
+    assert not ob.crc_ok(bytes([0x02, 0x07, 0x12, 0x41]))
 
 
 def test_tap_delivers_on_a_grid_and_at_a_full_buffer():
