@@ -23,7 +23,7 @@ pytest.importorskip("pymodbus")
 import oraclebus as ob  # noqa: E402
 from buswitness.capture.importers import HexTextSource  # noqa: E402
 
-pytestmark = pytest.mark.slow  # one bus run per baud rate: about 15 s of real time each
+pytestmark = pytest.mark.slow  # one bus run per baud rate: about 20 s of real time each
 
 RATES = {19200: "8E1", 115200: "8N1"}
 CYCLES = 12

@@ -94,14 +94,13 @@ async def main(argv: list[str]) -> None:
                                     trace_packet=trace_packet)
         server.context = OneStation(server.context, addr)  # type: ignore[assignment]
         servers.append(server)
-    tasks = [asyncio.create_task(s.serve_forever()) for s in servers]
+    for s in servers:
+        await s.serve_forever(background=True)  # returns once its port is open
     print("ready", flush=True)
     loop = asyncio.get_running_loop()
     await loop.run_in_executor(None, sys.stdin.read)  # until the harness closes our stdin
     for s in servers:
         await s.shutdown()
-    for t in tasks:
-        t.cancel()
     log.close()
 
 
