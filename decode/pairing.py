@@ -137,6 +137,8 @@ class _Station:
     unanswered: int = 0           # requests the master moved on from without an answer
     open: deque = field(default_factory=deque)  # its open requests, oldest first
     recent: deque = field(default_factory=lambda: deque(maxlen=RECENT_ANSWERS))  # its latest in-time answer times
+    #: an answer whose owner waits for what follows: (answer, oldest candidate, newest, late for each)
+    pending: tuple | None = None
 
     def usual_ns(self) -> tuple[float, float] | None:
         """The range of its usual answer times (5th to 95th percentile of the recent ones), once known."""
@@ -279,6 +281,10 @@ class Pairing:
         if damage.kind not in ANSWER_DAMAGE:
             return damage
         w = self.current
+        if len(damage.raw) >= 2:
+            shaped = self.stations.get(damage.raw[0])
+            if shaped is not None and shaped.pending is not None:
+                self._resolve(shaped, True, self._events)  # a second (damaged) answer came
         late = self._late_owner(damage)
         if late is not None:
             self._collided = self._collision_events(damage, late)
@@ -338,6 +344,8 @@ class Pairing:
             self._on_ambiguous(self._held)
             self._held = None
         for st in self.stations.values():
+            if st.pending is not None:
+                self._resolve(st, False, self._events)
             while st.open:
                 self._close(st.open.popleft())
         self.current = None
@@ -384,6 +392,9 @@ class Pairing:
                 if prev.req.port == req.port:
                     self._waits.append(float(req.t_start_ns - prev.req.t_end_ns))
                     self._wait_dirty = True
+        target = self.stations.get(req.address)
+        if target is not None and target.pending is not None:
+            self._resolve(target, False, self._events)  # polled again before a second answer came
         retry = (self.last_request is not None and not self.last_answered and self.last_request.raw == req.raw)
         self.last_request = req
         self.last_answered = False
@@ -456,6 +467,9 @@ class Pairing:
                 o.age += 1
                 if o.age < LATE_WINDOW and req.t_end_ns - o.req.t_end_ns <= window:
                     break
+                if st.pending is not None:
+                    self._resolve(st, False, self._events)
+                    continue
                 st.open.popleft()
                 self._close(o)
             for o in st.open:
@@ -526,69 +540,100 @@ class Pairing:
                            exception_code=code if outcome == "exception" else 0, retry=o.retry,
                            response_ms=mid, response_ms_low=low, response_ms_high=high)
 
-    def _owner(self, st: _Station, rsp: Frame) -> _Open | None:
-        """The open request of ``st`` this answer belongs to (invariant 3), or None."""
+    def _owner(self, st: _Station, rsp: Frame) -> tuple[_Open | None, _Open | None]:
+        """The open request of ``st`` this answer belongs to (invariant 3), and an alternative.
+
+        The alternative (the newest open request) is set when the answer fits it like this
+        station's usual answers and the oldest only as an outlier: then what follows decides
+        (see :meth:`_on_response`). Otherwise it is None and the first element is final.
+        """
         fc = rsp.function & 0x7F
         cands = [o for o in st.open if o.req.function == fc and o.req.t_end_lo_ns <= rsp.t_end_hi_ns]
         if not cands:
-            return None
+            return None, None
         first = cands[0]
         if len(cands) == 1 or not self.timed:
-            return first
+            return first, None
         newest = cands[-1]
         slowest = self._slowest_ns(st)
         from_first = rsp.t_start_ns - first.req.t_end_ns
         from_newest = rsp.t_start_ns - newest.req.t_end_ns
         slack = rsp.t_end_hi_ns - rsp.t_end_lo_ns
         if from_first > LATE_PROOF * slowest + slack and -slack <= from_newest <= FIT_SLACK * slowest + slack:
-            return newest
+            return newest, None
         usual = st.usual_ns()
         if usual is not None and from_newest >= -slack:
             def is_usual(t: float) -> bool:
                 return USUAL_LOW * usual[0] - slack <= t <= USUAL_HIGH * usual[1] + slack
-            # the answer fits the newest request like this station's answers do, and the oldest
-            # one only as an outlier: its answer to the oldest was lost, this one is the newest's
             if is_usual(from_newest) and not is_usual(from_first):
-                return newest
-        return first
+                return first, newest
+        return first, None
+
+    def _credit(self, st: _Station, o: _Open, rsp: Frame, late: bool, events: list[Damage]) -> None:
+        """``rsp`` answers ``o``; every older open request of the station went unanswered (in order)."""
+        while st.open and st.open[0] is not o:
+            self._close(st.open.popleft())
+        st.open.popleft()
+        if self.current is o:
+            self.current = None
+            self.last_answered = True
+            hit = o.damage
+            if hit is not None and hit.kind in ("crc_error", "truncated") and hit.raw[:1] == rsp.raw[:1]:
+                # Two answers from "station N" to one request: they overlapped on the line, and
+                # the master heard a collision, whatever came through intact afterwards.
+                events.append(Damage("collision", rsp.port, hit.t_ns, hit.raw, rsp.address,
+                                     f"two answers from station {rsp.address} to one request overlapped "
+                                     f"(duplicate address?)"))
+                o.slot.txn = Transaction(o.req.address, o.req.function, "corrupt", o.req.t_end_ns, o.req.raw,
+                                         retry=o.retry, response_raw=hit.raw)
+                o.slot.final = True
+                return
+        txn = self._answer(o, rsp, late, events)
+        o.slot.txn = txn
+        o.slot.final = True
+        st.answers += 1
+        self.answers += 1
+        if not late and not math.isnan(txn.response_ms):
+            st.slowest_ns = max(st.slowest_ns, txn.response_ms * 1e6)
+            st.recent.append(txn.response_ms * 1e6)
+
+    @staticmethod
+    def _is_late(o: _Open, rsp: Frame) -> bool:
+        """Whether the master had moved on from ``o`` when ``rsp`` began."""
+        if not o.moved_on:
+            return False
+        if o.moved_on_port == rsp.port:
+            return True  # one byte stream: the answer came after the next request
+        # two ports: late only if the answer surely began after the next request ended
+        return rsp.t_end_lo_ns - rsp.wire_length * rsp.char_ns > o.moved_on_hi_ns
+
+    def _resolve(self, st: _Station, in_order: bool, events: list[Damage]) -> None:
+        """Settle a held answer: in order (a second answer came), else the newest request's (none came).
+
+        A station that answers two requests answered the older first; one whose answer to the
+        older request was lost answers only the newest, at its usual time.
+        """
+        rsp, first, newest, late_first, late_newest = st.pending
+        st.pending = None
+        o, late = (first, late_first) if in_order else (newest, late_newest)
+        if o not in st.open:
+            o, late = (newest, late_newest) if o is first else (first, late_first)
+        if o not in st.open:
+            events.append(Damage("orphan_response", rsp.port, rsp.t_start_ns, rsp.raw, rsp.address,
+                                 f"a valid answer from station {rsp.address} that no pending request asked for"))
+            return
+        self._credit(st, o, rsp, late, events)
 
     def _on_response(self, rsp: Frame, events: list[Damage]) -> None:
         st = self.stations.get(rsp.address)
-        o = self._owner(st, rsp) if st is not None else None
+        if st is not None and st.pending is not None:
+            self._resolve(st, True, events)  # a second answer came: the held one answered in order
+        o, alt = self._owner(st, rsp) if st is not None else (None, None)
+        if o is not None and alt is not None:
+            st.pending = (rsp, o, alt, self._is_late(o, rsp), self._is_late(alt, rsp))
+            return
         if o is not None:
-            # Every older open request of this station went unanswered: it answers in order.
-            while st.open and st.open[0] is not o:
-                self._close(st.open.popleft())
-            st.open.popleft()
-            if self.current is o:
-                self.current = None
-                self.last_answered = True
-                hit = o.damage
-                if hit is not None and hit.kind in ("crc_error", "truncated") and hit.raw[:1] == rsp.raw[:1]:
-                    # Two answers from "station N" to one request: they overlapped on the line, and
-                    # the master heard a collision, whatever came through intact afterwards.
-                    events.append(Damage("collision", rsp.port, hit.t_ns, hit.raw, rsp.address,
-                                         f"two answers from station {rsp.address} to one request overlapped "
-                                         f"(duplicate address?)"))
-                    o.slot.txn = Transaction(o.req.address, o.req.function, "corrupt", o.req.t_end_ns, o.req.raw,
-                                             retry=o.retry, response_raw=hit.raw)
-                    o.slot.final = True
-                    return
-            if not o.moved_on:
-                late = False
-            elif o.moved_on_port == rsp.port:
-                late = True  # one byte stream: the answer came after the next request
-            else:
-                # two ports: late only if the answer surely began after the next request ended
-                late = rsp.t_end_lo_ns - rsp.wire_length * rsp.char_ns > o.moved_on_hi_ns
-            txn = self._answer(o, rsp, late, events)
-            o.slot.txn = txn
-            o.slot.final = True
-            st.answers += 1
-            self.answers += 1
-            if not late and not math.isnan(txn.response_ms):
-                st.slowest_ns = max(st.slowest_ns, txn.response_ms * 1e6)
-                st.recent.append(txn.response_ms * 1e6)
+            self._credit(st, o, rsp, self._is_late(o, rsp), events)
             return
         w = self.current
         fc = rsp.function & 0x7F

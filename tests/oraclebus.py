@@ -562,19 +562,36 @@ _ANSWERED = ("ok", "exception", "late")
 
 
 def decode_tap(path: Path, response_timeout_ms: float | None = None):
-    """Decode a hex tap with buswitness's public API; returns (frames, transactions, events) tables."""
+    """Decode a hex tap the way ``analyze`` does; returns (frames, transactions, events) tables.
+
+    The same steps as ``buswitness.analysis.pipeline.analyze``: the adapter latency the file does
+    not state is estimated from the records, the decoder records what the wire shows, and the
+    answers are judged once against the master's timeout (given, else inferred from the traffic).
+    """
     import pandas as pd
+    from buswitness.analysis.figures import Accumulator
+    from buswitness.analysis.pipeline import assess_delivery, delivery_headers
+    from buswitness.analysis.timeout import infer_timeout
     from buswitness.capture.importers import HexTextSource
     from buswitness.decode.decoder import DecoderConfig, decode_source
 
     src = HexTextSource(Path(path))
-    cfg = DecoderConfig.from_header(src.header, response_timeout_ms=response_timeout_ms)
-    outs = list(decode_source(src, cfg))
+    _reported, decoding = delivery_headers(src.header, assess_delivery(src))
+    outs = list(decode_source(src, DecoderConfig.from_header(decoding)))
     frames = pd.concat([o.frames for o in outs], ignore_index=True)
     tx = pd.concat([o.transactions for o in outs], ignore_index=True)
     events = pd.concat([o.events for o in outs], ignore_index=True)
-    return (frames.sort_values("t_end_ns", kind="stable").reset_index(drop=True),
-            tx.sort_values("t_request_end_ns", kind="stable").reset_index(drop=True), events)
+    tx = tx.sort_values("t_request_end_ns", kind="stable").reset_index(drop=True)
+    timeout = response_timeout_ms
+    if timeout is None:
+        acc = Accumulator(t0_ns=int(tx.t_request_end_ns.min()) if len(tx) else 0, char_ns=decoding.serial.char_time_s * 1e9)
+        acc.add_transactions(tx)
+        timeout = infer_timeout(acc.move_on, acc.in_time).timeout_ms
+    if timeout is not None:
+        outcome = tx.outcome.astype(str)
+        over = outcome.isin(["ok", "exception"]) & (tx.response_ms > timeout)
+        tx["outcome"] = outcome.where(~over, "late")
+    return (frames.sort_values("t_end_ns", kind="stable").reset_index(drop=True), tx, events)
 
 
 def _frame_to_burst(frames, bursts: list[Burst]) -> dict[int, int]:

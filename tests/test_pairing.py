@@ -258,8 +258,6 @@ def test_a_damaged_answer_then_a_retry_and_a_good_answer_is_one_corrupt_attempt_
     assert [e.kind for e in events] == ["crc_error"]
 
 
-@pytest.mark.xfail(reason="decode/arrival.py still clamps the byte-time bounds into a point (being fixed)",
-                   strict=False)
 def test_a_timing_contradiction_widens_the_interval_instead_of_collapsing_it():
     # answers that (by the stated 8E1 timing) would begin before the request ended: the capture's
     # format or latency is wrong. The interval must stay an interval and the conflict be reported.
