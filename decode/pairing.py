@@ -166,6 +166,7 @@ class Pairing:
         self._held: Frame | None = None  # an identical frame whose class waits for what follows it
         self._events: list[Damage] = []  # events made while settling it, handed out with the next frame
         self._collided: list[Damage] = []  # collision events of the last damage, for collisions()
+        self._settling: _Open | None = None  # the awaited request whose answer is held (see _owner)
 
     # -- what has been learnt -----------------------------------------------------------------
     def station(self, address: int) -> _Station:
@@ -380,6 +381,10 @@ class Pairing:
     # -- internals ----------------------------------------------------------------------------------
     def _on_request(self, req: Frame) -> None:
         prev = self.current
+        held, self._settling = self._settling, None
+        if held is not None and not held.moved_on:
+            held.moved_on_hi_ns = req.t_end_hi_ns
+            held.moved_on_port = req.port
         if prev is not None:
             prev.moved_on_hi_ns = req.t_end_hi_ns
             prev.moved_on_port = req.port
@@ -543,9 +548,11 @@ class Pairing:
     def _owner(self, st: _Station, rsp: Frame) -> tuple[_Open | None, _Open | None]:
         """The open request of ``st`` this answer belongs to (invariant 3), and an alternative.
 
-        The alternative (the newest open request) is set when the answer fits it like this
-        station's usual answers and the oldest only as an outlier: then what follows decides
-        (see :meth:`_on_response`). Otherwise it is None and the first element is final.
+        The alternative (the newest open request) is set when timing speaks for it: the answer
+        came far later after the oldest than the station ever answered in time, and fits the
+        newest well; or it fits the newest like this station's usual answers and the oldest only
+        as an outlier. Then what follows decides (see :meth:`_resolve`). Otherwise the
+        alternative is None and the first element is final.
         """
         fc = rsp.function & 0x7F
         cands = [o for o in st.open if o.req.function == fc and o.req.t_end_lo_ns <= rsp.t_end_hi_ns]
@@ -555,13 +562,15 @@ class Pairing:
         if len(cands) == 1 or not self.timed:
             return first, None
         newest = cands[-1]
-        slowest = self._slowest_ns(st)
+        usual = st.usual_ns()
+        # its usual slowest (95th percentile: one freak answer does not set it), else the bus's
+        slowest = max(usual[1], ECHO_FLOOR_NS / ECHO_SLACK) if usual is not None else self._slowest_ns(st)
         from_first = rsp.t_start_ns - first.req.t_end_ns
         from_newest = rsp.t_start_ns - newest.req.t_end_ns
         slack = rsp.t_end_hi_ns - rsp.t_end_lo_ns
-        if from_first > LATE_PROOF * slowest + slack and -slack <= from_newest <= FIT_SLACK * slowest + slack:
-            return newest, None
-        usual = st.usual_ns()
+        if (from_first > LATE_PROOF * slowest + slack
+                and -slack <= from_newest <= max(FIT_SLACK * slowest, from_first / LATE_PROOF) + slack):
+            return first, newest
         if usual is not None and from_newest >= -slack:
             def is_usual(t: float) -> bool:
                 return USUAL_LOW * usual[0] - slack <= t <= USUAL_HIGH * usual[1] + slack
@@ -631,6 +640,11 @@ class Pairing:
         o, alt = self._owner(st, rsp) if st is not None else (None, None)
         if o is not None and alt is not None:
             st.pending = (rsp, o, alt, self._is_late(o, rsp), self._is_late(alt, rsp))
+            if self.current is alt:
+                # the master has an answer, whichever request it belongs to; it moves on from here
+                self.current = None
+                self.last_answered = True
+                self._settling = alt
             return
         if o is not None:
             self._credit(st, o, rsp, self._is_late(o, rsp), events)
