@@ -154,6 +154,7 @@ class Accumulator:
                                                                     np.float64))
     _last_frame_end_ns: int | None = None
     _pending_timeout: tuple | None = None  # (station, t_request_end_ns) awaiting the next request
+    _prev_tx: tuple = (-1, -1)  # (station, t_response_start_ns) of the last transaction seen
     _seq: int = 0
 
     # -- feeding ---------------------------------------------------------------------------------
@@ -266,8 +267,17 @@ class Accumulator:
         self.last_request_ns[s[last]] = t[last]
 
     def _move_on(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, t_req: np.ndarray) -> None:
-        """Silence after an unanswered request until the master's next request: its timeout at work."""
-        timeout = outcome == _OUTCOME_INDEX["timeout"]
+        """Silence after an unanswered request until the master's next request: its timeout at work.
+
+        Not where the station's late answer to its previous request came during that silence (a
+        retry, and the answer to the first attempt after it): the master may have taken that
+        answer and moved on early, so the silence says nothing about its timeout.
+        """
+        resp = tx["t_response_start_ns"].to_numpy(np.int64)
+        prev_station = np.concatenate(([self._prev_tx[0]], station[:-1]))
+        prev_resp = np.concatenate(([self._prev_tx[1]], resp[:-1]))
+        self._prev_tx = (int(station[-1]), int(resp[-1]))
+        timeout = (outcome == _OUTCOME_INDEX["timeout"]) & ~((prev_station == station) & (prev_resp > t_req))
         if self._pending_timeout is None and not timeout.any():
             return
         need = np.zeros(len(tx), bool)
