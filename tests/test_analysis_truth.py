@@ -114,3 +114,13 @@ def test_a_given_timeout_and_the_same_timeout_inferred_give_the_same_counts(tmp_
     counts = ("requests", "answered", "timeouts", "late", "corrupt", "ambiguous", "retries", "answers_over_timeout")
     for a, b in zip(summary_dict(inferred)["stations"], summary_dict(given)["stations"]):
         assert {k: a[k] for k in counts} == {k: b[k] for k in counts}
+
+
+def test_the_masters_timeout_is_inferred_as_simulated_when_late_answers_follow_retries(tmp_path):
+    # the pump station's slow drive answers after the master's retry; the master takes that late
+    # answer and moves on early: those silences must not pull the inferred timeout down
+    sim = simulate(load_scenario("pumpstation"), duration_s=1800, seed=4, keep_tables=False)
+    capture = tmp_path / "sim.bwcap"
+    sim.write(capture)
+    result = analyze(open_capture(capture), AnalysisOptions(progress=False))
+    assert result.timeout.timeout_ms == load_scenario("pumpstation").master.timeout_ms  # 200 ms
