@@ -481,3 +481,23 @@ def test_four_wire_ports_tell_the_talker_from_their_role(marked):
     idle = [x for x in out if isinstance(x, Damage)]
     assert Counter(x.kind for x in idle) == Counter({"idle_line_byte": 88})
     assert Counter(x.station for x in idle) == Counter({-1: 44, 1: 11, 2: 11, 3: 11, 17: 11})
+
+
+@pytest.mark.slow
+def test_the_simulated_unbiased_line_answers_every_poll_and_names_the_bias(tmp_path):
+    # issue 12, "Done when": a line that floats between frames (the simulator's fault-unbiased:
+    # a marked 0x00 after the master, 0xFE after a station) gives every poll answered, no orphan or
+    # duplicate-address events, and the bias finding; never the sniffer-format one.
+    from buswitness.analysis import AnalysisOptions, analyze
+    from buswitness.capture.sources import open_capture
+    from buswitness.simulate import load_scenario, simulate
+    sim = simulate(load_scenario("fault-unbiased"), duration_s=300, seed=1, keep_tables=False)
+    sim.write(tmp_path / "u.bwcap")
+    result = analyze(open_capture(tmp_path / "u.bwcap"), AnalysisOptions(progress=False))
+    for s in result.stations:
+        truth = sim.truth.stations[s.address]
+        assert (s.requests, s.answered) == (truth["requests"], truth["answered"]) and s.requests == s.answered
+    for kind in ("orphan_response", "unexpected_responder", "collision"):
+        assert kind not in result.bus.events
+    rules = [f.rule for f in result.findings]
+    assert "line-not-held-idle" in rules and "sniffer-format" not in rules
