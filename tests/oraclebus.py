@@ -610,6 +610,16 @@ def _frame_to_burst(frames, bursts: list[Burst]) -> dict[int, int]:
     return out
 
 
+def _nearest_frame(frames, t_start_ns: int, raw: bytes) -> int | None:
+    """The decoded frame with these bytes that starts nearest ``t_start_ns`` (within 2 ms), if any."""
+    best, best_d = None, 2_000_000
+    for i, (t, r) in enumerate(zip(frames["t_start_ns"], frames["raw"])):
+        d = abs(int(t) - t_start_ns)
+        if d < best_d and bytes(r) == raw:
+            best, best_d = i, d
+    return best
+
+
 def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int, dead: int) -> Figures:
     """Score buswitness's transactions against the truth, attempt by attempt.
 
@@ -654,6 +664,8 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
         answer_burst = None
         if row is not None and int(row["t_response_start_ns"]) >= 0:
             fi = rsp_key.get((int(row["t_response_start_ns"]), bytes(row["response_raw"])))
+            if fi is None:
+                fi = _nearest_frame(frames, int(row["t_response_start_ns"]), bytes(row["response_raw"]))
             bi = f2b.get(fi) if fi is not None else None
             answer_burst = bursts[bi] if bi is not None else None
         right = a.answer is not None and answer_burst is a.answer
