@@ -620,6 +620,16 @@ def _nearest_frame(frames, t_start_ns: int, raw: bytes) -> int | None:
     return best
 
 
+def _nearest_burst(bursts: list[Burst], raw: bytes, start_ns: int) -> int | None:
+    """The wire burst carrying ``raw`` that began nearest ``start_ns`` (within 30 ms), if any."""
+    best, best_d = None, 30_000_000
+    for i, b in enumerate(bursts):
+        d = abs(b.start_ns - start_ns)
+        if d < best_d and b.wire == raw:
+            best, best_d = i, d
+    return best
+
+
 def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int, dead: int) -> Figures:
     """Score buswitness's transactions against the truth, attempt by attempt.
 
@@ -667,6 +677,10 @@ def compare(attempts: list[Attempt], bursts: list[Burst], frames, tx, t0_ns: int
             if fi is None:
                 fi = _nearest_frame(frames, int(row["t_response_start_ns"]), bytes(row["response_raw"]))
             bi = f2b.get(fi) if fi is not None else None
+            if bi is None:
+                # the byte alignment skipped it (runs of identical frames): the wire burst with the
+                # same bytes that began nearest (the tap's clock starts at t0_ns), within 30 ms
+                bi = _nearest_burst(bursts, bytes(row["response_raw"]), t0_ns + int(row["t_response_start_ns"]))
             answer_burst = bursts[bi] if bi is not None else None
         right = a.answer is not None and answer_burst is a.answer
         if a.station == dead:
