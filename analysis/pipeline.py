@@ -79,6 +79,15 @@ def _clock(header: CaptureHeader, first_ns: int) -> tuple[int, int]:
     return start, int(lead // NS_PER_MIN)
 
 
+def _accumulator(header: CaptureHeader, t0_ns: int, char_ns: float, minute0: int) -> Accumulator:
+    """An accumulator whose per-minute rows are whole minutes of UTC when the header states the wall clock."""
+    anchor = utc_anchor_of(header.start_utc)
+    utc0 = None if anchor is None else int(pd.Timestamp(anchor).value)
+    first_minute = (utc0 or 0) // NS_PER_MIN + minute0
+    return Accumulator(t0_ns=t0_ns, char_ns=char_ns, minute0=first_minute, utc0_ns=utc0,
+                       capture_id=str(getattr(header, "capture_id", "") or ""))
+
+
 def _first_time(frames: pd.DataFrame, tx: pd.DataFrame, events: pd.DataFrame) -> int | None:
     candidates = [int(t[c].min()) for t, c in ((frames, "t_start_ns"), (tx, "t_request_end_ns"), (events, "t_ns"))
                   if len(t)]
@@ -108,7 +117,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             if first is None:
                 return
             t0, minute0 = _clock(header, first)
-            acc = Accumulator(t0_ns=t0, char_ns=char_ns, minute0=minute0)
+            acc = _accumulator(header, t0, char_ns, minute0)
             if options.csv_dir or options.parquet_dir:
                 exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
                                          options.parquet_dir)
@@ -126,7 +135,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
                 process()
         process()
         if acc is None:
-            acc = Accumulator(t0_ns=int(header.start_monotonic_ns or 0), char_ns=char_ns)
+            acc = _accumulator(header, int(header.start_monotonic_ns or 0), char_ns, 0)
             if options.csv_dir or options.parquet_dir:
                 exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
                                          options.parquet_dir)
@@ -137,8 +146,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             exporter.abort()
         raise
     timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, acc.in_time)
-    acc.judge(timeout.timeout_ms)
-    return build_result(header, paths or [], damage, acc, smap, timeout)
+    return build_result(header, paths or [], damage, acc.figures(), smap, timeout)
 
 
 def _decoded(source, cfg, on_batch: Callable[[int], None]) -> Iterator:
