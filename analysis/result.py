@@ -116,6 +116,8 @@ class AnalysisResult:
     analysed_utc: str = ""
     unjudged: Figures | None = None  #: the same before judging: what ``merge_results`` adds together
     headers: list = field(default_factory=list)  #: every capture's header, when merged from several
+    sinks: list = field(default_factory=list, repr=False)  #: the outputs analyze fed (analysis/sinks)
+    written: list = field(default_factory=list)  #: files the sinks wrote
 
     @property
     def acc(self) -> Figures:
