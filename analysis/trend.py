@@ -165,6 +165,24 @@ def changes(table: pd.DataFrame) -> list[Change]:
     return sorted(out, key=lambda c: (c.night, c.site, c.bus, c.station, c.figure))
 
 
+def bus_ranking(table: pd.DataFrame) -> pd.DataFrame:
+    """Each bus on its latest night, worst first: requests, failures, failure rate, slowest station by p95."""
+    if table.empty:
+        return pd.DataFrame(columns=["site", "bus", "night", "requests", "failed", "failure_rate", "worst_station",
+                                     "worst_p95_ms"])
+    rows = []
+    for (site, bus), g in table.groupby(["site", "bus"], sort=True):
+        last = g[g["night"] == g["night"].max()]
+        failed = int((last["timeouts"] + last["late"] + last["errors"]).sum())
+        requests = int(last["requests"].sum())
+        slow = last.sort_values("p95_ms", ascending=False, na_position="last").iloc[0]
+        rows.append({"site": site, "bus": bus, "night": last["night"].iloc[0], "requests": requests, "failed": failed,
+                     "failure_rate": failed / requests if requests else None, "worst_station": int(slow["station"]),
+                     "worst_p95_ms": slow["p95_ms"]})
+    out = pd.DataFrame(rows)
+    return out.sort_values(["failure_rate", "worst_p95_ms"], ascending=False, na_position="last").reset_index(drop=True)
+
+
 def _num(v) -> bool:
     return v is not None and not (isinstance(v, float) and math.isnan(v))
 
@@ -183,6 +201,14 @@ def text_summary(table: pd.DataFrame, found: list[Change]) -> str:
         lines.extend(f"  {c.text()}" for c in found)
     else:
         lines.append("what changed and when: no step in p95 or failure rate between nights")
+    ranking = bus_ranking(table)
+    if len(ranking) > 1:
+        lines.append("")
+        lines.append("buses on their latest night, worst first:")
+        for _, r in ranking.iterrows():
+            rate = "-" if not _num(r["failure_rate"]) else f"{100 * r['failure_rate']:.2f} %"
+            lines.append(f"  {r['site']}/{r['bus']:12s} {str(r['night'])}  failed {r['failed']} of {r['requests']} "
+                         f"({rate}), slowest station {r['worst_station']} p95 {_ms(r['worst_p95_ms'])} ms")
     for (site, bus, station), g in table.groupby(["site", "bus", "station"], sort=True):
         name = str(g["name"].iloc[0] or "")
         lines.append("")
@@ -208,7 +234,10 @@ COLOURS = {"p50_ms": "#5b8a3a", "p95_ms": "#2f6f8f", "p99_ms": "#8a4f7d", "timeo
 def charts(table: pd.DataFrame, found: list[Change]) -> list[dict]:
     """One plotly figure per site, bus and station: response-time percentiles and failures by night."""
     out = []
-    for (site, bus, station), g in table.groupby(["site", "bus", "station"], sort=True):
+    changed = {(c.site, c.bus, c.station) for c in found}
+    groups = sorted(table.groupby(["site", "bus", "station"], sort=True),
+                    key=lambda kv: (tuple(kv[0][:2]) + (int(kv[0][2]),)) not in changed)
+    for (site, bus, station), g in groups:
         g = g.sort_values("night")
         x = [str(n) for n in g["night"]]
         data = []
@@ -223,16 +252,19 @@ def charts(table: pd.DataFrame, found: list[Change]) -> list[dict]:
         shapes = [{"type": "line", "x0": c.night, "x1": c.night, "yref": "paper", "y0": 0, "y1": 1,
                    "line": {"color": "#9c2f2b" if c.direction == "worse" else "#5a6f2f", "dash": "dot", "width": 2}}
                   for c in marks]
-        annotations = [{"x": c.night, "yref": "paper", "y": 1.0, "text": f"{c.figure} {c.direction}", "showarrow": False,
-                        "yanchor": "bottom", "font": {"size": 11}} for c in marks]
-        layout = {"margin": {"l": 60, "r": 60, "t": 28, "b": 40}, "paper_bgcolor": "rgba(0,0,0,0)",
-                  "plot_bgcolor": "#fbfaf7", "barmode": "stack", "height": 320,
+        annotations = [{"x": c.night, "yref": "paper", "y": 1.0, "text": f"{c.figure} {c.direction}",
+                        "showarrow": False, "yanchor": "bottom", "xanchor": "left", "font": {"size": 11},
+                        "yshift": 14 * k} for k, c in enumerate(marks)]
+        most = int((g["timeouts"] + g["late"] + g["errors"]).max()) if len(g) else 0
+        layout = {"margin": {"l": 60, "r": 60, "t": 40, "b": 50}, "paper_bgcolor": "rgba(0,0,0,0)",
+                  "plot_bgcolor": "#fbfaf7", "barmode": "stack", "height": 380,
                   "font": {"family": "system-ui, sans-serif", "size": 12, "color": "#27323a"},
-                  "legend": {"orientation": "h", "x": 0, "y": -0.18},
+                  "legend": {"orientation": "h", "x": 0, "y": -0.22, "yanchor": "top"},
                   "xaxis": {"type": "category", "title": {"text": "night (UTC date of the capture start)"}},
                   "yaxis": {"title": {"text": "response time (ms)"}, "rangemode": "tozero"},
                   "yaxis2": {"title": {"text": "requests failed"}, "overlaying": "y", "side": "right",
-                             "rangemode": "tozero", "showgrid": False},
+                             "rangemode": "tozero", "showgrid": False, "tickmode": "linear", "tick0": 0,
+                             "dtick": max(1, math.ceil(most / 4)), **({"range": [0, 1]} if most == 0 else {})},
                   "shapes": shapes, "annotations": annotations}
         name = str(g["name"].iloc[0] or "")
         out.append({"id": f"chart-{len(out)}", "title": f"{site} / {bus} · station {station}"
@@ -251,7 +283,7 @@ def render_page(table: pd.DataFrame, found: list[Change], root: str | Path, filt
     env = environment()
     return env.get_template("trend.html").render(
         t={"root": str(root), "filters": {k: v for k, v in filters.items() if v is not None}, "charts": figs,
-           "changes": found, "nights": nights, "text": text_summary(table, found), "version": __version__,
+           "changes": found, "nights": nights, "ranking": bus_ranking(table).to_dict("records"), "text": text_summary(table, found), "version": __version__,
            "buses": table[["site", "bus"]].drop_duplicates().shape[0] if not table.empty else 0},
         css=Markup(stylesheet("dashboard.css") + stylesheet("trend.css")), plotly_js=Markup(_plotly_js()),
         chart_json=Markup(script_json({c["id"]: c["spec"] for c in figs})))
