@@ -391,35 +391,44 @@ def build_capture(path: str, root: str, site: str, bus: str, capture_id: str | N
 def add_captures(root: str | Path, paths: Sequence[str | os.PathLike], site: str = "default", bus: str = "default",
                  scheduler=None, workers: int | None = None, timeout_ms: float | None = None,
                  progress: Callable[[int, int | None], None] | None = None) -> list[Added]:
-    """Add captures to the dataset at ``root``: serially (``scheduler=None``) or on a Dask cluster.
+    """Add captures of one site and bus to the dataset at ``root`` (see ``add_many``)."""
+    return add_many(root, [(p, site, bus) for p in paths], scheduler, workers, timeout_ms, progress)
 
-    ``scheduler`` is ``"local"`` (a LocalCluster of ``workers`` processes on this machine), the
-    address of a running Dask scheduler whose workers see ``root`` and the captures at the same
-    paths, or a ``distributed.Client`` already connected.
-    Captures already in the dataset (by content) and repeats in ``paths`` are skipped.
+
+def add_many(root: str | Path, items: Sequence[tuple], scheduler=None, workers: int | None = None,
+             timeout_ms: float | None = None, progress: Callable[[int, int | None], None] | None = None) -> list[Added]:
+    """Add captures, each ``(path, site, bus)``, to the dataset at ``root``: serially or on a Dask cluster.
+
+    ``scheduler`` is None (one after another in this process), ``"local"`` (a LocalCluster of
+    ``workers`` processes on this machine), the address of a running Dask scheduler whose workers
+    see ``root`` and the captures at the same paths, or a ``distributed.Client`` already connected.
+    Captures already in the dataset (by content) and repeats are skipped. Results come in the
+    order the builds finish.
     """
     root = Path(root)
-    check_name("site", site)
-    check_name("bus", bus)
+    for _, site, bus in items:
+        check_name("site", site)
+        check_name("bus", bus)
     root.mkdir(parents=True, exist_ok=True)
     repair(root)
     progress = progress or (lambda done, total: None)
-    jobs: dict[str, str] = {}
+    jobs: dict[str, tuple] = {}
     done: list[Added] = []
     known = manifest(root)
-    for p in paths:
+    for p, site, bus in items:
         cid = content_id(capture_files(p))
         if cid in known or cid in jobs:
             done.append(Added(str(p), cid, "present", folder=known.get(cid, {}).get("path", "")))
         else:
-            jobs[cid] = str(Path(p).resolve())
-    total = len(paths)
+            jobs[cid] = (str(Path(p).resolve()), site, bus)
+    total = len(items)
     progress(len(done), total)
     if not jobs:
         return done
+    where = str(root.resolve())
     if scheduler is None:
-        for cid, p in jobs.items():
-            done.append(build_capture(p, str(root.resolve()), site, bus, cid, timeout_ms))
+        for cid, (p, site, bus) in jobs.items():
+            done.append(build_capture(p, where, site, bus, cid, timeout_ms))
             progress(len(done), total)
         return done
     from distributed import Client, LocalCluster, as_completed
@@ -434,9 +443,8 @@ def add_captures(root: str | Path, paths: Sequence[str | os.PathLike], site: str
     else:
         client = Client(scheduler)
     try:
-        futures = [client.submit(build_capture, p, str(root.resolve()), site, bus, cid, timeout_ms, key=f"add-{cid}",
-                                 pure=False)
-                   for cid, p in jobs.items()]
+        futures = [client.submit(build_capture, p, where, site, bus, cid, timeout_ms, key=f"add-{cid}", pure=False)
+                   for cid, (p, site, bus) in jobs.items()]
         for future in as_completed(futures):
             done.append(future.result())
             progress(len(done), total)
