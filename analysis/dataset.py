@@ -140,7 +140,7 @@ class DatasetSink(Sink):
         self.context = context
         self.protocol = DecoderConfig.from_header(context.header).protocol
         self.schemas = _schemas()
-        self.stage = self.root / "_staging" / f"{self.capture_id}.{os.getpid()}.{uuid.uuid4().hex[:8]}"
+        self.stage = self.root / "_staging" / f"{self.capture_id}.{_host()}.{os.getpid()}.{uuid.uuid4().hex[:8]}"
         self.stage.mkdir(parents=True)
         for name in ("frames", "transactions", "events"):
             target = self.stage / (f"{name}.decoded.parquet" if name == "transactions" else f"{name}.parquet")
@@ -301,6 +301,31 @@ def _write_manifest(root: Path, folder: Path) -> None:
         f.write(json.dumps(entry, sort_keys=True) + "\n")
 
 
+#: A staging folder of another machine is left alone this long (its add may still be running).
+STAGING_FOREIGN_S = 24 * 3600
+
+
+def _host() -> str:
+    return re.sub(r"[^A-Za-z0-9-]", "-", os.uname().nodename)[:40] or "host"
+
+
+def _abandoned(folder: Path) -> bool:
+    """A staging folder whose add is over: its process on this machine is gone (or it is old)."""
+    parts = folder.name.split(".")
+    if len(parts) == 4 and parts[1] == _host() and parts[2].isdigit():
+        try:
+            os.kill(int(parts[2]), 0)
+        except ProcessLookupError:
+            return True
+        except PermissionError:
+            return False
+        return False
+    try:
+        return time.time() - folder.stat().st_mtime > STAGING_FOREIGN_S
+    except OSError:
+        return False
+
+
 def capture_folders(root: str | Path) -> list[Path]:
     return sorted(Path(root).glob("site=*/bus=*/date=*/capture=*"))
 
@@ -318,14 +343,19 @@ def manifest(root: str | Path) -> dict[str, dict]:
 
 
 def repair(root: str | Path) -> dict:
-    """Make the dataset consistent after an interrupted add: drop staging folders, restore manifest entries."""
+    """Make the dataset consistent after an interrupted add: drop abandoned staging folders, restore manifest entries.
+
+    A staging folder is abandoned when the process that made it on this machine is gone, or, from
+    another machine, after STAGING_FOREIGN_S; adds running at the same time keep theirs.
+    """
     root = Path(root)
     dropped = 0
     staging = root / "_staging"
     if staging.exists():
         for p in staging.iterdir():
-            shutil.rmtree(p, ignore_errors=True)
-            dropped += 1
+            if _abandoned(p):
+                shutil.rmtree(p, ignore_errors=True)
+                dropped += 1
     known = manifest(root)
     restored = 0
     folders = capture_folders(root)

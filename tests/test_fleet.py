@@ -174,6 +174,17 @@ def test_a_failure_while_adding_leaves_nothing_behind(tmp_path, week, monkeypatc
     assert not any((root / "_staging").iterdir())
 
 
+def test_repair_leaves_the_staging_folder_of_a_running_add_alone(tmp_path):
+    from buswitness.analysis.dataset import _host
+    root = tmp_path / "ds"
+    running = root / "_staging" / f"abc.{_host()}.{os.getpid()}.0000"
+    gone = root / "_staging" / f"abd.{_host()}.999999999.0000"
+    for p in (running, gone):
+        p.mkdir(parents=True)
+    repair(root)
+    assert running.exists() and not gone.exists()
+
+
 def _cli(*args: str) -> list[str]:
     return [sys.executable, "-m", "buswitness.cli.main", *args]
 
@@ -233,6 +244,11 @@ def test_dataset_and_trend_commands(tmp_path, week):
     assert "Plotly" in page and "https://" not in page.split("<script>")[0]
     data = json.loads((tmp_path / "t.json").read_text())
     assert {c["night"] for c in data["changes"]} == {"2026-12-03", "2026-12-05"}
+    # more than one capture: built on a local Dask cluster by default
+    r = subprocess.run(_cli("dataset", "add", str(tmp_path / "ds-dask"), *map(str, week["west"][:3]), "--site", "plant",
+                            "--bus", "west", "--workers", "2", "--no-progress"), capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert "3 capture(s) added" in r.stdout and check(tmp_path / "ds-dask") == []
     for bad in (["dataset", "add", str(root), str(week["east"][0]), "--site", "a b"], ["trend", str(tmp_path / "none")]):
         r = subprocess.run(_cli(*bad), capture_output=True, text=True)
         assert r.returncode in (2, 3) and len(r.stderr.strip().splitlines()) == 1, r.stderr
