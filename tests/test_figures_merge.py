@@ -99,3 +99,34 @@ def test_judged_figures_do_not_merge(tmp_path):
     r = analyze(CaptureReader(parts[0], single_file=True), AnalysisOptions(progress=False))
     with pytest.raises(ValueError, match="judged"):
         Figures.merge([r.figures, r.unjudged])
+
+
+def _night(tmp_path, start_utc: str, seed: int):
+    import dataclasses
+    sc = dataclasses.replace(load_scenario("fault-absent"), start_utc=start_utc)
+    path = tmp_path / f"n{seed}.bwcap"
+    simulate(sc, duration_s=150.0, seed=seed).write(path)
+    return analyze(CaptureReader(path), AnalysisOptions(progress=False))
+
+
+def test_per_minute_rows_are_whole_minutes_of_utc(tmp_path):
+    r = _night(tmp_path, "2026-12-01T22:00:30+00:00", 1)
+    assert r.minute_start_s(0) == -30.0 and r.minute_start_s(1) == 30.0
+    assert r.minute_utc_ns(0) % 60_000_000_000 == 0
+    assert r.utc_at(r.minute_start_s(1)).startswith("2026-12-01T22:01:00")
+
+
+def test_nights_merge_on_one_absolute_time_axis(tmp_path):
+    a = _night(tmp_path, "2026-12-01T22:00:00+00:00", 1)
+    b = _night(tmp_path, "2026-12-02T22:00:00+00:00", 2)
+    m = merge_results([b, a])
+    assert m.header.start_utc == a.header.start_utc  # the earlier night's clock
+    for s in m.stations:
+        sa, sb = a.station(s.address), b.station(s.address)
+        assert s.requests == sa.requests + sb.requests and s.timeouts == sa.timeouts + sb.timeouts
+        series = m.station_series(s.address)
+        assert sum(series["requests"]) == s.requests
+        # a day apart: the second night's first minute is row 1440 of the merged series
+        assert series["requests"][1440:1443] == b.station_series(s.address)["requests"][:3]
+    assert m.minutes() == 1440 + b.minutes()
+    assert m.bus.frames == a.bus.frames + b.bus.frames
