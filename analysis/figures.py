@@ -9,7 +9,7 @@ capped for the example lists (worst transactions, late answers: the counts stay 
 
 from __future__ import annotations
 
-import copy
+import dataclasses
 import heapq
 import math
 from dataclasses import dataclass, field
@@ -430,8 +430,9 @@ class Accumulator:
 
     # -- handing over ------------------------------------------------------------------------------
 
-    def figures(self) -> Figures:
-        """The plain, mergeable figures so far (a copy: feeding on does not change them)."""
+    def figures(self, copy: bool = True) -> Figures:
+        """The plain, mergeable figures so far: a copy (feeding on does not change them), or, with
+        ``copy=False`` for an accumulator that is done, its own arrays handed over."""
         def rows(heaps: dict) -> dict:
             return {int(st): [(float(rt), r) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
                     for st, h in heaps.items() if h}
@@ -442,7 +443,7 @@ class Accumulator:
         return Figures(
             t0_ns=self.t0_ns, char_ns=self.char_ns, utc0_ns=self.utc0_ns, minute0=self.minute0,
             capture_ids=[self.capture_id] if self.capture_id else [],
-            **{name: getattr(self, name).copy() for name in _ARRAYS},
+            **{name: getattr(self, name).copy() if copy else getattr(self, name) for name in _ARRAYS},
             frames=self.frames, frame_bytes=self.frame_bytes, busy_ns=self.busy_ns, first_ns=self.first_ns,
             last_ns=self.last_ns, unknown_outcomes=self.unknown_outcomes,
             largest_gaps=sorted(self.largest_gaps, reverse=True),
@@ -771,7 +772,10 @@ class Figures:
 
     def judged_copy(self, timeout_ms: float | None) -> Figures:
         """A copy judged against ``timeout_ms``; this one stays mergeable."""
-        out = copy.deepcopy(self)
+        out = dataclasses.replace(self)  # shares what judging leaves alone; copies what it changes
+        out.outcomes, out.exception_codes = self.outcomes.copy(), self.exception_codes.copy()
+        out.station_minutes = {st: a.copy() for st, a in self.station_minutes.items()}
+        out.late_rows = {st: list(rows) for st, rows in self.late_rows.items()}
         out.judge(timeout_ms)
         return out
 

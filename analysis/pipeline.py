@@ -161,7 +161,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             acc = start(int(header.start_monotonic_ns or 0), 0)
         timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on,
                                                                                               acc.in_time)
-        result = build_result(header, paths or [], damage, acc.figures(), smap, timeout)
+        result = build_result(header, paths or [], damage, acc.figures(copy=False), smap, timeout)
         result.sinks = sinks
         if close_sinks and sinks:
             result.findings = evaluate_findings(result)

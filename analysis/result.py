@@ -227,16 +227,12 @@ class AnalysisResult:
             slow.extend(self.slowest_rows(st)[:per_station])
             failed.extend(self.failure_rows(st)[:per_station])
         rows = sorted(slow, key=lambda r: -(r["response_ms"] or 0.0)) + sorted(failed, key=lambda r: r["t_s"])
-        for r in rows:
-            r.setdefault("utc", self.utc_at(r["t_s"]))
-            r["label"] = self.station_map.label(r["station"])
-        return rows
+        # new dicts: the figures' own rows stay as they are (they merge with other results)
+        return [dict(r, utc=r.get("utc") or self.utc_at(r["t_s"]), label=self.station_map.label(r["station"]))
+                for r in rows]
 
     def late_answers(self, address: int) -> list[dict]:
-        rows = self.figures.late_rows.get(address, [])
-        for r in rows:
-            r.setdefault("utc", self.utc_at(r["t_s"]))
-        return rows
+        return [dict(r, utc=r.get("utc") or self.utc_at(r["t_s"])) for r in self.figures.late_rows.get(address, [])]
 
     def response_histogram(self, address: int) -> tuple[list[float], list[int]]:
         """The station's response-time histogram merged to at most ~80 bars: (lower edges ms, counts)."""
