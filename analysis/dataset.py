@@ -330,6 +330,13 @@ def capture_folders(root: str | Path) -> list[Path]:
     return sorted(Path(root).glob("site=*/bus=*/date=*/capture=*"))
 
 
+def _entry(root: Path, capture_id: str) -> dict | None:
+    try:
+        return json.loads((root / "_manifest" / f"{capture_id}.json").read_text())
+    except (OSError, ValueError):
+        return None
+
+
 def manifest(root: str | Path) -> dict[str, dict]:
     """capture id -> manifest entry, for every capture in the dataset."""
     out = {}
@@ -409,9 +416,9 @@ def build_capture(path: str, root: str, site: str, bus: str, capture_id: str | N
     t_start = time.perf_counter()
     files = capture_files(path)
     cid = capture_id or content_id(files)
-    known = manifest(root)
-    if cid in known and (Path(root) / known[cid]["path"]).is_dir():
-        return Added(str(path), cid, "present", folder=known[cid]["path"])
+    entry = _entry(Path(root), cid)  # this capture only: the add may have been queued before another built it
+    if entry is not None and (Path(root) / entry["path"]).is_dir():
+        return Added(str(path), cid, "present", folder=entry["path"])
     sink = DatasetSink(root, site, bus, cid, files)
     result = analyze(open_capture(path), AnalysisOptions(timeout_ms=timeout_ms), sinks=[sink])
     return Added(str(path), cid, sink.status, frames=result.bus.frames, seconds=time.perf_counter() - t_start,
