@@ -15,7 +15,7 @@ _HOME = {
     "AnalysisOptions": "pipeline", "analyze": "pipeline", "analyze_tables": "pipeline",
     "AnalysisResult": "result", "BusFigures": "result", "StationFigures": "result",
     "StationInfo": "stationmap", "StationMap": "stationmap", "load_station_map": "stationmap",
-    "TimeoutEstimate": "timeout",
+    "TimeoutEstimate": "timeout", "merge_results": "result", "Figures": "figures",
 }
 
 
@@ -25,5 +25,5 @@ def __getattr__(name: str) -> Any:
     raise AttributeError(f"module 'buswitness.analysis' has no attribute {name!r}")
 
 
-__all__ = ["AnalysisOptions", "AnalysisResult", "BusFigures", "StationFigures", "StationInfo", "StationMap",
-           "TimeoutEstimate", "analyze", "analyze_tables", "load_station_map"]
+__all__ = ["AnalysisOptions", "AnalysisResult", "BusFigures", "Figures", "StationFigures", "StationInfo", "StationMap",
+           "TimeoutEstimate", "analyze", "analyze_tables", "load_station_map", "merge_results"]

@@ -83,12 +83,12 @@ def _histogram_svg(result: AnalysisResult, address: int, width: int = 760, heigh
 
 def _tail(result: AnalysisResult, s: StationFigures) -> list[dict]:
     timeout = result.timeout.timeout_ms
-    answered = int(result.acc.rt_mid[s.address].sum())
+    answered = int(result.response_counts(s.address).sum())
     if not timeout or not answered:
         return []
     rows = []
     for f in TAIL_FACTORS:
-        n = count_above(result.acc.rt_mid[s.address], timeout * f, FINE)
+        n = count_above(result.response_counts(s.address), timeout * f, FINE)
         rows.append({"threshold_ms": timeout * f, "factor": f, "count": n, "share": n / answered})
     return rows
 
@@ -112,7 +112,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         "header": result.header, "latency": latency, "latency_ms": latency_ms,
         "pitch_notices": [d["notice"] for d in result.delivery if d.get("notice")],
         "late": result.late_answers(address), "hist": _histogram_svg(result, address), "tail": _tail(result, s),
-        "failures": [r for r in result.acc.failures.get(address, [])],
+        "failures": result.failure_rows(address),
         "damage": result.damage, "char_ms": result.header.serial.char_time_s * 1000.0,
         "t35_ms": result.header.serial.t35_s * 1000.0, "resolution_pct": 100 * FINE.relative_resolution,
         "span": {"start": result.utc_at(result.span_s[0]), "end": result.utc_at(result.span_s[1]),

@@ -9,9 +9,11 @@ capped for the example lists (worst transactions, late answers: the counts stay 
 
 from __future__ import annotations
 
+import dataclasses
 import heapq
 import math
 from dataclasses import dataclass, field
+from functools import reduce
 
 import numpy as np
 import pandas as pd
@@ -114,7 +116,9 @@ class Accumulator:
 
     t0_ns: int  #: the capture start the file states, on the record clock: every reported time counts from it
     char_ns: float
-    minute0: int = 0  #: minute (since t0_ns) of the per-minute series' first row
+    minute0: int = 0  #: absolute minute (see ``Figures.minute0``) of the per-minute series' first row
+    utc0_ns: int | None = None  #: UTC (ns since 1970) at t0_ns, when the capture states its wall clock
+    capture_id: str = ""
     outcomes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, len(OUTCOMES)), np.int64))
     retries: np.ndarray = field(default_factory=lambda: np.zeros(N_ADDR, np.int64))
     exception_codes: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, 256), np.int64))
@@ -129,6 +133,7 @@ class Accumulator:
     in_time: np.ndarray = field(default_factory=lambda: np.zeros(FINE.count, np.int64))  #: bus-wide, ok + exception
     poll: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
     last_request_ns: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -1, np.int64))
+    first_request_ns: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -1, np.int64))
     move_on: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR, FINE.count), np.int64))
     move_on_sum_ms: np.ndarray = field(default_factory=lambda: np.zeros(N_ADDR))
     events: np.ndarray = field(default_factory=lambda: np.zeros((N_ADDR + 1, len(EVENT_KINDS)), np.int64))
@@ -153,6 +158,8 @@ class Accumulator:
     bus_minutes: _Growing = field(default_factory=lambda: _Growing(len(BUS_MINUTE_COLUMNS) + len(EVENT_KINDS),
                                                                     np.float64))
     _last_frame_end_ns: int | None = None
+    _first_frame_start_ns: int | None = None
+    _lead_request_ns: int | None = None  # start of the first request: ends a silence left open before it
     _pending_timeout: tuple | None = None  # (station, t_request_end_ns) awaiting the next request
     _prev_tx: tuple = (-1, -1)  # (station, t_response_start_ns) of the last transaction seen
     _seq: int = 0
@@ -160,7 +167,8 @@ class Accumulator:
     # -- feeding ---------------------------------------------------------------------------------
 
     def _minute(self, t_ns: np.ndarray) -> np.ndarray:
-        return np.maximum((np.asarray(t_ns, np.int64) - self.t0_ns) // NS_PER_MIN - self.minute0, 0)
+        anchor = self.utc0_ns or 0
+        return np.maximum((np.asarray(t_ns, np.int64) - self.t0_ns + anchor) // NS_PER_MIN - self.minute0, 0)
 
     def _span(self, t_ns: np.ndarray) -> None:
         if len(t_ns):
@@ -194,6 +202,7 @@ class Accumulator:
                                    ends[:-1]))
         gap_ms = (starts - prev_end) / 1e6
         if self._last_frame_end_ns is None:
+            self._first_frame_start_ns = int(starts[0])
             gap_ms, starts_g = gap_ms[1:], starts[1:]
         else:
             starts_g = starts
@@ -265,6 +274,9 @@ class Accumulator:
             _add_hist(self.poll, s[valid], np.maximum(d_ms, 0))
         last = np.concatenate((s[1:] != s[:-1], [True]))
         self.last_request_ns[s[last]] = t[last]
+        first = ~same
+        unset = self.first_request_ns[s[first]] < 0
+        self.first_request_ns[s[first][unset]] = t[first][unset]
 
     def _move_on(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, t_req: np.ndarray) -> None:
         """Silence after an unanswered request until the master's next request: its timeout at work.
@@ -278,7 +290,8 @@ class Accumulator:
         prev_resp = np.concatenate(([self._prev_tx[1]], resp[:-1]))
         self._prev_tx = (int(station[-1]), int(resp[-1]))
         timeout = (outcome == _OUTCOME_INDEX["timeout"]) & ~((prev_station == station) & (prev_resp > t_req))
-        if self._pending_timeout is None and not timeout.any():
+        first_block = self._lead_request_ns is None
+        if self._pending_timeout is None and not timeout.any() and not first_block:
             return
         need = np.zeros(len(tx), bool)
         need[0] = True
@@ -287,6 +300,8 @@ class Accumulator:
         raw = tx["request_raw"].to_numpy(dtype=object)
         req_len[need] = [len(r) for r in raw[need]]
         next_start = t_req - (req_len * self.char_ns).astype(np.int64)
+        if first_block:
+            self._lead_request_ns = int(next_start[0])
         if self._pending_timeout is not None:
             st, t_end = self._pending_timeout
             self._add_move_on(np.array([st]), np.array([(next_start[0] - t_end) / 1e6]))
@@ -423,65 +438,276 @@ class Accumulator:
                 series = self.station_minutes.setdefault(int(st), _Growing(len(MINUTE_COLUMNS)))
                 np.add.at(series.ensure(int(m.max()) + 1)[:, col], m, 1)
 
+    # -- handing over ------------------------------------------------------------------------------
+
+    def figures(self, copy: bool = True) -> Figures:
+        """The plain, mergeable figures so far: a copy (feeding on does not change them), or, with
+        ``copy=False`` for an accumulator that is done, its own arrays handed over."""
+        def rows(heaps: dict) -> dict:
+            return {int(st): [(float(rt), r) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
+                    for st, h in heaps.items() if h}
+
+        edges = {"first_request_ns": self.first_request_ns.copy(), "last_request_ns": self.last_request_ns.copy(),
+                 "first_frame_ns": self._first_frame_start_ns, "last_frame_end_ns": self._last_frame_end_ns,
+                 "lead_request_ns": self._lead_request_ns, "pending_timeout": self._pending_timeout}
+        return Figures(
+            t0_ns=self.t0_ns, char_ns=self.char_ns, utc0_ns=self.utc0_ns, minute0=self.minute0,
+            capture_ids=[self.capture_id] if self.capture_id else [],
+            **{name: getattr(self, name).copy() if copy else getattr(self, name) for name in _ARRAYS},
+            frames=self.frames, frame_bytes=self.frame_bytes, busy_ns=self.busy_ns, first_ns=self.first_ns,
+            last_ns=self.last_ns, unknown_outcomes=self.unknown_outcomes,
+            largest_gaps=sorted(self.largest_gaps, reverse=True),
+            worst=rows(self.worst), slow=rows(self.slow),
+            failures={st: list(v) for st, v in self.failures.items()},
+            late_rows={st: list(v) for st, v in self.late_rows.items()},
+            device_ids={st: list(v) for st, v in self.device_ids.items()},
+            station_minutes={st: g.view().copy() for st, g in self.station_minutes.items()},
+            station_minute_rt={st: g.view().copy() for st, g in self.station_minute_rt.items()},
+            station_minute_max={st: g.view().copy() for st, g in self.station_minute_max.items()},
+            bus_minutes=self.bus_minutes.view().copy(), edges=edges)
+
+
+#: Arrays of counts and extremes that every part adds (or min/max) into the whole.
+_ADDED = ("outcomes", "retries", "exception_codes", "functions", "rt_mid", "rt_low", "rt_high", "halfwidth",
+          "poll", "move_on", "move_on_sum_ms", "events", "gaps", "in_time")
+_ARRAYS = _ADDED + ("rt_min", "rt_max", "ok_max", "slow_dropped")
+
+
+def _shift_rows(rows: list, shift_s: float) -> list:
+    return rows if not shift_s else [dict(r, t_s=r["t_s"] + shift_s) for r in rows]
+
+
+def _aligned(parts: list[tuple[int, np.ndarray]], fill: float, how: str) -> np.ndarray | None:
+    """Series (first absolute minute, rows) put on one minute axis, added (or fmax-ed) where they overlap."""
+    parts = [(m0, a) for m0, a in parts if a is not None]
+    if not parts:
+        return None
+    lo = min(m0 for m0, _ in parts)
+    hi = max(m0 + len(a) for m0, a in parts)
+    out = np.full((hi - lo,) + parts[0][1].shape[1:], fill, dtype=parts[0][1].dtype)
+    for m0, a in parts:
+        view = out[m0 - lo: m0 - lo + len(a)]
+        if how == "max":
+            np.fmax(view, a, out=view)
+        else:
+            view += a
+    return out
+
+
+@dataclass
+class Figures:
+    """Plain, mergeable figures of a capture, of one part of it, or of many captures.
+
+    No feeding state and no open files: arrays of exact counts, log-spaced histograms (they merge
+    by adding), capped example lists, and per-minute series whose row 0 is the absolute minute
+    ``minute0``: whole minutes of UTC since 1970 when the capture states its wall clock
+    (``utc0_ns``), else whole minutes of the record clock since ``t0_ns``. Times in example rows
+    (``t_s``) count from ``t0_ns``. ``merge`` of the figures of the parts of a rotated capture
+    equals the figures of the whole; figures are judged against the master's timeout
+    (``judged``) once, after merging.
+    """
+
+    t0_ns: int
+    char_ns: float
+    utc0_ns: int | None
+    minute0: int
+    capture_ids: list
+    outcomes: np.ndarray
+    retries: np.ndarray
+    exception_codes: np.ndarray
+    functions: np.ndarray
+    rt_mid: np.ndarray
+    rt_low: np.ndarray
+    rt_high: np.ndarray
+    halfwidth: np.ndarray
+    poll: np.ndarray
+    move_on: np.ndarray
+    move_on_sum_ms: np.ndarray
+    events: np.ndarray
+    gaps: np.ndarray
+    in_time: np.ndarray
+    rt_min: np.ndarray
+    rt_max: np.ndarray
+    ok_max: np.ndarray
+    slow_dropped: np.ndarray
+    frames: int
+    frame_bytes: int
+    busy_ns: float
+    first_ns: int | None
+    last_ns: int | None
+    unknown_outcomes: int
+    largest_gaps: list          #: [(gap_ms, t_ns)], longest first
+    worst: dict                 #: station -> [(response_ms, row)], fastest first, at most WORST_PER_STATION
+    slow: dict                  #: station -> [(response_ms, row)]: slowest in-time answers, at most SLOW_KEEP
+    failures: dict              #: station -> [row], first in time
+    late_rows: dict             #: station -> [row], in time order
+    device_ids: dict            #: station -> [str]
+    station_minutes: dict       #: station -> (minutes, len(MINUTE_COLUMNS)) counts
+    station_minute_rt: dict     #: station -> (minutes, COARSE.count) response-time counts
+    station_minute_max: dict    #: station -> (minutes, 1) slowest answer (NaN: none)
+    bus_minutes: np.ndarray     #: (minutes, busy_ms, frames, bytes, *event kinds)
+    edges: dict = field(default_factory=dict)  #: first/last facts joining contiguous parts of one capture
+    judged_ms: float | None = None
+    judged: bool = False
+
+    # -- time ----------------------------------------------------------------------------------
+
+    @property
+    def anchor_ns(self) -> int:
+        return self.utc0_ns or 0
+
+    def record_ns_of_minute(self, minute: int) -> int:
+        """Record-clock time where row ``minute`` of the per-minute series begins."""
+        return self.t0_ns + (self.minute0 + minute) * NS_PER_MIN - self.anchor_ns
+
+    def minute_of(self, t_ns: int) -> int:
+        """Row of the per-minute series holding record-clock time ``t_ns``."""
+        return max(0, (int(t_ns) - self.t0_ns + self.anchor_ns) // NS_PER_MIN - self.minute0)
+
+    @property
+    def minutes(self) -> int:
+        return int(max([len(self.bus_minutes)] + [len(a) for a in self.station_minutes.values()]))
+
     # -- merging ---------------------------------------------------------------------------------
 
-    def merge(self, other: Accumulator) -> None:
-        """Add ``other`` (a later or parallel part of the same capture) into this one."""
-        if other.t0_ns != self.t0_ns or other.minute0 != self.minute0:
-            raise ValueError("accumulators of different capture starts cannot be merged")
-        for name in ("outcomes", "retries", "exception_codes", "functions", "rt_mid", "rt_low", "rt_high",
-                     "halfwidth", "poll", "move_on", "move_on_sum_ms", "events", "gaps", "in_time"):
-            setattr(self, name, getattr(self, name) + getattr(other, name))
-        self.rt_min = np.fmin(self.rt_min, other.rt_min)
-        self.rt_max = np.fmax(self.rt_max, other.rt_max)
-        self.ok_max = np.fmax(self.ok_max, other.ok_max)
+    @staticmethod
+    def merge(parts: list[Figures]) -> Figures:
+        """Figures of all ``parts`` together (files, nights, ports), in any order.
+
+        Every count and histogram is exact. Parts of one capture (same capture id) that follow
+        each other are joined at their seams: the silence, poll interval and master move-on
+        that span the seam are counted as the whole capture counts them. Times take the
+        earliest part's clock; parts without a wall clock must share a record clock.
+        """
+        if not parts:
+            raise ValueError("nothing to merge")
+        if any(p.judged for p in parts):
+            raise ValueError("figures are merged before their answers are judged against a timeout")
+        anchored = {p.utc0_ns is not None for p in parts}
+        if len(anchored) > 1:
+            raise ValueError("figures with and without a wall clock cannot be merged")
+
+        def start(p: Figures) -> int:  # position on the shared clock: UTC, or the record clock
+            base = p.first_ns if p.first_ns is not None else p.t0_ns
+            return base - p.t0_ns + p.anchor_ns if p.utc0_ns is not None else base
+
+        parts = sorted(parts, key=start)
+        base = parts[0]
+
+        def delta(p: Figures) -> int:  # record clock of p -> record clock of base
+            if p.utc0_ns is None:
+                return 0
+            return (p.utc0_ns - p.t0_ns) - (base.utc0_ns - base.t0_ns)
+
+        out = Figures(
+            t0_ns=base.t0_ns, char_ns=base.char_ns, utc0_ns=base.utc0_ns, minute0=0,
+            capture_ids=list(dict.fromkeys(c for p in parts for c in p.capture_ids)),
+            **{name: getattr(base, name).copy() for name in _ARRAYS},
+            frames=0, frame_bytes=0, busy_ns=0.0, first_ns=None, last_ns=None, unknown_outcomes=0,
+            largest_gaps=[], worst={}, slow={}, failures={}, late_rows={}, device_ids={}, station_minutes={},
+            station_minute_rt={}, station_minute_max={}, bus_minutes=base.bus_minutes[:0].copy(), edges={})
+        for name in _ADDED:
+            setattr(out, name, sum(getattr(p, name) for p in parts))
+        for name, fn in (("rt_min", np.fmin), ("rt_max", np.fmax), ("ok_max", np.fmax), ("slow_dropped", np.fmax)):
+            setattr(out, name, reduce(fn, [getattr(p, name) for p in parts]))
         for name in ("frames", "frame_bytes", "busy_ns", "unknown_outcomes"):
-            setattr(self, name, getattr(self, name) + getattr(other, name))
-        spans = [x for x in (self.first_ns, other.first_ns) if x is not None]
-        self.first_ns = min(spans) if spans else None
-        spans = [x for x in (self.last_ns, other.last_ns) if x is not None]
-        self.last_ns = max(spans) if spans else None
-        self.largest_gaps = heapq.nlargest(LARGEST_GAPS, self.largest_gaps + other.largest_gaps)
-        heapq.heapify(self.largest_gaps)
-        for st, heap in other.worst.items():
-            mine = heapq.nlargest(WORST_PER_STATION, self.worst.get(st, []) + heap, key=lambda x: (x[0], x[1]))
-            heapq.heapify(mine)
-            self.worst[st] = mine
-        if self.judged_ms is not None or other.judged_ms is not None:
-            raise ValueError("accumulators are merged before their answers are judged against a timeout")
-        self.slow_dropped = np.fmax(self.slow_dropped, other.slow_dropped)
-        for st, heap in other.slow.items():
-            both = sorted(self.slow.get(st, []) + heap, key=lambda x: (x[0], x[1]))
-            if len(both) > SLOW_KEEP:
-                self.slow_dropped[st] = max(self.slow_dropped[st], both[-SLOW_KEEP - 1][0])
-            self.slow[st] = both[-SLOW_KEEP:]
-            heapq.heapify(self.slow[st])
-        for target, source, cap in ((self.failures, other.failures, FAILURES_PER_STATION),
-                                    (self.late_rows, other.late_rows, LATE_CAP)):
-            for st, rows in source.items():
-                merged = sorted(target.get(st, []) + rows, key=lambda r: r["t_s"])
-                target[st] = merged[:cap]
-        excess = sum(len(v) for v in self.late_rows.values()) - LATE_TOTAL_CAP
-        for st in sorted(self.late_rows, key=lambda a: -len(self.late_rows[a])):
-            if excess <= 0:
-                break
-            drop = min(excess, len(self.late_rows[st]) - 1)
-            if drop > 0:
-                del self.late_rows[st][-drop:]
-                excess -= drop
-        for st, ids in other.device_ids.items():
-            mine = self.device_ids.setdefault(st, [])
-            mine.extend(i for i in ids if i not in mine)
-            del mine[DEVICE_IDS_PER_STATION:]
-        for target, source, how in ((self.station_minutes, other.station_minutes, "add"),
-                                    (self.station_minute_rt, other.station_minute_rt, "add"),
-                                    (self.station_minute_max, other.station_minute_max, "max")):
-            for st, series in source.items():
-                if st in target:
-                    target[st].merge(series, how)
-                else:
+            setattr(out, name, sum(getattr(p, name) for p in parts))
+        firsts = [p.first_ns + delta(p) for p in parts if p.first_ns is not None]
+        lasts = [p.last_ns + delta(p) for p in parts if p.last_ns is not None]
+        out.first_ns = min(firsts) if firsts else None
+        out.last_ns = max(lasts) if lasts else None
+        gaps = [(g, t + delta(p)) for p in parts for g, t in p.largest_gaps]
+        # the seams between parts of one capture
+        for a, b in zip(parts, parts[1:]):
+            if not (a.capture_ids and a.capture_ids == b.capture_ids and a.edges and b.edges):
+                continue
+            ea, eb = a.edges, b.edges
+            if ea.get("last_frame_end_ns") is not None and eb.get("first_frame_ns") is not None:
+                gap = max(eb["first_frame_ns"] - ea["last_frame_end_ns"], 0) / 1e6
+                out.gaps += np.bincount(FINE.index(np.array([gap])), minlength=FINE.count)
+                gaps.append((gap, eb["first_frame_ns"] + delta(b)))
+            both = (ea["last_request_ns"] >= 0) & (eb["first_request_ns"] >= 0)
+            both[0] = False
+            if both.any():
+                st = np.flatnonzero(both)
+                _add_hist(out.poll, st, np.maximum((eb["first_request_ns"][st] - ea["last_request_ns"][st]) / 1e6, 0))
+            if ea.get("pending_timeout") is not None and eb.get("lead_request_ns") is not None:
+                st, t_end = ea["pending_timeout"]
+                gap = max((eb["lead_request_ns"] - t_end) / 1e6, 0.0)
+                _add_hist(out.move_on, np.array([st]), np.array([gap]))
+                out.move_on_sum_ms[st] += gap
+        out.largest_gaps = sorted(gaps, reverse=True)[:LARGEST_GAPS]
+        if len(parts) > 0:
+            first, last = parts[0].edges, parts[-1].edges
+            if first and last:
+                fr = np.full(N_ADDR, -1, np.int64)
+                lr = np.full(N_ADDR, -1, np.int64)
+                for p in parts:  # earliest first request, latest last request, on the base clock
+                    if not p.edges:
+                        continue
+                    f = np.where(p.edges["first_request_ns"] >= 0, p.edges["first_request_ns"] + delta(p), -1)
+                    fr = np.where((fr < 0) | ((f >= 0) & (f < fr)), f, fr)
+                    la = np.where(p.edges["last_request_ns"] >= 0, p.edges["last_request_ns"] + delta(p), -1)
+                    lr = np.maximum(lr, la)
+                out.edges = {"first_request_ns": fr, "last_request_ns": lr,
+                             "first_frame_ns": first.get("first_frame_ns"),
+                             "last_frame_end_ns": last.get("last_frame_end_ns"),
+                             "lead_request_ns": first.get("lead_request_ns"),
+                             "pending_timeout": last.get("pending_timeout")}
+        # example lists, times moved onto the base clock
+        for p in parts:
+            shift = (delta(p) + p.t0_ns - base.t0_ns) / 1e9
+            for target, source in ((out.worst, p.worst), (out.slow, p.slow)):
+                for st, rows in source.items():
+                    moved = _shift_rows([r for _, r in rows], shift)
+                    target.setdefault(st, []).extend(zip([rt for rt, _ in rows], moved))
+            for target, source in ((out.failures, p.failures), (out.late_rows, p.late_rows)):
+                for st, rows in source.items():
+                    target.setdefault(st, []).extend(_shift_rows(rows, shift))
+            for st, ids in p.device_ids.items():
+                mine = out.device_ids.setdefault(st, [])
+                mine.extend(i for i in ids if i not in mine)
+                del mine[DEVICE_IDS_PER_STATION:]
+        for st, rows in out.worst.items():
+            out.worst[st] = sorted(rows, key=lambda x: (x[0], x[1]["t_s"]))[-WORST_PER_STATION:]
+        for st, rows in out.slow.items():
+            rows = sorted(rows, key=lambda x: (x[0], x[1]["t_s"]))
+            if len(rows) > SLOW_KEEP:
+                out.slow_dropped[st] = max(out.slow_dropped[st], rows[-SLOW_KEEP - 1][0])
+            out.slow[st] = rows[-SLOW_KEEP:]
+        for st in out.failures:
+            out.failures[st] = sorted(out.failures[st], key=lambda r: r["t_s"])[:FAILURES_PER_STATION]
+        for st in out.late_rows:
+            out.late_rows[st] = sorted(out.late_rows[st], key=lambda r: r["t_s"])[:LATE_CAP]
+        _cap_late(out.late_rows)
+        # per-minute series on one absolute minute axis
+        stations = sorted({st for p in parts for st in p.station_minutes} | {st for p in parts for st in p.station_minute_rt})
+        axis_parts = [(p.minute0, p.bus_minutes) for p in parts]
+        out.minute0 = min(m0 for m0, _ in axis_parts)
+        for target, name, fill, how in ((out.station_minutes, "station_minutes", 0, "add"),
+                                        (out.station_minute_rt, "station_minute_rt", 0, "add"),
+                                        (out.station_minute_max, "station_minute_max", np.nan, "max")):
+            for st in stations:
+                series = _aligned([(p.minute0, getattr(p, name).get(st)) for p in parts], fill, how)
+                if series is not None:
                     target[st] = series
-        self.bus_minutes.merge(other.bus_minutes)
+        out.bus_minutes = _aligned(axis_parts, 0.0, "add")
+        out._realign(parts, stations)
+        return out
+
+    def _realign(self, parts: list[Figures], stations: list[int]) -> None:
+        """Series built from parts start at the first part holding them: pad them to start at minute0."""
+        for name, fill in (("station_minutes", 0), ("station_minute_rt", 0), ("station_minute_max", np.nan)):
+            target = getattr(self, name)
+            for st in stations:
+                if st not in target:
+                    continue
+                first = min(p.minute0 for p in parts if st in getattr(p, name))
+                lead = first - self.minute0
+                if lead:
+                    series = target[st]
+                    pad = np.full((lead,) + series.shape[1:], fill, dtype=series.dtype)
+                    target[st] = np.concatenate([pad, series])
 
     # -- judging against the timeout ----------------------------------------------------------------
 
@@ -489,19 +715,20 @@ class Accumulator:
         """Count answers the master awaited but that came after ``timeout_ms`` as late; return how many.
 
         The decoder records facts only (an answer before the master moved on is in time); the
-        timeout, given or inferred, is known once the capture has been read, and this applies it
-        once, the same way for both. Exact while a station gave fewer than SLOW_KEEP in-time
-        answers over the timeout; beyond that its count comes from the response-time histogram.
+        timeout, given or inferred, is known once the capture has been read (and merged), and this
+        applies it once, the same way for both. Exact while a station gave fewer than SLOW_KEEP
+        in-time answers over the timeout; beyond that its count comes from the response-time histogram.
         """
-        if self.judged_ms is not None:
+        if self.judged:
             raise ValueError("the answers were already judged against a timeout")
+        self.judged = True
         self.judged_ms = timeout_ms
         if timeout_ms is None:
             return 0
         moved = 0
         ok, exc, late = (_OUTCOME_INDEX[o] for o in ("ok", "exception", "late"))
-        for st, heap in self.slow.items():
-            rows = sorted((r for r in heap if r[0] > timeout_ms), key=lambda r: r[2]["t_s"])
+        for st, kept in self.slow.items():
+            rows = sorted((r for r in kept if r[0] > timeout_ms), key=lambda r: r[1]["t_s"])
             if not rows:
                 continue
             if self.slow_dropped[st] > timeout_ms:
@@ -513,20 +740,23 @@ class Accumulator:
                 self.outcomes[st, late] += take
                 moved += take
             series = self.station_minutes.get(st)
-            for _rt, _seq, r in rows:
+            for _rt, r in rows:
                 was = ok if r["outcome"] == "ok" else exc
                 self.outcomes[st, was] -= 1
                 self.outcomes[st, late] += 1
                 if was == exc:
                     self.exception_codes[st, r["exception_code"]] -= 1
                 if series is not None:
-                    m = int(r["t_s"] * 1e9 // NS_PER_MIN) - self.minute0
-                    data = series.ensure(m + 1)
-                    data[m, 1 if was == ok else 2] -= 1
-                    data[m, 4] += 1
-                kept = self.late_rows.setdefault(st, [])
-                if len(kept) < LATE_CAP and sum(len(v) for v in self.late_rows.values()) < LATE_TOTAL_CAP:
-                    kept.append(dict(r, outcome="late", exception_code=0))
+                    m = self.minute_of(self.t0_ns + round(r["t_s"] * 1e9))
+                    if m >= len(series):
+                        series = np.concatenate([series, np.zeros((m + 1 - len(series), series.shape[1]),
+                                                                  series.dtype)])
+                        self.station_minutes[st] = series
+                    series[m, 1 if was == ok else 2] -= 1
+                    series[m, 4] += 1
+                kept_late = self.late_rows.setdefault(st, [])
+                if len(kept_late) < LATE_CAP and sum(len(v) for v in self.late_rows.values()) < LATE_TOTAL_CAP:
+                    kept_late.append(dict(r, outcome="late", exception_code=0))
             self.late_rows[st] = sorted(self.late_rows[st], key=lambda r: r["t_s"])
             moved += len(rows)
         return moved
@@ -550,6 +780,28 @@ class Accumulator:
         polled = self.outcomes.sum(axis=1)
         return {int(a): int(polled[a]) for a in np.flatnonzero(polled) if a != 0 and int(a) not in seen}
 
+    def judged_copy(self, timeout_ms: float | None) -> Figures:
+        """A copy judged against ``timeout_ms``; this one stays mergeable."""
+        out = dataclasses.replace(self)  # shares what judging leaves alone; copies what it changes
+        out.outcomes, out.exception_codes = self.outcomes.copy(), self.exception_codes.copy()
+        out.station_minutes = {st: a.copy() for st, a in self.station_minutes.items()}
+        out.late_rows = {st: list(rows) for st, rows in self.late_rows.items()}
+        out.judge(timeout_ms)
+        return out
+
+
+
+def _cap_late(late_rows: dict) -> None:
+    """Keep at most LATE_TOTAL_CAP late answers listed over all stations (the most listed lose first)."""
+    excess = sum(len(v) for v in late_rows.values()) - LATE_TOTAL_CAP
+    for st in sorted(late_rows, key=lambda a: -len(late_rows[a])):
+        if excess <= 0:
+            break
+        drop = min(excess, len(late_rows[st]) - 1)
+        if drop > 0:
+            del late_rows[st][-drop:]
+            excess -= drop
+
 
 def _q(counts: np.ndarray, q: float, bins: LogBins = FINE, vmin: float | None = None,
        vmax: float | None = None) -> float | None:
@@ -560,7 +812,7 @@ def _q(counts: np.ndarray, q: float, bins: LogBins = FINE, vmin: float | None = 
 QUANTILES = (("p50", 0.50), ("p95", 0.95), ("p99", 0.99))
 
 
-def response_figures(acc: Accumulator, address: int) -> dict:
+def response_figures(acc: Figures, address: int) -> dict:
     """min/p50/p95/p99/max of one station's response times, each quantile with its interval."""
     mid, low, high = acc.rt_mid[address], acc.rt_low[address], acc.rt_high[address]
     vmin = float(acc.rt_min[address]) if np.isfinite(acc.rt_min[address]) else None
@@ -577,17 +829,16 @@ def response_figures(acc: Accumulator, address: int) -> dict:
             "timing_halfwidth_ms": _q(acc.halfwidth[address], 0.5)}
 
 
-def minute_bands(acc: Accumulator, address: int) -> dict:
+def minute_bands(acc: Figures, address: int) -> dict:
     """Per-minute p50, p95 and max response time of one station (NaN where it did not answer)."""
-    hist = acc.station_minute_rt.get(address)
+    counts = acc.station_minute_rt.get(address)
     mx = acc.station_minute_max.get(address)
-    if hist is None or mx is None:
+    if counts is None or mx is None:
         return {"p50": [], "p95": [], "max": []}
-    counts = hist.view()
     return {"p50": quantiles_rows(counts, 0.5, COARSE).tolist(), "p95": quantiles_rows(counts, 0.95, COARSE).tolist(),
-            "max": mx.view()[:, 0].tolist()}
+            "max": mx[:, 0].tolist()}
 
 
-def above(acc: Accumulator, address: int, threshold_ms: float) -> int:
+def above(acc: Figures, address: int, threshold_ms: float) -> int:
     """Answers whose response time lies wholly above ``threshold_ms`` (from the histogram)."""
     return count_above(acc.rt_mid[address], threshold_ms, FINE)

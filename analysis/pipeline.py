@@ -7,17 +7,18 @@ number of minutes, not on the capture's length.
 
 from __future__ import annotations
 
+import contextlib
 import copy
-import sys
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from buswitness.analysis.exports import TableExporter, utc_anchor_of
+from buswitness.analysis.exports import utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
 from buswitness.analysis.result import AnalysisResult, build_result
+from buswitness.analysis.sinks import SinkContext
 from buswitness.analysis.stationmap import StationMap
 from buswitness.analysis.timeout import given_timeout, infer_timeout
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
@@ -37,7 +38,7 @@ class AnalysisOptions:
     station_map: StationMap | None = None
     csv_dir: str | None = None
     parquet_dir: str | None = None
-    progress: bool | None = None  #: None: a progress bar when stderr is a terminal
+    progress: bool | None = None  #: kept for callers; the bar is the command line's (``analyze(progress=...)``)
     block_rows: int = BLOCK_ROWS
     port_roles: dict[int, str] | None = None  #: what each port hears; None: as the capture header says
 
@@ -84,26 +85,61 @@ def _clock(header: CaptureHeader, first_ns: int) -> tuple[int, int]:
     return start, int(lead // NS_PER_MIN)
 
 
+def _accumulator(header: CaptureHeader, t0_ns: int, char_ns: float, minute0: int) -> Accumulator:
+    """An accumulator whose per-minute rows are whole minutes of UTC when the header states the wall clock."""
+    anchor = utc_anchor_of(header.start_utc)
+    utc0 = None if anchor is None else int(pd.Timestamp(anchor).value)
+    first_minute = (utc0 or 0) // NS_PER_MIN + minute0
+    return Accumulator(t0_ns=t0_ns, char_ns=char_ns, minute0=first_minute, utc0_ns=utc0,
+                       capture_id=str(getattr(header, "capture_id", "") or ""))
+
+
 def _first_time(frames: pd.DataFrame, tx: pd.DataFrame, events: pd.DataFrame) -> int | None:
     candidates = [int(t[c].min()) for t, c in ((frames, "t_start_ns"), (tx, "t_request_end_ns"), (events, "t_ns"))
                   if len(t)]
     return min(candidates) if candidates else None
 
 
+def _option_sinks(options: AnalysisOptions) -> list:
+    """The table sinks the older options ask for (``csv_dir``, ``parquet_dir``)."""
+    out: list = []
+    if options.csv_dir:
+        from buswitness.analysis.sinks.csv import CsvSink
+        out.append(CsvSink(options.csv_dir))
+    if options.parquet_dir:
+        from buswitness.analysis.sinks.parquet import ParquetSink
+        out.append(ParquetSink(options.parquet_dir))
+    return out
+
+
 def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOptions | None = None,
-                   paths: list | None = None, damage: ReadReport | None = None) -> AnalysisResult:
-    """Analyse decoder output (anything with ``.frames``, ``.transactions``, ``.events``) block by block."""
+                   paths: list | None = None, damage: ReadReport | None = None, sinks: Sequence = (),
+                   close_sinks: bool = True) -> AnalysisResult:
+    """Analyse decoder output (anything with ``.frames``, ``.transactions``, ``.events``) block by block.
+
+    Every block goes to the ``sinks`` too (plus the CSV and Parquet sinks the options ask for).
+    With ``close_sinks`` they are closed on the finished result (findings evaluated first);
+    ``analyze`` closes them itself. Any failure aborts every sink: nothing half written stays.
+    """
     options = options or AnalysisOptions()
     smap = options.station_map or StationMap()
     char_ns = header.serial.char_time_s * 1e9
     acc: Accumulator | None = None
-    exporter: TableExporter | None = None
     pending: list = []
     rows = 0
     empty = _empty_tables()
+    sinks = _option_sinks(options) + list(sinks)
+
+    def start(t0: int, minute0: int) -> Accumulator:
+        made = _accumulator(header, t0, char_ns, minute0)
+        context = SinkContext(header=header, t0_ns=made.t0_ns, utc0_ns=made.utc0_ns,
+                              paths=tuple(str(p) for p in paths or []))
+        for sink in sinks:
+            sink.open(context)
+        return made
 
     def process() -> None:
-        nonlocal acc, exporter, pending, rows
+        nonlocal acc, pending, rows
         frames = pd.concat([p.frames for p in pending] or [empty[0]], ignore_index=True)
         tx = pd.concat([p.transactions for p in pending] or [empty[1]], ignore_index=True)
         events = pd.concat([p.events for p in pending] or [empty[2]], ignore_index=True)
@@ -112,16 +148,12 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
             first = _first_time(frames, tx, events)
             if first is None:
                 return
-            t0, minute0 = _clock(header, first)
-            acc = Accumulator(t0_ns=t0, char_ns=char_ns, minute0=minute0)
-            if options.csv_dir or options.parquet_dir:
-                exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
-                                         options.parquet_dir)
+            acc = start(*_clock(header, first))
         acc.add_frames(frames)
         acc.add_transactions(tx)
         acc.add_events(events)
-        if exporter is not None:
-            exporter.write(frames, tx, events)
+        for sink in sinks:
+            sink.write(frames, tx, events)
 
     try:
         for out in outputs:
@@ -131,19 +163,33 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
                 process()
         process()
         if acc is None:
-            acc = Accumulator(t0_ns=int(header.start_monotonic_ns or 0), char_ns=char_ns)
-            if options.csv_dir or options.parquet_dir:
-                exporter = TableExporter(acc.t0_ns, utc_anchor_of(header.start_utc), options.csv_dir,
-                                         options.parquet_dir)
-        if exporter is not None:
-            exporter.close(*empty)
+            acc = start(int(header.start_monotonic_ns or 0), 0)
+        timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on,
+                                                                                              acc.in_time)
+        result = build_result(header, paths or [], damage, acc.figures(copy=False), smap, timeout)
+        result.sinks = sinks
+        if close_sinks and sinks:
+            result.findings = evaluate_findings(result)
+            close(result)
     except BaseException:
-        if exporter is not None:
-            exporter.abort()
+        abort(sinks)
         raise
-    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, acc.in_time)
-    acc.judge(timeout.timeout_ms)
-    return build_result(header, paths or [], damage, acc, smap, timeout)
+    return result
+
+
+def close(result: AnalysisResult) -> list[Path]:
+    """Close the result's sinks on it; return every file written."""
+    written: list[Path] = []
+    for sink in result.sinks:
+        written.extend(sink.close(result))
+    result.written = written
+    return written
+
+
+def abort(sinks: Sequence) -> None:
+    for sink in sinks:
+        with contextlib.suppress(Exception):
+            sink.abort()
 
 
 def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
@@ -223,32 +269,41 @@ def delivery_headers(header: CaptureHeader, delivery: list) -> tuple[CaptureHead
     return reported, (replace(reported, serial=measured) if measured is not None else reported)
 
 
-def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
-    """Decode and analyse an opened capture source (see ``buswitness.capture.sources.open_capture``)."""
+def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = (),
+            progress: Callable[[int, int | None], None] | None = None) -> AnalysisResult:
+    """Decode and analyse an opened capture source (see ``buswitness.capture.sources.open_capture``).
+
+    Each of ``sinks`` (``buswitness.analysis.sinks``) gets the tables as they stream and the
+    finished result. ``progress(done, total)`` is called as the input is read (bytes; total
+    None when unknown): the analysis draws nothing itself, the command line draws the bar.
+    """
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
     delivery = assess_delivery(source)
     header, decoding = delivery_headers(source.header, delivery)
     cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles)
-    show = sys.stderr.isatty() if options.progress is None else options.progress
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None
+    done = 0
     crossed: list = []
-    if not show:
-        result = analyze_tables(header, _decoded(source, cfg, lambda n: None, crossed), options, paths,
-                                getattr(source, "report", None))
-    else:
-        from rich.console import Console
-        from rich.progress import BarColumn, DownloadColumn, Progress, TextColumn, TimeRemainingColumn
-        with Progress(TextColumn("analysing"), BarColumn(), DownloadColumn(), TimeRemainingColumn(),
-                      console=Console(stderr=True), transient=True) as progress:
-            task = progress.add_task("analyse", total=total)
-            result = analyze_tables(header, _decoded(source, cfg, lambda n: progress.advance(task, n), crossed),
-                                    options, paths, getattr(source, "report", None))
+
+    def on_batch(n: int) -> None:
+        nonlocal done
+        done += n
+        if progress is not None:
+            progress(done, total)
+
+    result = analyze_tables(header, _decoded(source, cfg, on_batch, crossed), options, paths,
+                            getattr(source, "report", None), sinks, close_sinks=False)
     result.delivery = [d.to_dict() for d in delivery]
     for entry in result.delivery:
         entry["timing_contradictions"] = dict(crossed).get(entry["port"], 0)
-    result.findings = evaluate_findings(result)
+    try:
+        result.findings = evaluate_findings(result)
+        close(result)
+    except BaseException:
+        abort(result.sinks)
+        raise
     return result
 
 

@@ -1,7 +1,10 @@
-"""The analysis result: per-station and bus figures read out of the accumulator, plus context.
+"""The analysis result: per-station and bus figures read out of plain ``Figures``, plus context.
 
 Everything a report shows comes from one ``AnalysisResult``, so the dashboard, the evidence
-report, ``summary.json`` and the text summary of ``analyze`` always agree.
+report, ``summary.json`` and the text summary of ``analyze`` always agree. The result holds
+plain data only (``figures``, judged against the timeout, and ``unjudged``, which merges):
+``merge_results`` of the results of the parts of a rotated capture, of several nights or of
+several ports equals the analysis of them all together.
 """
 
 from __future__ import annotations
@@ -17,7 +20,7 @@ from buswitness.analysis.figures import (
     MINUTE_COLUMNS,
     NS_PER_MIN,
     OUTCOMES,
-    Accumulator,
+    Figures,
     above,
     minute_bands,
     response_figures,
@@ -103,7 +106,7 @@ class AnalysisResult:
     header: CaptureHeader
     paths: list
     damage: ReadReport | None
-    acc: Accumulator
+    figures: Figures        #: judged against the timeout: what every report shows
     station_map: StationMap
     timeout: TimeoutEstimate
     stations: list[StationFigures]
@@ -113,10 +116,36 @@ class AnalysisResult:
     delivery: list[dict] = field(default_factory=list)
     tool_version: str = __version__
     analysed_utc: str = ""
+    unjudged: Figures | None = None  #: the same before judging: what ``merge_results`` adds together
+    headers: list = field(default_factory=list)  #: every capture's header, when merged from several
+    sinks: list = field(default_factory=list, repr=False)  #: the outputs analyze fed (analysis/sinks)
+    written: list = field(default_factory=list)  #: files the sinks wrote
+
+    @property
+    def acc(self) -> Figures:
+        """The plain figures (the name of the accumulator this once held, kept for callers)."""
+        return self.figures
 
     @property
     def t0_ns(self) -> int:
-        return self.acc.t0_ns
+        return self.figures.t0_ns
+
+    def failure_rows(self, address: int) -> list[dict]:
+        """The first timeouts and corrupt answers of a station kept as examples, in time order."""
+        return list(self.figures.failures.get(address, []))
+
+    def slowest_rows(self, address: int) -> list[dict]:
+        """The slowest answers kept for a station, slowest first."""
+        return [r for _, r in sorted(self.figures.worst.get(address, []), key=lambda x: -x[0])]
+
+    def response_counts(self, address: int) -> np.ndarray:
+        """The station's response-time histogram (midpoints, ``histogram.FINE`` bins)."""
+        return self.figures.rt_mid[address]
+
+    def unpolled_answers(self) -> np.ndarray:
+        """Per address: answers from it (orphan or unexpected responder) and requests to it, (256, 2)."""
+        kinds = [_K["orphan_response"], _K["unexpected_responder"]]
+        return np.stack([self.figures.events[1:, kinds].sum(axis=1), self.figures.outcomes.sum(axis=1)], axis=1)
 
     def station(self, address: int) -> StationFigures | None:
         for s in self.stations:
@@ -127,20 +156,28 @@ class AnalysisResult:
     @property
     def series_start_s(self) -> float:
         """Where minute 0 of the per-minute series begins, in seconds since the capture start."""
-        return 60.0 * self.acc.minute0
+        return self.minute_start_s(0)
 
     def minute_start_s(self, minute: int) -> float:
-        """Start of a row of the per-minute series, in seconds since the capture start."""
-        return 60.0 * (self.acc.minute0 + minute)
+        """Start of a row of the per-minute series, in seconds since the capture start.
+
+        Rows are whole minutes of UTC when the capture states its wall clock, so row 0 may begin
+        up to a minute before the capture start."""
+        return (self.figures.record_ns_of_minute(minute) - self.figures.t0_ns) / 1e9
+
+    def minute_utc_ns(self, minute: int) -> int | None:
+        """UTC (ns since 1970) where row ``minute`` of the per-minute series begins, None without a wall clock."""
+        f = self.figures
+        return None if f.utc0_ns is None else (f.minute0 + minute) * NS_PER_MIN
 
     @property
     def span_s(self) -> tuple[float, float]:
         """The recorded stretch, in seconds since the capture start: from the start (or the first frame when
         it comes before, or a day or more after) to the end of the last frame."""
-        acc = self.acc
+        acc = self.figures
         if acc.last_ns is None:
             return self.series_start_s, self.series_start_s
-        start_ns = acc.t0_ns + acc.minute0 * NS_PER_MIN
+        start_ns = max(acc.t0_ns, acc.record_ns_of_minute(0))
         start = (min(start_ns, acc.first_ns if acc.first_ns is not None else start_ns) - acc.t0_ns) / 1e9
         return start, (acc.last_ns - acc.t0_ns) / 1e9
 
@@ -154,18 +191,17 @@ class AnalysisResult:
         return (start + timedelta(seconds=t_s)).astimezone(timezone.utc).isoformat(timespec="milliseconds")
 
     def minutes(self) -> int:
-        return int(max(self.acc.bus_minutes.minutes,
-                       max((s.minutes for s in self.acc.station_minutes.values()), default=0)))
+        return self.figures.minutes
 
     def station_series(self, address: int) -> dict:
         """Per-minute counts and response-time bands of one station."""
         n = self.minutes()
-        series = self.acc.station_minutes.get(address)
+        series = self.figures.station_minutes.get(address)
         data = np.zeros((n, len(MINUTE_COLUMNS)), np.int64)
         if series is not None:
-            data[: series.minutes] = series.view()
+            data[: len(series)] = series
         out = {name: data[:, i].tolist() for i, name in enumerate(MINUTE_COLUMNS)}
-        bands = minute_bands(self.acc, address)
+        bands = minute_bands(self.figures, address)
         for key, values in bands.items():
             padded = list(values) + [float("nan")] * (n - len(values))
             out["rt_" + key] = padded
@@ -173,7 +209,7 @@ class AnalysisResult:
 
     def bus_series(self) -> dict:
         """Per-minute bus utilisation, frames and events by kind."""
-        view = self.acc.bus_minutes.view()
+        view = self.figures.bus_minutes
         n = self.minutes()
         data = np.zeros((n, view.shape[1]))
         data[: view.shape[0]] = view
@@ -189,24 +225,20 @@ class AnalysisResult:
         """Slowest answers of every station (slowest first), then each station's first failures (in time order)."""
         slow: list[dict] = []
         failed: list[dict] = []
-        for st in sorted(set(self.acc.worst) | set(self.acc.failures)):
-            slow.extend(r for _, _, r in sorted(self.acc.worst.get(st, []), key=lambda x: -x[0])[:per_station])
-            failed.extend(self.acc.failures.get(st, [])[:per_station])
+        for st in sorted(set(self.figures.worst) | set(self.figures.failures)):
+            slow.extend(self.slowest_rows(st)[:per_station])
+            failed.extend(self.failure_rows(st)[:per_station])
         rows = sorted(slow, key=lambda r: -(r["response_ms"] or 0.0)) + sorted(failed, key=lambda r: r["t_s"])
-        for r in rows:
-            r.setdefault("utc", self.utc_at(r["t_s"]))
-            r["label"] = self.station_map.label(r["station"])
-        return rows
+        # new dicts: the figures' own rows stay as they are (they merge with other results)
+        return [dict(r, utc=r.get("utc") or self.utc_at(r["t_s"]), label=self.station_map.label(r["station"]))
+                for r in rows]
 
     def late_answers(self, address: int) -> list[dict]:
-        rows = self.acc.late_rows.get(address, [])
-        for r in rows:
-            r.setdefault("utc", self.utc_at(r["t_s"]))
-        return rows
+        return [dict(r, utc=r.get("utc") or self.utc_at(r["t_s"])) for r in self.figures.late_rows.get(address, [])]
 
     def response_histogram(self, address: int) -> tuple[list[float], list[int]]:
         """The station's response-time histogram merged to at most ~80 bars: (lower edges ms, counts)."""
-        counts = self.acc.rt_mid[address]
+        counts = self.figures.rt_mid[address]
         nz = np.flatnonzero(counts)
         if not len(nz):
             return [], []
@@ -220,7 +252,7 @@ class AnalysisResult:
         return edges, values
 
 
-def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: TimeoutEstimate) -> StationFigures:
+def _station_figures(acc: Figures, address: int, smap: StationMap, timeout: TimeoutEstimate) -> StationFigures:
     o = acc.outcomes[address]
     requests = int(o.sum())
     answered = int(o[_O["ok"]] + o[_O["exception"]])
@@ -248,8 +280,8 @@ def _station_figures(acc: Accumulator, address: int, smap: StationMap, timeout: 
         late_listed=len(acc.late_rows.get(address, [])))
 
 
-def _bus_figures(acc: Accumulator) -> BusFigures:
-    series_ns = acc.t0_ns + acc.minute0 * NS_PER_MIN
+def _bus_figures(acc: Figures) -> BusFigures:
+    series_ns = max(acc.t0_ns, acc.record_ns_of_minute(0))
     duration = 0.0 if acc.last_ns is None else max(
         0.0, (acc.last_ns - min(series_ns, acc.first_ns if acc.first_ns is not None else series_ns)) / 1e9)
     ev = acc.events.sum(axis=0)
@@ -268,14 +300,40 @@ def _bus_figures(acc: Accumulator) -> BusFigures:
         unknown_outcomes=acc.unknown_outcomes, stray_addresses=acc.stray_addresses())
 
 
-def build_result(header: CaptureHeader, paths: list, damage: ReadReport | None, acc: Accumulator,
-                 station_map: StationMap, timeout: TimeoutEstimate) -> AnalysisResult:
-    """Read the figures out of a finished accumulator."""
-    addresses = sorted(set(acc.stations_seen()) | set(station_map.stations))
-    stations = [_station_figures(acc, a, station_map, timeout) for a in addresses]
-    return AnalysisResult(header=header, paths=[str(p) for p in paths], damage=damage, acc=acc,
-                          station_map=station_map, timeout=timeout, stations=stations, bus=_bus_figures(acc),
-                          analysed_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"))
+def build_result(header: CaptureHeader, paths: list, damage: ReadReport | None, figures: Figures,
+                 station_map: StationMap, timeout: TimeoutEstimate, headers: list | None = None) -> AnalysisResult:
+    """Judge unjudged figures against the timeout and read the per-station and bus figures out of them."""
+    if figures.judged:
+        raise ValueError("build_result takes the figures before they are judged")
+    judged = figures.judged_copy(timeout.timeout_ms)
+    addresses = sorted(set(judged.stations_seen()) | set(station_map.stations))
+    stations = [_station_figures(judged, a, station_map, timeout) for a in addresses]
+    return AnalysisResult(header=header, paths=[str(p) for p in paths], damage=damage, figures=judged,
+                          station_map=station_map, timeout=timeout, stations=stations, bus=_bus_figures(judged),
+                          analysed_utc=datetime.now(timezone.utc).isoformat(timespec="seconds"), unjudged=figures,
+                          headers=list(headers or [header]))
+
+
+def merge_results(results: list[AnalysisResult], timeout_ms: float | None = None,
+                  station_map: StationMap | None = None) -> AnalysisResult:
+    """One result from the results of several files, nights or ports: figures added, then judged once.
+
+    The timeout is ``timeout_ms`` when given, else inferred again from the merged silences after
+    unanswered requests (as ``analyze`` of all of them together would); findings are not evaluated
+    here (``pipeline.evaluate_findings``).
+    """
+    from buswitness.analysis.timeout import given_timeout, infer_timeout
+    if not results:
+        raise ValueError("nothing to merge")
+    if any(r.unjudged is None for r in results):
+        raise ValueError("a result without its unjudged figures cannot be merged")
+    figures = Figures.merge([r.unjudged for r in results])
+    first = min(results, key=lambda r: (r.figures.utc0_ns or 0, r.figures.t0_ns))
+    timeout = given_timeout(timeout_ms) if timeout_ms else infer_timeout(figures.move_on, figures.in_time)
+    paths = [p for r in results for p in r.paths]
+    damage = first.damage if len(results) == 1 else None
+    headers = [h for r in results for h in r.headers]
+    return build_result(first.header, paths, damage, figures, station_map or first.station_map, timeout, headers)
 
 
 __all__ = [
@@ -285,4 +343,5 @@ __all__ = [
     "BusFigures",
     "StationFigures",
     "build_result",
+    "merge_results",
 ]

@@ -10,6 +10,8 @@ Stages, each timed separately (medians of ``--runs``, with min-max):
   analyze    full analysis (decode + figures) over the capture, and peak resident memory
   report     dashboard HTML + summary.json from the analysis result; file size
   browser    opening the dashboard in headless Chromium until every chart has drawn
+  fleet      ``dataset add`` throughput (serial and on a Dask LocalCluster) and ``trend`` latency over
+             30 nights x 10 buses (bench/fleet.py; ``--fleet-only`` runs just this stage)
 
 Each measured run happens in a fresh child process so peak memory is that run's own.
 """
@@ -203,6 +205,11 @@ def main() -> None:
     ap.add_argument("--runs", type=int, default=3, help="measured runs per stage (median reported)")
     ap.add_argument("--framing-mb", type=float, default=8.0, help="bytes of stream for the framing comparison")
     ap.add_argument("--no-browser", action="store_true")
+    ap.add_argument("--fleet-nights", type=int, default=30, help="nights of the fleet load (default 30)")
+    ap.add_argument("--fleet-buses", type=int, default=10, help="buses of the fleet load (default 10)")
+    ap.add_argument("--fleet-night-s", type=float, default=300.0, help="simulated seconds per night (default 300)")
+    ap.add_argument("--fleet-only", action="store_true", help="run only the fleet stage")
+    ap.add_argument("--no-fleet", action="store_true", help="skip the fleet stage")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
@@ -211,6 +218,9 @@ def main() -> None:
         return
 
     rows: list = []
+    if args.fleet_only:
+        _print_fleet(args)
+        return
     sat, sim_s = ensure_capture("saturated115200", args.hours)
     noisy, noisy_s = ensure_capture("noisy", 1.0)
     print(f"bench load: {sat.name} ({sat.stat().st_size / 1e6:.0f} MB"
@@ -234,6 +244,17 @@ def main() -> None:
     print(f"targets: analyze 24 h <= {TARGET_ANALYZE_S:.0f} s, peak <= {TARGET_PEAK_MB:.0f} MB, framing >= "
           f"{TARGET_FRAMING_RATIO:.0f}x pymodbus, html <= {TARGET_HTML_MB:.0f} MB, chromium <= {TARGET_BROWSER_S:.0f} s")
     print(f"machine: {os.cpu_count()} cores; python {sys.version.split()[0]}")
+    if not args.no_fleet:
+        _print_fleet(args)
+
+
+def _print_fleet(args: argparse.Namespace) -> None:
+    sys.path.insert(0, str(HERE))
+    from fleet import bench_fleet
+    rows = bench_fleet(args.fleet_nights, args.fleet_buses, args.fleet_night_s, args.runs)
+    widths = [max(len(str(r[i])) for r in rows + [HEAD]) for i in range(len(HEAD))]
+    for r in [HEAD] + rows:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
 
 
 HEAD = ("capture", "stage", "seconds", "x real time", "rate", "peak MB / notes")

@@ -55,18 +55,20 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=run)
 
 
-def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_dir: str | None = None):
-    """Open the input read-only and analyse it as the options say."""
-    from buswitness.analysis import AnalysisOptions, analyze, load_station_map
+def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_dir: str | None = None,
+                 sinks: tuple = ()):
+    """Open the input read-only and analyse it as the options say, feeding ``sinks`` (analysis/sinks)."""
+    from buswitness.analysis import AnalysisOptions, load_station_map
     from buswitness.capture.sources import open_capture
+    from buswitness.cli.progress import analyze_with_bar
     from buswitness.errors import InputFileError
 
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
-                              progress=False if args.no_progress else None, port_roles=roles)
-    result = analyze(source, options)
+                              port_roles=roles)
+    result = analyze_with_bar(source, options, sinks, show=False if args.no_progress else None)
     damage = result.damage
     if result.bus.frames == 0 and damage is not None and not damage.clean:
         raise InputFileError(args.capture, "holds nothing usable: " + "; ".join(damage.warnings[:3]),
@@ -75,23 +77,20 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
 
 def run(args: argparse.Namespace) -> int:
-    from buswitness.analysis.dashboard import write_dashboard
-    from buswitness.analysis.summary import text_summary, write_summary
+    from buswitness.analysis.sinks.csv import CsvSink
+    from buswitness.analysis.sinks.dashboard import DashboardSink
+    from buswitness.analysis.sinks.parquet import ParquetSink
+    from buswitness.analysis.sinks.summary import SummarySink
+    from buswitness.analysis.summary import text_summary
 
     html, js = args.html, args.json
     if not any((html, js, args.csv, args.parquet)):
         html, js = "report.html", "summary.json"
-    result = run_analysis(args, args.csv, args.parquet)
+    sinks = ([DashboardSink(html)] if html else []) + ([SummarySink(js)] if js else []) + (
+        [CsvSink(args.csv)] if args.csv else []) + ([ParquetSink(args.parquet)] if args.parquet else [])
+    result = run_analysis(args, sinks=tuple(sinks))
     print(text_summary(result))
-    written = []
-    if html:
-        written.append(write_dashboard(result, html))
-    if js:
-        written.append(write_summary(result, js))
-    for folder, kind in ((args.csv, "csv"), (args.parquet, "parquet")):
-        if folder:
-            written.extend(Path(folder) / f"{name}.{kind}" for name in ("transactions", "frames", "events"))
     print("wrote:")
-    for p in written:
+    for p in result.written:
         print(f"  {Path(p).resolve()}")
     return 0

@@ -56,11 +56,12 @@ def slowest_station(result) -> int | None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from buswitness.analysis import AnalysisOptions, analyze, load_station_map
+    from buswitness.analysis import AnalysisOptions, load_station_map
     from buswitness.analysis.dashboard import write_dashboard
     from buswitness.analysis.evidence import write_evidence
     from buswitness.analysis.summary import text_summary, write_summary
     from buswitness.capture.sources import open_capture
+    from buswitness.cli.progress import analyze_with_bar
     from buswitness.errors import OutputError
     from buswitness.fsutil import atomic_write
     from buswitness.simulate import load_scenario, simulate
@@ -86,8 +87,8 @@ def run(args: argparse.Namespace) -> int:
     with atomic_write(stations) as f:
         f.write(station_map_toml(scenario))
     print("analysing ...", flush=True)
-    result = analyze(open_capture(capture), AnalysisOptions(station_map=load_station_map(stations),
-                                                            progress=False if args.no_progress else None))
+    result = analyze_with_bar(open_capture(capture), AnalysisOptions(station_map=load_station_map(stations)),
+                              show=False if args.no_progress else None)
     print(text_summary(result))
     written = [capture, stations, write_dashboard(result, folder / "report.html"),
                write_summary(result, folder / "summary.json")]

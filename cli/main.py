@@ -10,6 +10,7 @@ from typing import NoReturn
 from buswitness import __version__
 from buswitness.cli import (
     cmd_analyze,
+    cmd_dataset,
     cmd_demo,
     cmd_detect,
     cmd_evidence,
@@ -17,12 +18,13 @@ from buswitness.cli import (
     cmd_plan,
     cmd_record,
     cmd_simulate,
+    cmd_trend,
     cmd_watch,
 )
 from buswitness.errors import EXIT_USAGE, BuswitnessError
 
 VERBS = (cmd_demo, cmd_record, cmd_analyze, cmd_evidence, cmd_plan, cmd_simulate, cmd_detect, cmd_watch,
-         cmd_inspect)
+         cmd_inspect, cmd_dataset, cmd_trend)
 
 EPILOG = """exit codes: 0 success, 2 usage error, 3 unreadable or invalid input file,
 4 serial device error"""

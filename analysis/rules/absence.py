@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from buswitness.analysis.figures import EVENT_KINDS
 from buswitness.analysis.finding import WIRING_CAUTION, Cause, Finding
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.analysis.rules.common import (
@@ -24,10 +23,8 @@ def _alive(s: StationFigures) -> int:
 
 def unpolled_responders(result: AnalysisResult) -> list[int]:
     """Addresses valid answers came from that the master never polls (a device set to another address)."""
-    acc = result.acc
-    kinds = [EVENT_KINDS.index("orphan_response"), EVENT_KINDS.index("unexpected_responder")]
-    answered = acc.events[1:, kinds].sum(axis=1)
-    return [a for a in range(1, 248) if answered[a] and not acc.outcomes[a].sum()]
+    counts = result.unpolled_answers()
+    return [a for a in range(1, 248) if counts[a, 0] and not counts[a, 1]]
 
 
 def no_answers(result: AnalysisResult, th: Thresholds) -> list[Finding]:

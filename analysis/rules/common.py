@@ -85,15 +85,14 @@ def example(result: AnalysisResult, row: dict) -> dict:
 def failure_examples(result: AnalysisResult, address: int, t0: float | None = None, t1: float | None = None,
                      outcomes: tuple = ("timeout", "corrupt")) -> list[dict]:
     """Up to EXAMPLES kept failures of one station, optionally within [t0, t1]."""
-    rows = [r for r in result.acc.failures.get(address, []) if r["outcome"] in outcomes
+    rows = [r for r in result.failure_rows(address) if r["outcome"] in outcomes
             and (t0 is None or r["t_s"] >= t0 - 1) and (t1 is None or r["t_s"] <= t1 + 1)]
     return [example(result, r) for r in rows[:EXAMPLES]]
 
 
 def slowest_examples(result: AnalysisResult, address: int) -> list[dict]:
     """The slowest answers kept for a station, slowest first."""
-    heap = result.acc.worst.get(address, [])
-    rows = [r for _, _, r in sorted(heap, key=lambda x: -x[0])[:EXAMPLES]]
+    rows = result.slowest_rows(address)[:EXAMPLES]
     return [example(result, r) for r in rows]
 
 

@@ -47,7 +47,7 @@ def exceptions(result: AnalysisResult, th: Thresholds) -> list[Finding]:
         causes = [Cause(*CODE_CAUSES.get(c, ("The device answers with a code the standard does not define.",
                                              "Look the code up in the device manual.")))
                   for c, _ in codes]
-        rows = [r for _, _, r in sorted(result.acc.worst.get(s.address, []), key=lambda x: x[2]["t_s"])
+        rows = [r for r in sorted(result.slowest_rows(s.address), key=lambda r: r["t_s"])
                 if r["outcome"] == "exception"]
         t0, t1 = capture_span(result)
         out.append(Finding(

@@ -27,7 +27,7 @@ from buswitness.analysis.rules.thresholds import Thresholds
 def answer_quantile_ms(result: AnalysisResult, s: StationFigures, q: float) -> float | None:
     """The q quantile of a station's measured answer times (late ones included), within its min and max."""
     r = s.response_ms
-    return quantile(result.acc.rt_mid[s.address], q, FINE, r.get("min"), r.get("max"))
+    return quantile(result.response_counts(s.address), q, FINE, r.get("min"), r.get("max"))
 
 
 def suggested_timeout_ms(result: AnalysisResult, s: StationFigures, th: Thresholds) -> float | None:
