@@ -51,6 +51,12 @@ INDEX_DTYPE = np.dtype([("t_ns", "<i8"), ("length", "<u2"), ("port", "u1"), ("fl
 MAX_BLOCK_RECORDS = 1 << 20
 MAX_BLOCK_PAYLOAD = 64 << 20
 MAX_HEADER_BYTES = 1 << 20
+#: Header ranges: a value outside is damage or a crafted file. The start year leaves the
+#: ~292 years an int64 of nanoseconds spans before a date overflows (year 9999); a part
+#: number has four digits in its file name; the monotonic clock is an int64.
+START_YEARS = (1970, 2999)
+MAX_PART = 9999
+MAX_MONOTONIC_NS = (1 << 63) - 1
 
 # Record flags. A record may carry flags and no bytes (a marker).
 FLAG_LINE_ERROR = 0x01   #: the bytes arrived marked bad by the UART (parity or framing error)
@@ -165,6 +171,18 @@ def _is_number(v: object, lo: float, hi: float) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and lo <= v <= hi
 
 
+def _check_start_utc(text: str) -> None:
+    """An empty start time (unknown) or a calendar time from 1970 to 2999: later ones overflow a date."""
+    if not text:
+        return
+    try:
+        start = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(f"start_utc {text[:40]!r} is not a date and time (ISO 8601)") from None
+    if not START_YEARS[0] <= start.year <= START_YEARS[1]:
+        raise ValueError(f"start_utc {text[:40]!r} is not a time from the years {START_YEARS[0]} to {START_YEARS[1]}")
+
+
 def _check_header(h: CaptureHeader) -> None:
     """Refuse values no writer produces, so a crafted or damaged header fails here, not deep in the decoder."""
     for p in h.ports:
@@ -181,6 +199,15 @@ def _check_header(h: CaptureHeader) -> None:
             raise ValueError(f"{name} must be text")
     if not _is_int(h.start_monotonic_ns) or not _is_int(h.part) or h.part < 0:
         raise ValueError("start_monotonic_ns and part must be whole numbers")
+    if not 0 <= h.start_monotonic_ns <= MAX_MONOTONIC_NS:
+        raise ValueError(f"start_monotonic_ns {h.start_monotonic_ns} is not a number from 0 to {MAX_MONOTONIC_NS}")
+    if h.part > MAX_PART:
+        raise ValueError(f"part {h.part} is not a number from 0 to {MAX_PART}")
+    if not (_is_int(h.format_version) and 1 <= h.format_version <= FORMAT_VERSION):
+        raise ValueError(f"format_version {h.format_version!r} is not a number from 1 to {FORMAT_VERSION}")
+    _check_start_utc(h.start_utc)
+    if not 1 <= len(h.ports) <= 256 or len({p.id for p in h.ports}) != len(h.ports):
+        raise ValueError(f"ports must list 1 to 256 ports with different ids, not {len(h.ports)}")
     if h.timing not in ("host", "none"):
         raise ValueError(f"timing {h.timing!r} is not 'host' or 'none'")
     if not isinstance(h.extra, dict):
@@ -190,7 +217,8 @@ def _check_header(h: CaptureHeader) -> None:
         raise ValueError(f"host_delay_ms {delay!r} is not a number from 0 to 60000")
     roles = h.extra.get("port_roles", {})
     if not (isinstance(roles, dict) and all(v in _PORT_ROLES for v in roles.values())
-                                  and all(str(k).isdigit() for k in roles)):
+                                  and all(str(k).isascii() and str(k).isdigit() and int(k) <= 255
+                                          for k in roles)):
         raise ValueError(f"port_roles must map port numbers to one of {', '.join(_PORT_ROLES)}")
     protocol = h.extra.get("protocol", "rtu")
     if not isinstance(protocol, str) or protocol.lower() not in ("rtu", "ascii"):
