@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 
 from buswitness.cli.common import add_input_options, roles_arg, serial_from_args
+from buswitness.textsafe import visible
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
@@ -16,11 +17,11 @@ MAX_TIMEOUT_MS = 600_000.0
 
 def timeout_arg(text: str) -> float:
     """``200ms``, ``0.2s`` or a bare number of milliseconds, as milliseconds."""
-    from buswitness.cli.common import duration_s
+    from buswitness.cli.common import _DECIMAL, duration_s
     s = str(text).strip()
-    try:
+    if _DECIMAL.match(s):
         value = float(s)
-    except ValueError:
+    else:
         value = duration_s(s) * 1000.0
     if not 0 < value <= MAX_TIMEOUT_MS:
         raise argparse.ArgumentTypeError(
@@ -77,10 +78,17 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 def run(args: argparse.Namespace) -> int:
     from buswitness.analysis.dashboard import write_dashboard
     from buswitness.analysis.summary import text_summary, write_summary
+    from buswitness.fsutil import check_output_dir, check_output_path
 
     html, js = args.html, args.json
     if not any((html, js, args.csv, args.parquet)):
         html, js = "report.html", "summary.json"
+    for path, option in ((html, "--html"), (js, "--json")):
+        if path:
+            check_output_path(path, option)
+    for folder, option in ((args.csv, "--csv"), (args.parquet, "--parquet")):
+        if folder:
+            check_output_dir(folder, option)
     result = run_analysis(args, args.csv, args.parquet)
     print(text_summary(result))
     written = []
@@ -93,5 +101,5 @@ def run(args: argparse.Namespace) -> int:
             written.extend(Path(folder) / f"{name}.{kind}" for name in ("transactions", "frames", "events"))
     print("wrote:")
     for p in written:
-        print(f"  {Path(p).resolve()}")
+        print(visible(f"  {Path(p).resolve()}"))
     return 0
