@@ -58,12 +58,17 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_dir: str | None = None):
     """Open the input read-only and analyse it as the options say."""
-    from buswitness.analysis import AnalysisOptions, analyze, load_station_map
+    from buswitness.analysis.stationmap import load_station_map
     from buswitness.capture.sources import open_capture
     from buswitness.errors import InputFileError
 
+    # The inputs are read (the station map whole, the capture's header) before the analysis modules
+    # load, so a wrong path or a damaged header is refused at once.
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, serial_from_args(args), args.on_bad_line)
+
+    from buswitness.analysis import AnalysisOptions, analyze
+
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
                               progress=False if args.no_progress else None, port_roles=roles)
@@ -76,8 +81,6 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
 
 def run(args: argparse.Namespace) -> int:
-    from buswitness.analysis.dashboard import write_dashboard
-    from buswitness.analysis.summary import text_summary, write_summary
     from buswitness.fsutil import check_output_dir, check_output_path
 
     html, js = args.html, args.json
@@ -90,6 +93,10 @@ def run(args: argparse.Namespace) -> int:
         if folder:
             check_output_dir(folder, option)
     result = run_analysis(args, args.csv, args.parquet)
+
+    from buswitness.analysis.dashboard import write_dashboard
+    from buswitness.analysis.summary import text_summary, write_summary
+
     print(text_summary(result))
     written = []
     if html:

@@ -30,12 +30,14 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from buswitness.analysis.evidence import write_evidence
     from buswitness.fsutil import check_output_path
 
     output = args.output or f"station{args.station}.html"
     check_output_path(output, "-o")
     result = run_analysis(args)
+
+    from buswitness.analysis.evidence import write_evidence
+
     path = write_evidence(result, args.station, output)
     s = result.station(args.station)
     print(visible(f"{s.label}: {s.requests} requests, {s.timeouts} timeouts, {s.late} late answers, "

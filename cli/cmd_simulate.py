@@ -48,7 +48,7 @@ def run(args: argparse.Namespace) -> int:
     if args.seed < 0:
         raise UsageError(f"--seed must be zero or more, not {args.seed}")
     if os.path.lexists(args.scenario) and args.scenario not in builtin_descriptions():
-        check_input_file(args.scenario, "scenario file (.json or .toml)", MAX_TEXT_INPUT_BYTES)
+        check_input_file(args.scenario, "scenario file", MAX_TEXT_INPUT_BYTES)
     sc = load_scenario(args.scenario)
     res = simulate(sc, duration_s=args.duration, seed=args.seed, latency_ms=args.latency_ms, baud=args.baud,
                    bus_format=args.char_format, keep_tables=bool(args.truth))
