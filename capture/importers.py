@@ -27,7 +27,14 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
-from buswitness.capture.fileformat import FLAG_UNTIMED, CaptureHeader, PortInfo, ReadReport, RecordBatch
+from buswitness.capture.fileformat import (
+    FLAG_UNTIMED,
+    MAX_SPAN_NS,
+    CaptureHeader,
+    PortInfo,
+    ReadReport,
+    RecordBatch,
+)
 from buswitness.decode.timing import SerialFormat, parse_baud
 from buswitness.errors import InputFileError, UsageError
 
@@ -35,8 +42,9 @@ from buswitness.errors import InputFileError, UsageError
 EPOCH_THRESHOLD_S = 1e8
 #: Latest first time read as a calendar time (the end of year 9999, the last a date can show).
 EPOCH_LIMIT_S = 253402300799.0
-#: Largest time since the start a line may carry: the nanoseconds must fit an int64 (about 292 years).
-MAX_OFFSET_S = 9.2e9
+#: Largest time since the start a line may carry: one capture covers at most a year, as a capture file's
+#: records do (fileformat.MAX_SPAN_NS); before, up to 292 years passed and made per-minute figures for them.
+MAX_OFFSET_S = MAX_SPAN_NS / 1e9
 #: Largest adapter latency a '# latency_ms:' line may give (the capture header allows the same).
 MAX_LATENCY_MS = 10_000.0
 BATCH_RECORDS = 65536
@@ -184,7 +192,7 @@ class HexTextSource:
             problem = f"the time {parts[0][:20]!r} is not a number of seconds"
             seconds = self._t0
         if not abs(seconds - self._t0) <= MAX_OFFSET_S:
-            problem = f"the time {parts[0][:20]!r} is out of range (more than 292 years from the start)"
+            problem = f"the time {parts[0][:20]!r} is out of range (more than {MAX_OFFSET_S / 86400:.0f} days from the start)"
         if not problem:
             t_ns = int(round((seconds - self._t0) * 1e9))
             if t_ns < last_t:

@@ -246,3 +246,13 @@ def test_a_port_that_is_not_a_serial_device_is_a_usage_error(odd_paths, tmp_path
             check_port(str(path))
     check_port("loop://")
     check_port(str(tmp_path / "not-plugged-in-yet"))
+
+
+def test_hex_lines_more_than_a_year_from_the_start_are_bad_lines(tmp_path):
+    # Before: a line at 9e9 s (285 years) passed and made per-minute figures for every minute in between.
+    path = tmp_path / "far.hex"
+    path.write_text("0.004 01 03 00 0A 00 02 E4 09\n9e9 01 03 04 00 41 00 C8 AB B1\n", encoding="utf-8")
+    with pytest.raises(InputFileError, match="line 2: the time '9e9' is out of range .more than 366 days"):
+        list(open_capture(path).iter_batches())
+    src = open_capture(path, on_bad_line="skip")
+    assert sum(len(b) for b in src.iter_batches()) == 1
