@@ -1,8 +1,9 @@
 """End-to-end fuzzing from generated captures: header fields and records through everything that
 ``analyze`` and ``evidence`` run, in-process.
 
-Each case builds a small capture file in memory: a header made from valid fields with 0 to 4
-of them replaced by a hostile value (wrong types, huge or negative numbers, dates near the year
+Each case builds a small capture file in memory (one case in five: timestamped hex text with
+settings comments that may be hostile, and now and then a time that is no number or far out of
+range): a header made from valid fields with 0 to 4 of them replaced by a hostile value (wrong types, huge or negative numbers, dates near the year
 9999, control characters, markup), and 0 to 40 records mixing CRC-valid Modbus RTU requests and
 answers with random bytes, random ports and flags, and timestamps that step forwards, backwards
 or jump towards the ends of int64. The case then runs the same functions the two verbs run:
@@ -160,11 +161,31 @@ def capture_bytes(header: dict, recs: list[tuple[int, int, int, bytes]], rng: ra
     return bytes(out)
 
 
+def hex_text(rng: random.Random, recs: list[tuple[int, int, int, bytes]]) -> bytes:
+    """The records as timestamped hex text, with settings comments that may be hostile."""
+    lines = []
+    for _ in range(rng.randrange(0, 4)):
+        key = rng.choice(["baud", "format", "latency_ms", "port", "notes"])
+        lines.append(f"# {key}: {hostile_value(rng) if rng.random() < 0.5 else rng.choice(['19200', '8E1', '16'])}")
+    t0 = recs[0][0] if recs else 0
+    epoch = rng.choice([0.0, 0.0, 1.7e9, 9e15])
+    for t, _, _, data in recs:
+        if not data:
+            continue
+        seconds = epoch + (t - t0) / 1e9
+        stamp = rng.choice([f"{seconds:.6f}"] * 100 + ["nan", "-inf", "1e300", "x", f"{-seconds:.3f}"])
+        lines.append(f"{stamp} {data.hex(' ').upper()}")
+    text = "\n".join(lines).replace("\x00", "")
+    return text.encode("utf-8", "replace")
+
+
 def make_case(seed: int) -> bytes:
-    """The capture file of case ``seed`` (the same seed gives the same bytes)."""
+    """The capture file of case ``seed`` (the same seed gives the same bytes); one in five is hex text."""
     rng = random.Random(seed)
     header = base_header(rng)
     recs = records(rng, header["start_monotonic_ns"], len(header["ports"]))
+    if rng.random() < 0.2:
+        return hex_text(rng, recs)
     mutate_header(rng, header)
     return capture_bytes(header, recs, rng)
 

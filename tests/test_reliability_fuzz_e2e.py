@@ -37,9 +37,9 @@ def test_ten_thousand_generated_captures_give_a_typed_error_or_reports():
     assert 0.2 * CASES < tally.refused < 0.8 * CASES
 
 
-@pytest.mark.parametrize("seed", [0, 4, 30, 38])  # seeds that found the record-time bugs (see docs/reliability.md)
-def test_generated_captures_through_the_whole_of_analyze_and_evidence(seed):
-    tally = e2e.run_cases([seed])
+def test_generated_captures_through_the_whole_of_analyze_and_evidence():
+    # The record-time bugs the harness found (docs/reliability.md) showed in the first 40 cases.
+    tally = e2e.run_cases(range(40))
     assert not tally.failures, tally.failures[0][1] if tally.failures else ""
 
 
