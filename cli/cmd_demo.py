@@ -59,17 +59,20 @@ def slowest_station(result) -> int | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from buswitness.fsutil import check_output_dir
+
+    check_output_dir(args.dir, "--dir")  # before the simulator and analysis modules load
+
     from buswitness.analysis import AnalysisOptions, analyze, load_station_map
     from buswitness.analysis.dashboard import write_dashboard
     from buswitness.analysis.evidence import write_evidence
     from buswitness.analysis.summary import text_summary, write_summary
     from buswitness.capture.sources import open_capture
     from buswitness.errors import OutputError
-    from buswitness.fsutil import atomic_write, check_output_dir
+    from buswitness.fsutil import atomic_write
     from buswitness.simulate import load_scenario, simulate
 
     folder = Path(args.dir)
-    check_output_dir(folder, "--dir")
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:

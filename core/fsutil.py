@@ -13,6 +13,7 @@ import errno
 import os
 import stat
 import tempfile
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import IO
@@ -53,6 +54,8 @@ def atomic_write(path: str | os.PathLike, mode: str = "w", encoding: str | None 
                 os.unlink(tmp)
 
 
+#: How long a write to a named pipe waits for a reader to open the other end.
+READER_WAIT_S = 2.0
 #: A temporary file untouched this long, whose writer is gone, is left over from a killed run.
 STALE_PART_S = 600.0
 
@@ -75,7 +78,6 @@ def remove_stale_parts(target: Path, now: float | None = None) -> list[Path]:
     writing the same file at the same moment keeps its file. Returns what was removed.
     """
     import re
-    import time
 
     pattern = re.compile(rf"^\.{re.escape(target.name)}\.(?:(\d+)-)?[^/]*\.part$")
     now = time.time() if now is None else now
@@ -112,12 +114,19 @@ def _is_stream(target: Path) -> bool:
 
 
 def _write_through(target: Path, mode: str, encoding: str | None) -> Iterator[IO]:
-    try:
-        # Non-blocking open: a FIFO that nobody reads fails at once (ENXIO) instead of waiting forever.
-        fd = os.open(target, os.O_WRONLY | (os.O_APPEND if "a" in mode else 0) | getattr(os, "O_NONBLOCK", 0))
-    except OSError as exc:
-        reason = "nobody is reading this pipe" if exc.errno == errno.ENXIO else exc.strerror
-        raise OutputError(f"{target}: cannot write ({reason})") from None
+    # Non-blocking open: a FIFO that nobody reads fails (ENXIO) instead of waiting forever; a reader
+    # that is just starting (``cat pipe &``) gets READER_WAIT_S to open its end.
+    deadline = time.monotonic() + READER_WAIT_S
+    while True:
+        try:
+            fd = os.open(target, os.O_WRONLY | (os.O_APPEND if "a" in mode else 0) | getattr(os, "O_NONBLOCK", 0))
+            break
+        except OSError as exc:
+            if exc.errno == errno.ENXIO and time.monotonic() < deadline:
+                time.sleep(0.05)
+                continue
+            reason = "nobody is reading this pipe" if exc.errno == errno.ENXIO else exc.strerror
+            raise OutputError(f"{target}: cannot write ({reason})") from None
     try:
         os.set_blocking(fd, True)
         with os.fdopen(fd, mode, encoding=None if "b" in mode else encoding) as f:
