@@ -211,7 +211,8 @@ class HexTextSource:
                         problem = "more than 65535 bytes on one line"
                     else:
                         return t_ns, bytes(data)
-        return self._bad_line(problem, lineno, s)
+        self._bad_line(problem, lineno, s)
+        return None
 
     def _bad_line(self, problem: str, lineno: int, s: str) -> None:
         message = f"line {lineno}: {problem}"

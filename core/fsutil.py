@@ -81,7 +81,7 @@ def remove_stale_parts(target: Path, now: float | None = None) -> list[Path]:
 
     pattern = re.compile(rf"^\.{re.escape(target.name)}\.(?:(\d+)-)?[^/]*\.part$")
     now = time.time() if now is None else now
-    removed = []
+    removed: list[Path] = []
     try:
         entries = list(os.scandir(target.parent))
     except OSError:
