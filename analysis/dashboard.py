@@ -45,8 +45,38 @@ def _label(text: str) -> str:
     return html.escape(text, quote=True)
 
 
+#: Up to this many points in the time-series traces, they are drawn as SVG ("scatter"); above, with
+#: WebGL ("scattergl"), which stays quick with a week of minutes for many stations. Plotly's WebGL
+#: layer (regl) compiles its draw calls with the Function constructor, so only a page that needs it
+#: allows 'unsafe-eval' in its content-security policy (docs/reliability.md, section 6).
+SVG_POINT_LIMIT = 50_000
+CSP_BASE = "default-src 'none'; script-src 'unsafe-inline'{eval}; style-src 'unsafe-inline'; img-src data:; font-src data:"
+
+
+def _choose_renderer(figures: dict) -> bool:
+    """Draw the time series as SVG when they are small enough; True when some chart still needs WebGL."""
+    gl = [t for fig in figures.values() for t in fig["data"] if t.get("type") == "scattergl"]
+    if sum(len(t.get("x") or ()) for t in gl) <= SVG_POINT_LIMIT:
+        for t in gl:
+            t["type"] = "scatter"
+        return False
+    return bool(gl)
+
+
+def content_security_policy(figures: dict) -> str:
+    """The page's policy: scripts only inline, and evaluation of strings only for WebGL charts."""
+    needs_eval = any(t.get("type", "").endswith("gl") for fig in figures.values() for t in fig["data"])
+    return CSP_BASE.format(eval=" 'unsafe-eval'" if needs_eval else "")
+
+
 def charts(result: AnalysisResult) -> dict:
     """Plotly figure specs (data + layout) for every chart of the dashboard."""
+    figures = _charts(result)
+    _choose_renderer(figures)
+    return figures
+
+
+def _charts(result: AnalysisResult) -> dict:
     n = result.minutes()
     x = _minute_axis(result, n)
     x_title = "time (UTC)" if result.utc_at(0.0) else "hours since capture start"
@@ -176,9 +206,10 @@ def render_dashboard(result: AnalysisResult) -> str:
     env = environment()
     data = dashboard_data(result)
     css = stylesheet("dashboard.css") + (stylesheet("plan_panel.css") if data["plan"] else "")
+    figures = charts(result)
     return env.get_template("dashboard.html").render(
         d=data, css=Markup(css), plotly_js=Markup(_plotly_js()),
-        chart_json=Markup(script_json(charts(result))))
+        chart_json=Markup(script_json(figures)), csp=Markup(content_security_policy(figures)))
 
 
 def write_dashboard(result: AnalysisResult, path: str | Path) -> Path:

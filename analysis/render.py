@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 from importlib import resources
@@ -68,8 +69,9 @@ def finite(values: list) -> list:
     return [None if isinstance(v, float) and not math.isfinite(v) else v for v in values]
 
 
+@functools.lru_cache(maxsize=1)
 def environment() -> jinja2.Environment:
-    """Templates from the package, autoescaped whatever their name."""
+    """Templates from the package, autoescaped whatever their name; built once, so each template compiles once."""
     env = jinja2.Environment(loader=jinja2.FunctionLoader(_load), autoescape=True, undefined=jinja2.StrictUndefined,
                              trim_blocks=True, lstrip_blocks=True)
     env.filters.update(ms=fmt_ms, interval=fmt_interval, fname=function_name, exname=exception_name,

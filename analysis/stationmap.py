@@ -20,6 +20,7 @@ from pathlib import Path
 
 import tomllib
 from buswitness.errors import InputFileError
+from buswitness.fsutil import read_text_input
 
 
 @dataclass(frozen=True)
@@ -60,12 +61,9 @@ _KEYS = {"name", "position_m", "notes"}
 def load_station_map(path: str | os.PathLike) -> StationMap:
     """Read a station map; a mistake names the file and, where it can, the line."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputFileError(p, "no such station map file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputFileError(p, f"the station map cannot be read ({exc})") from None
+    if not p.exists() and not p.is_symlink():
+        raise InputFileError(p, "no such station map file")
+    text = read_text_input(p, "station map")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

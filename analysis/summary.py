@@ -15,6 +15,7 @@ from pathlib import Path
 from buswitness.analysis.histogram import FINE
 from buswitness.analysis.result import EXCEPTION_NAMES, AnalysisResult
 from buswitness.fsutil import atomic_write
+from buswitness.textsafe import visible
 
 SCHEMA_VERSION = 1
 
@@ -147,4 +148,4 @@ def text_summary(result: AnalysisResult, max_findings: int = 5) -> str:
                      + (f", {s.ambiguous} ambiguous (echo or retry)" if s.ambiguous else "")
                      + f"; response (interval midpoints) p50 {_ms(r['p50'])}, p95 {_ms(r['p95'])}, "
                      f"max {_ms(r['max'])}")
-    return "\n".join(lines)
+    return "\n".join(visible(line) for line in lines)  # names, notes and paths come from outside

@@ -18,6 +18,7 @@ Format version changelog:
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import re
@@ -51,6 +52,18 @@ INDEX_DTYPE = np.dtype([("t_ns", "<i8"), ("length", "<u2"), ("port", "u1"), ("fl
 MAX_BLOCK_RECORDS = 1 << 20
 MAX_BLOCK_PAYLOAD = 64 << 20
 MAX_HEADER_BYTES = 1 << 20
+#: Header ranges: a value outside is damage or a crafted file. The start year leaves the
+#: ~292 years an int64 of nanoseconds spans before a date overflows (year 9999); a part
+#: number has four digits in its file name; the monotonic clock is an int64.
+START_YEARS = (1970, 2999)
+#: Record times: a monotonic clock read in nanoseconds stays far inside int64 (2**62 ns is 146
+#: years of uptime), and one capture covers at most a year. A record outside is damage (or a
+#: crafted file): kept out, it cannot overflow the decoder's arithmetic or make per-minute
+#: figures for centuries of empty time.
+MAX_RECORD_NS = 1 << 62
+MAX_SPAN_NS = 366 * 86400 * 10**9
+MAX_PART = 9999
+MAX_MONOTONIC_NS = (1 << 63) - 1
 
 # Record flags. A record may carry flags and no bytes (a marker).
 FLAG_LINE_ERROR = 0x01   #: the bytes arrived marked bad by the UART (parity or framing error)
@@ -165,6 +178,18 @@ def _is_number(v: object, lo: float, hi: float) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and lo <= v <= hi
 
 
+def _check_start_utc(text: str) -> None:
+    """An empty start time (unknown) or a calendar time from 1970 to 2999: later ones overflow a date."""
+    if not text:
+        return
+    try:
+        start = datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(f"start_utc {text[:40]!r} is not a date and time (ISO 8601)") from None
+    if not START_YEARS[0] <= start.year <= START_YEARS[1]:
+        raise ValueError(f"start_utc {text[:40]!r} is not a time from the years {START_YEARS[0]} to {START_YEARS[1]}")
+
+
 def _check_header(h: CaptureHeader) -> None:
     """Refuse values no writer produces, so a crafted or damaged header fails here, not deep in the decoder."""
     for p in h.ports:
@@ -181,6 +206,15 @@ def _check_header(h: CaptureHeader) -> None:
             raise ValueError(f"{name} must be text")
     if not _is_int(h.start_monotonic_ns) or not _is_int(h.part) or h.part < 0:
         raise ValueError("start_monotonic_ns and part must be whole numbers")
+    if not 0 <= h.start_monotonic_ns <= MAX_MONOTONIC_NS:
+        raise ValueError(f"start_monotonic_ns {h.start_monotonic_ns} is not a number from 0 to {MAX_MONOTONIC_NS}")
+    if h.part > MAX_PART:
+        raise ValueError(f"part {h.part} is not a number from 0 to {MAX_PART}")
+    if not (_is_int(h.format_version) and 1 <= h.format_version <= FORMAT_VERSION):
+        raise ValueError(f"format_version {h.format_version!r} is not a number from 1 to {FORMAT_VERSION}")
+    _check_start_utc(h.start_utc)
+    if not 1 <= len(h.ports) <= 256 or len({p.id for p in h.ports}) != len(h.ports):
+        raise ValueError(f"ports must list 1 to 256 ports with different ids, not {len(h.ports)}")
     if h.timing not in ("host", "none"):
         raise ValueError(f"timing {h.timing!r} is not 'host' or 'none'")
     if not isinstance(h.extra, dict):
@@ -190,7 +224,8 @@ def _check_header(h: CaptureHeader) -> None:
         raise ValueError(f"host_delay_ms {delay!r} is not a number from 0 to 60000")
     roles = h.extra.get("port_roles", {})
     if not (isinstance(roles, dict) and all(v in _PORT_ROLES for v in roles.values())
-                                  and all(str(k).isdigit() for k in roles)):
+                                  and all(str(k).isascii() and str(k).isdigit() and int(k) <= 255
+                                          for k in roles)):
         raise ValueError(f"port_roles must map port numbers to one of {', '.join(_PORT_ROLES)}")
     protocol = h.extra.get("protocol", "rtu")
     if not isinstance(protocol, str) or protocol.lower() not in ("rtu", "ascii"):
@@ -324,8 +359,19 @@ class CaptureWriter:
             raise OutputError(f"{path}: cannot create the capture file ({exc.strerror})") from None
         self.header.part = part
         head = _encode_file_header(self.header)
+        try:
+            view = memoryview(head)
+            while view:
+                view = view[os.write(fd, view):]
+        except OSError as exc:
+            # Not even the header fits (a full disk, a size limit): leave no empty or torn file behind.
+            os.close(fd)
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+            before = ("nothing was recorded" if part == 0 else
+                      "everything recorded before this moment is in the earlier part(s) and reads back")
+            raise OutputError(f"{path}: cannot write the capture ({exc.strerror}); {before}") from None
         self._fd = fd
-        self._write_all(head)
         self._part_size = len(head)
         self._part_first_t = None
         self.parts.append(path)
@@ -477,12 +523,14 @@ class ReadReport:
     bytes_skipped: int = 0                #: file bytes passed over while resynchronising
     missing_parts: list[int] = field(default_factory=list)
     lines_skipped: int = 0                #: malformed hex-text lines skipped (--on-bad-line skip)
+    bad_time_records: int = 0             #: records with an impossible time (see MAX_RECORD_NS), left out
+    read_error: str = ""                  #: the read error (EIO) that ended reading; what came before is kept
     warnings: list[str] = field(default_factory=list)
 
     @property
     def clean(self) -> bool:
         return not (self.truncated_tail or self.bad_blocks or self.bytes_skipped or self.missing_parts
-                    or self.lines_skipped)
+                    or self.lines_skipped or self.bad_time_records or self.read_error)
 
     def summary(self) -> str:
         lines = [f"{self.records} records, {self.data_bytes} bytes in {self.blocks} blocks, {len(self.files)} file(s)"]
@@ -495,7 +543,11 @@ class ReadReport:
 def read_header(path: str | os.PathLike) -> CaptureHeader:
     """Read and check only the file header of one capture file."""
     with _open_for_read(path) as f:
-        return _read_file_header(f, path)
+        try:
+            return _read_file_header(f, path)
+        except OSError as exc:
+            raise InputFileError(path, f"cannot be read ({exc.strerror or exc.__class__.__name__})",
+                                 "a read error in the file header: nothing usable; copy the file again") from None
 
 
 def _open_for_read(path: str | os.PathLike) -> BinaryIO:
@@ -580,6 +632,7 @@ class CaptureReader:
         else:
             paths, missing = [Path(p) for p in path], []
         self.read_size = read_size
+        self._anchor_ns: int | None = None
         self.header = read_header(paths[0])
         self.paths: list[Path] = []
         for p in paths:
@@ -604,59 +657,103 @@ class CaptureReader:
             yield from batch.records()
 
     def _iter_file(self, path: Path) -> Iterator[RecordBatch]:
-        rep = self.report
         with _open_for_read(path) as f:
-            _read_file_header(f, path)
-            while True:
-                pos = f.tell()
-                head = f.read(_BLOCK_HEAD.size)
-                if not head:
+            try:
+                yield from self._iter_blocks(f, path)
+            except OSError as exc:  # a failing medium (EIO): keep what was read, say where it stopped
+                self._note_read_error(path, f, exc)
+
+    def _note_read_error(self, path: Path, f: BinaryIO, exc: OSError) -> None:
+        try:
+            where = f"at about byte {f.tell()}"
+        except (OSError, ValueError):
+            where = "part-way"
+        reason = exc.strerror or exc.__class__.__name__
+        self.report.read_error = reason
+        self.report.warnings.append(
+            f"{path}: read error {where} ({reason}); the records read before it are kept, the rest of this "
+            f"file could not be read (copy it again, or read it from another drive)")
+
+    def _iter_blocks(self, f: BinaryIO, path: Path) -> Iterator[RecordBatch]:
+        rep = self.report
+        _read_file_header(f, path)
+        while True:
+            pos = f.tell()
+            head = f.read(_BLOCK_HEAD.size)
+            if not head:
+                return
+            if len(head) < _BLOCK_HEAD.size:
+                if BLOCK_SYNC.startswith(head[:4]) or head.startswith(BLOCK_SYNC):
+                    self._note_truncated(path)
+                else:
+                    rep.bytes_skipped += len(head)
+                return
+            sync, n, plen, hcrc = _BLOCK_HEAD.unpack(head)
+            if (sync != BLOCK_SYNC or zlib.crc32(head[:12]) != hcrc or n > MAX_BLOCK_RECORDS
+                    or plen > MAX_BLOCK_PAYLOAD):
+                if not self._resync(f, pos + 1, path):
                     return
-                if len(head) < _BLOCK_HEAD.size:
-                    if BLOCK_SYNC.startswith(head[:4]) or head.startswith(BLOCK_SYNC):
-                        self._note_truncated(path)
-                    else:
-                        rep.bytes_skipped += len(head)
-                    return
-                sync, n, plen, hcrc = _BLOCK_HEAD.unpack(head)
-                if (sync != BLOCK_SYNC or zlib.crc32(head[:12]) != hcrc or n > MAX_BLOCK_RECORDS
-                        or plen > MAX_BLOCK_PAYLOAD):
-                    if not self._resync(f, pos + 1, path):
-                        return
-                    continue
-                body_len = n * INDEX_DTYPE.itemsize + plen
-                body = f.read(body_len)
-                crc = f.read(4)
-                if len(body) < body_len or len(crc) < 4:
-                    batch = self._salvage(body, n, plen)
-                    self._note_truncated(path, len(batch))
-                    if len(batch):
-                        rep.records += len(batch)
-                        rep.data_bytes += int(batch.length.sum())
-                        yield batch
-                    return
-                if zlib.crc32(body) != _U32.unpack(crc)[0]:
-                    rep.bad_blocks += 1
-                    rep.bad_block_records += n
-                    rep.warnings.append(f"{path}: a damaged block of {n} records at byte {pos} was skipped")
-                    continue
-                index = np.frombuffer(body, dtype=INDEX_DTYPE, count=n)
-                lengths = index["length"].astype(np.int64)
-                if int(lengths.sum()) != plen:
-                    rep.bad_blocks += 1
-                    rep.bad_block_records += n
-                    rep.warnings.append(f"{path}: an inconsistent block at byte {pos} was skipped")
-                    continue
-                rep.blocks += 1
-                rep.records += n
-                rep.data_bytes += plen
-                yield RecordBatch(
-                    t_ns=index["t_ns"].astype(np.int64),
-                    length=lengths,
-                    port=index["port"].copy(),
-                    flags=index["flags"].copy(),
-                    payload=np.frombuffer(body, dtype=np.uint8, offset=n * INDEX_DTYPE.itemsize).copy(),
-                )
+                continue
+            body_len = n * INDEX_DTYPE.itemsize + plen
+            body = f.read(body_len)
+            crc = f.read(4)
+            if len(body) < body_len or len(crc) < 4:
+                batch = self._in_span(self._salvage(body, n, plen), path, pos)
+                self._note_truncated(path, len(batch))
+                if len(batch):
+                    rep.records += len(batch)
+                    rep.data_bytes += int(batch.length.sum())
+                    yield batch
+                return
+            if zlib.crc32(body) != _U32.unpack(crc)[0]:
+                rep.bad_blocks += 1
+                rep.bad_block_records += n
+                rep.warnings.append(f"{path}: a damaged block of {n} records at byte {pos} was skipped")
+                continue
+            index = np.frombuffer(body, dtype=INDEX_DTYPE, count=n)
+            lengths = index["length"].astype(np.int64)
+            if int(lengths.sum()) != plen:
+                rep.bad_blocks += 1
+                rep.bad_block_records += n
+                rep.warnings.append(f"{path}: an inconsistent block at byte {pos} was skipped")
+                continue
+            batch = self._in_span(RecordBatch(
+                t_ns=index["t_ns"].astype(np.int64),
+                length=lengths,
+                port=index["port"].copy(),
+                flags=index["flags"].copy(),
+                payload=np.frombuffer(body, dtype=np.uint8, offset=n * INDEX_DTYPE.itemsize).copy(),
+            ), path, pos)
+            rep.blocks += 1
+            rep.records += len(batch)
+            rep.data_bytes += int(batch.length.sum())
+            yield batch
+
+    def _in_span(self, batch: RecordBatch, path: Path, pos: int) -> RecordBatch:
+        """The records whose times are possible: inside ±MAX_RECORD_NS and within MAX_SPAN_NS of the first."""
+        if not len(batch):
+            return batch
+        t = batch.t_ns
+        if self._anchor_ns is None:
+            sane = t[(t >= -MAX_RECORD_NS) & (t <= MAX_RECORD_NS)]
+            if not len(sane):
+                return self._drop_times(batch, np.zeros(len(batch), bool), path, pos)
+            self._anchor_ns = int(sane[0])
+        lo = max(-MAX_RECORD_NS, self._anchor_ns - MAX_SPAN_NS)
+        hi = min(MAX_RECORD_NS, self._anchor_ns + MAX_SPAN_NS)
+        keep = (t >= lo) & (t <= hi)
+        if keep.all():
+            return batch
+        return self._drop_times(batch, keep, path, pos)
+
+    def _drop_times(self, batch: RecordBatch, keep: np.ndarray, path: Path, pos: int) -> RecordBatch:
+        dropped = int((~keep).sum())
+        self.report.bad_time_records += dropped
+        self.report.warnings.append(
+            f"{path}: {dropped} record(s) with an impossible time (more than {MAX_SPAN_NS // 86_400_000_000_000} "
+            f"days from the first record) in the block at byte {pos} left out")
+        return RecordBatch(batch.t_ns[keep], batch.length[keep], batch.port[keep], batch.flags[keep],
+                           batch.payload[np.repeat(keep, batch.length)])
 
     def _note_truncated(self, path: Path, kept: int = 0) -> None:
         self.report.truncated_tail = True

@@ -27,7 +27,14 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
-from buswitness.capture.fileformat import FLAG_UNTIMED, CaptureHeader, PortInfo, ReadReport, RecordBatch
+from buswitness.capture.fileformat import (
+    FLAG_UNTIMED,
+    MAX_SPAN_NS,
+    CaptureHeader,
+    PortInfo,
+    ReadReport,
+    RecordBatch,
+)
 from buswitness.decode.timing import SerialFormat, parse_baud
 from buswitness.errors import InputFileError, UsageError
 
@@ -35,11 +42,14 @@ from buswitness.errors import InputFileError, UsageError
 EPOCH_THRESHOLD_S = 1e8
 #: Latest first time read as a calendar time (the end of year 9999, the last a date can show).
 EPOCH_LIMIT_S = 253402300799.0
-#: Largest time since the start a line may carry: the nanoseconds must fit an int64 (about 292 years).
-MAX_OFFSET_S = 9.2e9
+#: Largest time since the start a line may carry: one capture covers at most a year, as a capture file's
+#: records do (fileformat.MAX_SPAN_NS); before, up to 292 years passed and made per-minute figures for them.
+MAX_OFFSET_S = MAX_SPAN_NS / 1e9
 #: Largest adapter latency a '# latency_ms:' line may give (the capture header allows the same).
 MAX_LATENCY_MS = 10_000.0
 BATCH_RECORDS = 65536
+#: Longest line read: 65535 bytes in hex with spaces and a time (a longer one is a bad line, read no further).
+MAX_LINE_CHARS = 256 * 1024
 RAW_RECORD_BYTES = 256
 _SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$", re.IGNORECASE)
 _HEX_TOKEN = re.compile(r"^(?:0x)?([0-9A-Fa-f]{2})+$")
@@ -62,7 +72,10 @@ class HexTextSource:
         if self.on_bad_line not in ON_BAD_LINE:
             raise UsageError(f"--on-bad-line must be one of {', '.join(ON_BAD_LINE)}, not {self.on_bad_line!r}")
         self.path = Path(self.path)
-        self.header = self._read_settings()
+        try:
+            self.header = self._read_settings()
+        except OSError as exc:
+            raise InputFileError(self.path, f"cannot be read ({exc.strerror or exc.__class__.__name__})") from None
         self.paths = [self.path]
         self.report.files = [str(self.path)]
 
@@ -80,7 +93,7 @@ class HexTextSource:
         baud, fmt, latency, port, notes = 19200, "8E1", None, str(self.path), ""
         first_t: float | None = None
         with self._open() as f:
-            for lineno, line in enumerate(f, 1):
+            for lineno, line in _lines(f):
                 s = line.strip()
                 if not s:
                     continue
@@ -130,7 +143,23 @@ class HexTextSource:
         payload = bytearray()
         last_t = -1
         with self._open() as f:
-            for lineno, line in enumerate(f, 1):
+            lines = _lines(f)
+            lineno = 0
+            while True:
+                try:
+                    lineno, line = next(lines)
+                except StopIteration:
+                    break
+                except OSError as exc:  # a failing medium (EIO): keep what was read, say where it stopped
+                    reason = exc.strerror or exc.__class__.__name__
+                    self.report.read_error = reason
+                    self.report.warnings.append(
+                        f"{self.path}: read error after line {lineno} ({reason}); "
+                        f"the lines read before it are kept, the rest could not be read")
+                    break
+                if len(line) > MAX_LINE_CHARS:
+                    self._bad_line(f"longer than {MAX_LINE_CHARS} characters", lineno, line[:MAX_LINE_CHARS])
+                    continue
                 s = line.strip()
                 if not s or s.startswith("#"):
                     continue
@@ -163,7 +192,7 @@ class HexTextSource:
             problem = f"the time {parts[0][:20]!r} is not a number of seconds"
             seconds = self._t0
         if not abs(seconds - self._t0) <= MAX_OFFSET_S:
-            problem = f"the time {parts[0][:20]!r} is out of range (more than 292 years from the start)"
+            problem = f"the time {parts[0][:20]!r} is out of range (more than {MAX_OFFSET_S / 86400:.0f} days from the start)"
         if not problem:
             t_ns = int(round((seconds - self._t0) * 1e9))
             if t_ns < last_t:
@@ -182,6 +211,10 @@ class HexTextSource:
                         problem = "more than 65535 bytes on one line"
                     else:
                         return t_ns, bytes(data)
+        self._bad_line(problem, lineno, s)
+        return None
+
+    def _bad_line(self, problem: str, lineno: int, s: str) -> None:
         message = f"line {lineno}: {problem}"
         if self.on_bad_line == "stop":
             raise InputFileError(self.path, message, "fix the line, or pass --on-bad-line skip to skip bad lines")
@@ -231,7 +264,14 @@ class RawBinarySource:
             raise InputFileError(self.path, f"cannot be opened ({exc.strerror})") from None
         with f:
             while True:
-                block = f.read(RAW_RECORD_BYTES * 4096)
+                try:
+                    block = f.read(RAW_RECORD_BYTES * 4096)
+                except OSError as exc:  # a failing medium (EIO): keep what was read, say where it stopped
+                    reason = exc.strerror or exc.__class__.__name__
+                    self.report.read_error = reason
+                    self.report.warnings.append(f"{self.path}: read error after byte {done} ({reason}); the bytes "
+                                                f"read before it are kept, the rest could not be read")
+                    return
                 if not block:
                     return
                 n = len(block)
@@ -246,6 +286,23 @@ class RawBinarySource:
                 yield RecordBatch(t_ns, lengths, np.zeros(len(lengths), np.uint8),
                                   np.full(len(lengths), FLAG_UNTIMED, np.uint8),
                                   np.frombuffer(block, dtype=np.uint8).copy())
+
+
+def _lines(f) -> Iterator[tuple[int, str]]:
+    """Numbered lines of a text file, none held longer than MAX_LINE_CHARS + 1 characters (the rest of an
+    overlong line is read and dropped in pieces, so a file with no line breaks never fills memory)."""
+    lineno = 0
+    while True:
+        line = f.readline(MAX_LINE_CHARS + 1)
+        if not line:
+            return
+        lineno += 1
+        if len(line) > MAX_LINE_CHARS and not line.endswith("\n"):
+            while True:
+                rest = f.readline(MAX_LINE_CHARS)
+                if not rest or rest.endswith("\n"):
+                    break
+        yield lineno, line
 
 
 def looks_like_hex_text(path: str | os.PathLike) -> bool:

@@ -11,6 +11,7 @@ from buswitness.capture.fileformat import MAGIC, CaptureHeader, CaptureReader, R
 from buswitness.capture.importers import HexTextSource, RawBinarySource, looks_like_hex_text
 from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, NotACaptureError, UsageError
+from buswitness.fsutil import check_input_file
 
 INPUT_KINDS = ("auto", "capture", "hex", "raw")
 
@@ -37,10 +38,7 @@ def open_capture(path: str | os.PathLike, kind: str = "auto", serial: SerialForm
     if kind not in INPUT_KINDS:
         raise UsageError(f"input kind {kind!r} is not one of {', '.join(INPUT_KINDS)}")
     p = Path(path)
-    if p.is_dir():
-        raise InputFileError(p, "is a directory, not a capture file", "give the path of a capture file")
-    if not p.exists():
-        raise InputFileError(p, "no such file")
+    check_input_file(p, "capture file")
     if kind == "auto":
         kind = _guess_kind(p)
     source: CaptureSource
@@ -63,7 +61,7 @@ def _guess_kind(p: Path) -> str:
         with open(p, "rb") as f:
             head = f.read(len(MAGIC))
     except OSError as exc:
-        raise InputFileError(p, f"cannot be opened ({exc.strerror})") from None
+        raise InputFileError(p, f"cannot be read ({exc.strerror or exc.__class__.__name__})") from None
     if not head:
         raise NotACaptureError(p, "is empty", "nothing was recorded into it")
     if head.startswith(MAGIC[:4]):

@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 
 from buswitness.cli.common import add_input_options, roles_arg, serial_halves
+from buswitness.textsafe import visible
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
@@ -16,11 +17,11 @@ MAX_TIMEOUT_MS = 600_000.0
 
 def timeout_arg(text: str) -> float:
     """``200ms``, ``0.2s`` or a bare number of milliseconds, as milliseconds."""
-    from buswitness.cli.common import duration_s
+    from buswitness.cli.common import _DECIMAL, duration_s
     s = str(text).strip()
-    try:
+    if _DECIMAL.match(s):
         value = float(s)
-    except ValueError:
+    else:
         value = duration_s(s) * 1000.0
     if not 0 < value <= MAX_TIMEOUT_MS:
         raise argparse.ArgumentTypeError(
@@ -58,13 +59,18 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_dir: str | None = None,
                  sinks: tuple = ()):
     """Open the input read-only and analyse it as the options say, feeding ``sinks`` (analysis/sinks)."""
-    from buswitness.analysis import AnalysisOptions, load_station_map
+    from buswitness.analysis.stationmap import load_station_map
     from buswitness.capture.sources import open_capture
     from buswitness.cli.progress import analyze_with_bar
     from buswitness.errors import InputFileError
 
+    # The inputs are read (the station map whole, the capture's header) before the analysis modules
+    # load, so a wrong path or a damaged header is refused at once.
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
+
+    from buswitness.analysis import AnalysisOptions
+
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
                               port_roles=roles)
@@ -77,20 +83,29 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
 
 def run(args: argparse.Namespace) -> int:
+    from buswitness.fsutil import check_output_dir, check_output_path
+
+    html, js = args.html, args.json
+    if not any((html, js, args.csv, args.parquet)):
+        html, js = "report.html", "summary.json"
+    for path, option in ((html, "--html"), (js, "--json")):
+        if path:
+            check_output_path(path, option)
+    for folder, option in ((args.csv, "--csv"), (args.parquet, "--parquet")):
+        if folder:
+            check_output_dir(folder, option)
+
     from buswitness.analysis.sinks.csv import CsvSink
     from buswitness.analysis.sinks.dashboard import DashboardSink
     from buswitness.analysis.sinks.parquet import ParquetSink
     from buswitness.analysis.sinks.summary import SummarySink
     from buswitness.analysis.summary import text_summary
 
-    html, js = args.html, args.json
-    if not any((html, js, args.csv, args.parquet)):
-        html, js = "report.html", "summary.json"
     sinks = ([DashboardSink(html)] if html else []) + ([SummarySink(js)] if js else []) + (
         [CsvSink(args.csv)] if args.csv else []) + ([ParquetSink(args.parquet)] if args.parquet else [])
     result = run_analysis(args, sinks=tuple(sinks))
     print(text_summary(result))
     print("wrote:")
     for p in result.written:
-        print(f"  {Path(p).resolve()}")
+        print(visible(f"  {Path(p).resolve()}"))
     return 0

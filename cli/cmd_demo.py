@@ -6,7 +6,7 @@ import argparse
 import time
 from pathlib import Path
 
-from buswitness.cli.common import duration_s
+from buswitness.cli.common import duration_at_most, duration_s, number_arg
 
 HELP = "simulate the demo pump-station night, analyse it and write the reports"
 
@@ -16,6 +16,8 @@ HELP = "simulate the demo pump-station night, analyse it and write the reports"
 #: (``5h``) shows every fault too.
 DEFAULT_DURATION = "8h"
 CAPTURE_NAME = "pumpstation-night.bwcap"
+#: The demo night is 8 h; a day is the most that still makes sense of it.
+MAX_DURATION_S = 86400.0
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -23,10 +25,11 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
                        "a station off the bus after 02:00, a duplicate address, noise when a pump starts).")
     p.add_argument("--dir", default="buswitness-demo", help="folder for the capture and reports "
                                                             "(default: ./buswitness-demo)")
-    p.add_argument("--duration", type=duration_s, default=duration_s(DEFAULT_DURATION),
+    p.add_argument("--duration", type=duration_at_most(MAX_DURATION_S, "the demo night is 8 h"),
+                   default=duration_s(DEFAULT_DURATION),
                    help=f"simulated time from 22:00 (default: {DEFAULT_DURATION}, the whole night; 5h still "
                         f"shows every fault)")
-    p.add_argument("--seed", type=int, default=1, help="random seed (default: 1)")
+    p.add_argument("--seed", type=number_arg(0, 2**32 - 1, "--seed", integer=True), default=1, help="random seed (default: 1)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar, even on a terminal")
     p.set_defaults(run=run)
 
@@ -56,6 +59,10 @@ def slowest_station(result) -> int | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from buswitness.fsutil import check_output_dir
+
+    check_output_dir(args.dir, "--dir")  # before the simulator and analysis modules load
+
     from buswitness.analysis import AnalysisOptions, load_station_map
     from buswitness.analysis.dashboard import write_dashboard
     from buswitness.analysis.evidence import write_evidence

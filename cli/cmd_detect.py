@@ -7,10 +7,16 @@ import sys
 from pathlib import Path
 
 from buswitness.capture import detect
-from buswitness.cli.common import baud_arg, format_arg
+from buswitness.cli.common import baud_arg, format_arg, number_arg
 from buswitness.decode.timing import COMMON_BAUD_RATES
+from buswitness.textsafe import visible
 
 HELP = "find a bus's baud rate and character format from its traffic"
+
+#: Listening longer than 10 minutes per setting finds nothing a minute does not (common practice).
+MAX_SECONDS = 600.0
+#: More rows than any list of candidate settings has.
+MAX_TOP = 1000
 
 DESCRIPTION = """Listen to a port at each common baud rate and character format for a few seconds
 each (listen-only, as 'record') and rank the settings by the share of the traffic that reads
@@ -33,12 +39,14 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("detect", help=HELP, description=DESCRIPTION,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("target", metavar="PORT|CAPTURE", help="serial device or pyserial URL, or a capture file")
-    p.add_argument("--seconds", type=float, default=3.0, help="listening time per setting (default 3)")
+    p.add_argument("--seconds", type=number_arg(0.1, MAX_SECONDS, "--seconds"), default=3.0,
+                   help=f"listening time per setting, 0.1 to {MAX_SECONDS:g} (default 3)")
     p.add_argument("--bauds", type=_list(baud_arg), default=None,
                    help=f"baud rates to try, e.g. 9600,19200 (default: {','.join(map(str, COMMON_BAUD_RATES))})")
     p.add_argument("--formats", type=_list(format_arg), default=None,
                    help=f"formats to try (default: {','.join(detect.COMMON_FORMATS)})")
-    p.add_argument("--top", type=int, default=8, help="rows of the ranking to show (default 8)")
+    p.add_argument("--top", type=number_arg(1, MAX_TOP, "--top", integer=True), default=8,
+                   help=f"rows of the ranking to show, 1 to {MAX_TOP} (default 8)")
     p.set_defaults(run=run)
 
 
@@ -60,16 +68,18 @@ def print_ranking(scores: list[detect.Score], top: int) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from buswitness.capture.sources import open_capture
+    from buswitness.cli.common import check_port
 
     target = Path(args.target)
     if "://" not in args.target and target.is_file():
         source = open_capture(target)
         for info in source.header.ports:
             if len(source.header.ports) > 1:
-                print(f"port {info.id} ({info.name}):")
+                print(visible(f"port {info.id} ({info.name}):"))
             check = detect.check_capture(source.header.serial, source.iter_batches(), port=info.id)
-            print(check.describe())
+            print(visible(check.describe(), keep_newlines=True))
         return 0
+    check_port(args.target)
     bauds = args.bauds or list(COMMON_BAUD_RATES)
     formats = args.formats or list(detect.COMMON_FORMATS)
     trials = detect.candidates(bauds, formats)

@@ -6,15 +6,15 @@ import argparse
 from pathlib import Path
 
 from buswitness.cli.cmd_analyze import add_analysis_options, run_analysis
+from buswitness.textsafe import visible
 
 HELP = "write the evidence report on one station for its vendor"
 
 
 def station_arg(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a station address (1 to 247)") from None
+    if not (text.strip().isascii() and text.strip().isdigit()):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a station address (1 to 247)")
+    value = int(text)
     if not 1 <= value <= 247:
         raise argparse.ArgumentTypeError(f"{value} is not a station address (1 to 247)")
     return value
@@ -30,12 +30,17 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from buswitness.fsutil import check_output_path
+
+    output = args.output or f"station{args.station}.html"
+    check_output_path(output, "-o")
+    result = run_analysis(args)
+
     from buswitness.analysis.evidence import write_evidence
 
-    result = run_analysis(args)
-    path = write_evidence(result, args.station, args.output or f"station{args.station}.html")
+    path = write_evidence(result, args.station, output)
     s = result.station(args.station)
-    print(f"{s.label}: {s.requests} requests, {s.timeouts} timeouts, {s.late} late answers, "
-          f"p95 {s.response_ms['p95']} ms; master timeout {result.timeout.explanation}")
-    print(f"wrote: {Path(path).resolve()}")
+    print(visible(f"{s.label}: {s.requests} requests, {s.timeouts} timeouts, {s.late} late answers, "
+                  f"p95 {s.response_ms['p95']} ms; master timeout {result.timeout.explanation}"))
+    print(visible(f"wrote: {Path(path).resolve()}"))
     return 0

@@ -8,6 +8,7 @@ import collections
 from buswitness.capture.fileformat import flag_names
 from buswitness.capture.sources import open_capture
 from buswitness.cli.common import add_input_options, serial_halves
+from buswitness.textsafe import visible
 
 HELP = "print a capture file's header, record counts and any damage found"
 
@@ -19,19 +20,24 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=run)
 
 
+def show(line: str) -> None:
+    """One line on stdout, with any control character from the capture (names, notes, paths) as an escape."""
+    print(visible(line))
+
+
 def run(args: argparse.Namespace) -> int:
     src = open_capture(args.capture, kind=args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
     h = src.header
-    print(f"capture      {', '.join(str(p) for p in src.paths)}")
-    print(f"source       {h.source} (format version {h.format_version}, written by buswitness {h.tool_version})")
-    print(f"serial       {h.serial} (character {h.serial.char_time_s * 1e3:.3f} ms, "
+    show(f"capture      {', '.join(str(p) for p in src.paths)}")
+    show(f"source       {h.source} (format version {h.format_version}, written by buswitness {h.tool_version})")
+    show(f"serial       {h.serial} (character {h.serial.char_time_s * 1e3:.3f} ms, "
           f"t1.5 {h.serial.t15_s * 1e3:.3f} ms, t3.5 {h.serial.t35_s * 1e3:.3f} ms)")
     for port in h.ports:
         lat = f"{port.latency_ms:g} ms ({port.latency_source})" if port.latency_ms is not None else "unknown"
-        print(f"port {port.id}       {port.name}  adapter latency {lat}")
-    print(f"started      {h.start_utc or 'unknown'}  host {h.host or 'unknown'}")
+        show(f"port {port.id}       {port.name}  adapter latency {lat}")
+    show(f"started      {h.start_utc or 'unknown'}  host {h.host or 'unknown'}")
     if h.notes:
-        print(f"notes        {h.notes}")
+        show(f"notes        {h.notes}")
     per_port: collections.Counter = collections.Counter()
     per_port_bytes: collections.Counter = collections.Counter()
     flags: collections.Counter = collections.Counter()
@@ -50,13 +56,13 @@ def run(args: argparse.Namespace) -> int:
                 for name in flag_names(f):
                     flags[name] += int((batch.flags == f).sum())
     span = (last - first) / 1e9 if first is not None and last is not None else 0.0
-    print(f"span         {span:.3f} s between first and last record")
+    show(f"span         {span:.3f} s between first and last record")
     for port in sorted(per_port):
-        print(f"records      port {port}: {per_port[port]} records, {per_port_bytes[port]} bytes")
+        show(f"records      port {port}: {per_port[port]} records, {per_port_bytes[port]} bytes")
     if flags:
-        print("marks        " + ", ".join(f"{name} {count}" for name, count in sorted(flags.items())))
+        show("marks        " + ", ".join(f"{name} {count}" for name, count in sorted(flags.items())))
     rep = src.report
     for w in rep.warnings:
-        print(f"warning      {w}")
-    print("state        " + ("complete" if rep.clean else "damaged or cut off (every readable record kept)"))
+        show(f"warning      {w}")
+    show("state        " + ("complete" if rep.clean else "damaged or cut off (every readable record kept)"))
     return 0

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import os
 import re
 import signal
 import sys
@@ -13,9 +14,17 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
-from buswitness.cli.common import add_serial_options, duration_s, roles_arg, serial_from_args, size_bytes
+from buswitness.cli.common import (
+    add_serial_options,
+    check_port,
+    duration_s,
+    roles_arg,
+    serial_from_args,
+    size_bytes,
+)
 from buswitness.decode.timing import SerialFormat
-from buswitness.errors import UsageError
+from buswitness.errors import OutputError, UsageError
+from buswitness.textsafe import visible
 from rich.console import RenderableType
 
 if TYPE_CHECKING:
@@ -103,6 +112,10 @@ def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConf
         raise UsageError("record takes one or two ports (one per wire pair or direction)")
     if len(set(ports)) != len(ports):
         raise UsageError("the same port was given twice")
+    for port in ports:
+        check_port(port)
+    if args.output is not None and os.path.lexists(args.output):
+        raise OutputError(f"{args.output}: already exists; choose another output name (nothing was overwritten)")
     bus = serial_from_args(args, SerialFormat())
     assert bus is not None
     cfg = RecorderConfig(devices=list(ports), bus=bus, output=args.output, notes=args.note,
@@ -215,7 +228,7 @@ def summary(rec: Recorder) -> str:
             extra.append(f"{s.lost_reads} reads LOST (writer fell behind)")
         tail = f" ({'; '.join(extra)})" if extra else ""
         lines.append(f"  {s.name}: {s.bytes} bytes, {s.reads} reads{tail}")
-    return "\n".join(lines)
+    return visible("\n".join(lines), keep_newlines=True)  # port and file names come from outside
 
 
 def _hms(seconds: float) -> str:
@@ -231,11 +244,13 @@ def status_renderable(rec: Recorder, live_decoder: object | None = None) -> Rend
     elapsed = max(1e-9, (time.monotonic_ns() - rec.start_ns) / 1e9)
     grid = Table.grid(padding=(0, 2))
     part = rec.current_part
-    grid.add_row(Text(f"recording {_hms(elapsed)}", style="bold"), Text(f"file {part.name if part else '-'}"))
+    grid.add_row(Text(f"recording {_hms(elapsed)}", style="bold"),
+                 Text(visible(f"file {part.name if part else '-'}")))
     for s in rec.stats:
         state = "" if s.connected else "  [gone, retrying]"
         err = f"  last: {s.last_error}" if s.last_error else ""
-        grid.add_row(Text(s.name), Text(f"{s.bytes} B  {s.records} rec  {s.bytes / elapsed:.0f} B/s{state}{err}"))
+        grid.add_row(Text(visible(s.name)),
+                     Text(visible(f"{s.bytes} B  {s.records} rec  {s.bytes / elapsed:.0f} B/s{state}{err}")))
     figures = getattr(live_decoder, "figures", None)
     if figures is not None:
         for st in figures.rows():
@@ -243,7 +258,7 @@ def status_renderable(rec: Recorder, live_decoder: object | None = None) -> Rend
                          Text(f"{st.frames} frames  {st.crc_errors} CRC failures  {st.timeouts} timeouts"))
     reason = getattr(live_decoder, "disabled_reason", None)
     if reason:
-        grid.add_row(Text(""), Text(reason))
+        grid.add_row(Text(""), Text(visible(reason)))
     return grid
 
 
@@ -256,7 +271,7 @@ def run(args: argparse.Namespace) -> int:
     show_status = not args.quiet and sys.stderr.isatty()
 
     def message(text: str) -> None:
-        console.print(text, markup=False, highlight=False, soft_wrap=True)
+        console.print(visible(text, keep_newlines=True), markup=False, highlight=False, soft_wrap=True)
 
     rec = Recorder(cfg, on_message=message)
     figures = LiveFigures(rec)

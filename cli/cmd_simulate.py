@@ -5,10 +5,13 @@ from __future__ import annotations
 import argparse
 import os
 
-from buswitness.cli.common import baud_arg, duration_s, format_arg
+from buswitness.cli.common import baud_arg, duration_at_most, format_arg, number_arg
 from buswitness.errors import EXIT_OK, OutputError, UsageError
 
 HELP = "simulate a bus with faults and write a capture with its ground truth"
+
+#: Longest simulated time: a week of bus time takes several minutes and gigabytes (an 8 h night: ~15 s).
+MAX_DURATION_S = 7 * 86400.0
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -16,12 +19,13 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--scenario", default="pumpstation",
                    help="built-in scenario name (see --list) or a scenario file (.json or .toml); "
                         "default: pumpstation")
-    p.add_argument("--duration", type=duration_s, default=None,
+    p.add_argument("--duration", type=duration_at_most(MAX_DURATION_S, "a week of bus time"), default=None,
                    help="simulated time, e.g. 8h, 90m, 30s (default: the scenario's own)")
-    p.add_argument("--seed", type=int, default=1, help="random seed; the same seed gives the same capture")
+    p.add_argument("--seed", type=number_arg(0, 2**32 - 1, "--seed", integer=True), default=1, help="random seed; the same seed gives the same capture")
     p.add_argument("-o", "--output", help="capture file to write (.bwcap); refused if it exists")
     p.add_argument("--truth", help="also write the ground truth as JSON here; refused if it exists")
-    p.add_argument("--latency-ms", type=float, default=None, help="adapter latency timer in ms (e.g. 16 or 1)")
+    p.add_argument("--latency-ms", type=number_arg(0.001, 10_000, "--latency-ms"), default=None,
+                   help="adapter latency timer in ms (e.g. 16 or 1)")
     p.add_argument("--baud", type=baud_arg, default=None, help="override the bus baud rate only (default: the scenario's own)")
     p.add_argument("--format", dest="char_format", type=format_arg, default=None,
                    help="override the bus character format only: 8E1, 8N2, 8N1, ... (default: the scenario's own)")
@@ -30,6 +34,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from buswitness.fsutil import MAX_TEXT_INPUT_BYTES, check_input_file
     from buswitness.simulate import builtin_descriptions, load_scenario, simulate
 
     if args.list:
@@ -43,6 +48,8 @@ def run(args: argparse.Namespace) -> int:
             raise OutputError(f"{path}: already exists; choose another output name (nothing was overwritten)")
     if args.seed < 0:
         raise UsageError(f"--seed must be zero or more, not {args.seed}")
+    if os.path.lexists(args.scenario) and args.scenario not in builtin_descriptions():
+        check_input_file(args.scenario, "scenario file", MAX_TEXT_INPUT_BYTES)
     sc = load_scenario(args.scenario)
     res = simulate(sc, duration_s=args.duration, seed=args.seed, latency_ms=args.latency_ms, baud=args.baud,
                    bus_format=args.char_format, keep_tables=bool(args.truth))

@@ -16,6 +16,7 @@ from buswitness.cli.cmd_record import (
     summary,
 )
 from buswitness.cli.common import duration_s
+from buswitness.textsafe import visible
 from rich.console import RenderableType
 
 HELP = "live per-station figures in the terminal"
@@ -48,9 +49,9 @@ def station_table(figures: RollingStations, rec: Recorder | None = None, note: s
         for s in rec.stats:
             rate = f", {s.bytes / elapsed:.0f} B/s" if elapsed > 0 else ""
             state = " (gone, retrying)" if not s.connected else ""
-            lines.append(f"{s.name}: {s.bytes} B{rate}{state}")
+            lines.append(visible(f"{s.name}: {s.bytes} B{rate}{state}"))
     if note:
-        lines.append(note)
+        lines.append(visible(note))
     table = Table(title="stations (live)", caption="\n".join(lines) or None)
     for col in ("station", "requests", "answered", "timeouts", "exc.", "CRC err", "last ms", "p95 ms"):
         table.add_column(col, justify="right")
@@ -70,7 +71,7 @@ def run(args: argparse.Namespace) -> int:
     out = Console(soft_wrap=True) if live_view else Console(soft_wrap=True, width=120)
 
     def message(text: str) -> None:
-        console.print(text, markup=False, highlight=False, soft_wrap=True)
+        console.print(visible(text, keep_newlines=True), markup=False, highlight=False, soft_wrap=True)
 
     rec = Recorder(cfg, on_message=message)
     figures = LiveFigures(rec)

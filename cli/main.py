@@ -22,6 +22,7 @@ from buswitness.cli import (
     cmd_watch,
 )
 from buswitness.errors import EXIT_USAGE, BuswitnessError
+from buswitness.textsafe import visible
 
 VERBS = (cmd_demo, cmd_record, cmd_analyze, cmd_evidence, cmd_plan, cmd_simulate, cmd_detect, cmd_watch,
          cmd_inspect, cmd_dataset, cmd_trend)
@@ -59,7 +60,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.run(args) or 0)
     except BuswitnessError as exc:
-        print(f"buswitness {args.verb}: {exc}", file=sys.stderr)
+        print(f"buswitness {args.verb}: {visible(exc)}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print(f"buswitness {args.verb}: interrupted", file=sys.stderr)

@@ -215,6 +215,16 @@ def rewrite_header(src: Path, dst: Path, edit) -> None:
     (lambda h: h.update(port_roles={"0": "boss"}), "port_roles must map"),
     (lambda h: h.update(protocol="tcp"), "protocol 'tcp'"),
     (lambda h: h["serial"].update(baud=0), "baud rate 0"),
+    # Before: a start near the year 9999 passed the reader and overflowed a date in 'analyze' and 'evidence'.
+    (lambda h: h.update(start_utc="9999-12-31T23:59:59+00:00"), "start_utc '9999-12-31T23:59:59+00:00'"),
+    (lambda h: h.update(start_utc="0001-01-01T00:00:00"), "is not a time from the years 1970 to 2999"),
+    (lambda h: h.update(start_utc="yesterday"), "start_utc 'yesterday' is not a date"),
+    (lambda h: h.update(start_monotonic_ns=-1), "start_monotonic_ns -1"),
+    (lambda h: h.update(start_monotonic_ns=2**63), "start_monotonic_ns 9223372036854775808"),
+    (lambda h: h.update(part=10_000), "part 10000"),
+    (lambda h: h.update(format_version=7), "format_version 7"),
+    (lambda h: h.update(ports=[]), "ports must list 1 to 256 ports"),
+    (lambda h: h.update(port_roles={"\u0663": "master"}), "port_roles must map"),
 ])
 def test_crafted_header_with_valid_checksum_exits_3_naming_the_field(good, work, edit, said):
     rewrite_header(good[0], work / "crafted.bwcap", edit)

@@ -1,0 +1,70 @@
+"""The dashboard's content-security policy allows no evaluation of strings ('unsafe-eval') unless a chart
+needs plotly's WebGL layer, and the evidence report allows no script at all.
+
+Plotly's WebGL traces (``scattergl``) go through regl, which compiles its draw calls with the
+Function constructor (see docs/reliability.md, section 6); every other trace type the dashboard
+uses draws SVG without it. So the time series are SVG up to ``SVG_POINT_LIMIT`` points (a night of
+minutes for ten stations is about 19,000) and only larger pages allow 'unsafe-eval'.
+Source: the policy keywords are those of the W3C Content Security Policy Level 3 recommendation
+(from memory); every other check compares with what the test itself made.
+"""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+from buswitness.analysis import dashboard
+from buswitness.cli.main import main
+
+
+@pytest.fixture(scope="module")
+def capture(tmp_path_factory):
+    d = tmp_path_factory.mktemp("csp")
+    assert main(["simulate", "--duration", "3m", "-o", str(d / "s.bwcap")]) == 0
+    return d
+
+
+def policy(page: str) -> str:
+    m = re.search(r'<meta http-equiv="Content-Security-Policy" content="([^"]*)">', page)
+    assert m, "no policy"
+    return m.group(1)
+
+
+def test_a_dashboard_of_a_night_allows_no_eval(capture):
+    assert main(["analyze", str(capture / "s.bwcap"), "--no-progress", "--html", str(capture / "r.html")]) == 0
+    page = (capture / "r.html").read_text(encoding="utf-8")
+    csp = policy(page)
+    assert "'unsafe-eval'" not in csp
+    assert "default-src 'none'" in csp and "script-src 'unsafe-inline'" in csp
+    assert '"type":"scattergl"' not in page and '"type":"scatter"' in page
+
+
+def test_a_dashboard_too_large_for_svg_uses_webgl_and_says_so_in_its_policy(capture, monkeypatch):
+    monkeypatch.setattr(dashboard, "SVG_POINT_LIMIT", 0)
+    assert main(["analyze", str(capture / "s.bwcap"), "--no-progress", "--html", str(capture / "gl.html")]) == 0
+    page = (capture / "gl.html").read_text(encoding="utf-8")
+    assert "'unsafe-eval'" in policy(page) and '"type":"scattergl"' in page
+
+
+def test_the_evidence_report_allows_no_script(capture):
+    out = capture / "ev.html"
+    assert main(["evidence", str(capture / "s.bwcap"), "--station", "1", "--no-progress", "-o", str(out)]) == 0
+    page = out.read_text(encoding="utf-8")
+    csp = policy(page)
+    assert csp == "default-src 'none'; style-src 'unsafe-inline'"
+    assert "<script" not in page
+
+
+@pytest.mark.browser
+def test_the_dashboard_draws_every_chart_under_its_policy_without_a_violation(capture):
+    from browser import OfflinePage, require_chromium
+
+    require_chromium()
+    assert main(["analyze", str(capture / "s.bwcap"), "--no-progress", "--html", str(capture / "b.html")]) == 0
+    with OfflinePage(capture / "b.html") as (page, visit):
+        page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
+        for chart in ("chart-rt", "chart-avail", "chart-dist", "chart-timeline", "chart-util"):
+            assert page.evaluate(f"document.querySelectorAll('#{chart} .main-svg').length") > 0, chart
+    assert visit.errors == [], visit.errors  # a policy violation is a console error in Chromium
+    assert not [m for m in visit.console if "Content Security Policy" in m]
