@@ -40,6 +40,7 @@ class AnalysisOptions:
     progress: bool | None = None  #: None: a progress bar when stderr is a terminal
     block_rows: int = BLOCK_ROWS
     port_roles: dict[int, str] | None = None  #: what each port hears; None: as the capture header says
+    protocol: str | None = None  #: field protocol (buswitness.protocols); None: as the capture header says
 
 
 def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -229,7 +230,7 @@ def analyze(source, options: AnalysisOptions | None = None) -> AnalysisResult:
     options = options or AnalysisOptions()
     delivery = assess_delivery(source)
     header, decoding = delivery_headers(source.header, delivery)
-    cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles)
+    cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)
     show = sys.stderr.isatty() if options.progress is None else options.progress
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from buswitness.cli.common import add_input_options, roles_arg, serial_halves
+from buswitness.cli.common import add_input_options, add_protocol_option, roles_arg, serial_halves
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
 
@@ -42,6 +42,7 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
                    help="what each port of the capture hears, in port order (master, slaves or both), when "
                         "the recording did not say; e.g. master,slaves for a four-wire bus")
     add_input_options(p)
+    add_protocol_option(p)
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -65,7 +66,8 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
     source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
-                              progress=False if args.no_progress else None, port_roles=roles)
+                              progress=False if args.no_progress else None, port_roles=roles,
+                              protocol=getattr(args, "protocol", None))
     result = analyze(source, options)
     damage = result.damage
     if result.bus.frames == 0 and damage is not None and not damage.clean:

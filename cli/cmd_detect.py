@@ -6,9 +6,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from buswitness.capture import detect
+from buswitness import detect
 from buswitness.cli.common import baud_arg, format_arg
-from buswitness.decode.timing import COMMON_BAUD_RATES
+from buswitness.serial import COMMON_BAUD_RATES
 
 HELP = "find a bus's baud rate and character format from its traffic"
 

@@ -18,8 +18,8 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, Record, RecordBatch
-from buswitness.decode.timing import COMMON_BAUD_RATES, SerialFormat
+from buswitness.records import FLAG_BREAK, FLAG_LINE_ERROR, Record, RecordBatch
+from buswitness.serial import COMMON_BAUD_RATES, SerialFormat
 
 #: Formats tried by default, most common on Modbus RTU first (MSL V1.02 §2.5.1: even parity required,
 #: no parity then needs two stop bits).
