@@ -17,9 +17,10 @@ import numpy as np
 import pandas as pd
 from buswitness.analysis.exports import TableExporter, utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
+from buswitness.analysis.finding import Finding, ranked
 from buswitness.analysis.result import AnalysisResult, build_result
 from buswitness.analysis.stationmap import StationMap
-from buswitness.analysis.timeout import given_timeout, infer_timeout
+from buswitness.analysis.timeout import TimeoutEstimate, given_timeout, infer_timeout
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
 
 #: Rows gathered before a block is processed: large enough that per-block overhead is small.
@@ -97,6 +98,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     options = options or AnalysisOptions()
     smap = options.station_map or StationMap()
     char_ns = header.serial.char_time_s * 1e9
+    proto = _protocol(header, options)
+    extra = proto.new_figures(header.serial) if hasattr(proto, "new_figures") else None
     acc: Accumulator | None = None
     exporter: TableExporter | None = None
     pending: list = []
@@ -121,6 +124,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         acc.add_frames(frames)
         acc.add_transactions(tx)
         acc.add_events(events)
+        if extra is not None:
+            extra.add(frames, tx, events)
         if exporter is not None:
             exporter.write(frames, tx, events)
 
@@ -142,9 +147,36 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         if exporter is not None:
             exporter.abort()
         raise
-    timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on, acc.in_time)
+    if options.timeout_ms:
+        timeout = given_timeout(options.timeout_ms)
+    elif getattr(proto, "answers_judged_on_the_wire", False):
+        timeout = TimeoutEstimate(None, "not used", explanation=(
+            f"{proto.label}: only the token holder asks and it waits for its answer, so every answer on the "
+            f"wire is one the master accepted (an unanswered request shows as a retry or the next request)"))
+    else:
+        timeout = infer_timeout(acc.move_on, acc.in_time)
     acc.judge(timeout.timeout_ms)
-    return build_result(header, paths or [], damage, acc, smap, timeout)
+    result = build_result(header, paths or [], damage, acc, smap, timeout)
+    result.protocol = proto.name
+    if extra is not None:
+        result.protocol_figures = {**extra.result(), "findings": extra.findings()}
+    result.findings = ranked(result.findings + protocol_findings(result))
+    return result
+
+
+def protocol_findings(result: AnalysisResult) -> list[Finding]:
+    """The protocol's own findings (decode/protocols/<name>/figures.py) as findings of the report."""
+    label = "slave" if result.protocol == "profibus-dp" else "station"
+    return [Finding(rule=f["kind"].replace("_", "-"), severity="warning", statement=f["text"], station=f["station"],
+                    station_label=f"{label} {f['station']}", evidence={"protocol": result.protocol})
+            for f in result.protocol_figures.get("findings", [])]
+
+
+def _protocol(header: CaptureHeader, options: AnalysisOptions):
+    """The protocol object the options or the capture header name (buswitness.protocols)."""
+    from buswitness.decode.protocols import get
+    from buswitness.protocols import DEFAULT
+    return get(options.protocol or str(header.extra.get("protocol", DEFAULT)))
 
 
 def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
@@ -260,6 +292,6 @@ def evaluate_findings(result: AnalysisResult) -> list:
     except ModuleNotFoundError as exc:
         if exc.name != "buswitness.analysis.findings":
             raise
-        return []
+        return protocol_findings(result)
     from buswitness.analysis.finding import ranked
-    return ranked(list(evaluate(result)))
+    return ranked(list(evaluate(result)) + protocol_findings(result))

@@ -113,6 +113,9 @@ class AnalysisResult:
     delivery: list[dict] = field(default_factory=list)
     tool_version: str = __version__
     analysed_utc: str = ""
+    #: the field protocol (buswitness.protocols) and its own figures (decode/protocols/<name>/figures.py)
+    protocol: str = "modbus-rtu"
+    protocol_figures: dict = field(default_factory=dict)
 
     @property
     def t0_ns(self) -> int:

@@ -9,6 +9,7 @@ from __future__ import annotations
 from buswitness.decode.events import Frame
 from buswitness.decode.protocols.base import DamageText, LineTiming
 from buswitness.decode.protocols.profibus_dp.fdl import SC, SD4, START_DELIMITERS, parse
+from buswitness.decode.protocols.profibus_dp.figures import ProfibusFigures
 from buswitness.decode.protocols.profibus_dp.pairing import FdlPairing
 from buswitness.decode.protocols.profibus_dp.scanner import FdlScanner, explained_fraction
 from buswitness.serial import SerialFormat
@@ -52,6 +53,13 @@ class ProfibusDp:
     marks_bytes = False
     station_label = "slave"
     bulk = None
+    #: Only the token holder asks and it waits for its answer: what the wire shows is what the master
+    #: accepted, so answers are not judged against an inferred timeout.
+    answers_judged_on_the_wire = True
+
+    @staticmethod
+    def new_figures(fmt: SerialFormat, target_rotation_ms: float | None = None) -> ProfibusFigures:
+        return ProfibusFigures(1e9 / fmt.baud, target_rotation_ms)
 
     @staticmethod
     def timing(fmt: SerialFormat) -> LineTiming:
