@@ -23,6 +23,7 @@ from buswitness.decode.protocols.base import EITHER, JUNK, REQUEST, RESPONSE, Fi
 from buswitness.decode.tables import (
     Collector,
     DecodeOutput,
+    add_neutral_columns,
     events_table,
     frames_table,
     transactions_table,
@@ -453,6 +454,9 @@ class Decoder:
         Runs of flag-free records on a single RTU port go through the bulk path (columns all
         the way); everything else goes record by record. Both give the same results.
         """
+        return add_neutral_columns(self._feed_batch(batch), self.proto)
+
+    def _feed_batch(self, batch: RecordBatch) -> DecodeOutput:
         col = Collector()
         count = len(batch)
         if count == 0:
@@ -565,7 +569,7 @@ class Decoder:
 
     def flush(self) -> DecodeOutput:
         """End of input, as tables."""
-        return DecodeOutput.from_objects(self.flush_events())
+        return add_neutral_columns(DecodeOutput.from_objects(self.flush_events()), self.proto)
 
     # -- internals ----------------------------------------------------------------------------
     def _port(self, port: int) -> _Port:

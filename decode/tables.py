@@ -13,6 +13,15 @@ import numpy as np
 import pandas as pd
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
 
+#: Version of the table layout (docs/tables.md). 2: protocol-neutral columns added (protocol, source,
+#: destination, service, result_code); every column of version 1 is unchanged.
+SCHEMA_VERSION = 2
+
+#: Protocol-neutral columns each table gains after its version-1 columns (docs/tables.md).
+NEUTRAL_FRAME_COLUMNS = ("protocol", "source", "destination", "service")
+NEUTRAL_TRANSACTION_COLUMNS = ("protocol", "source", "destination", "service", "result_code")
+NEUTRAL_EVENT_COLUMNS = ("protocol",)
+
 FRAME_COLUMNS = ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port", "address", "function", "length",
                  "direction", "raw")
 TRANSACTION_COLUMNS = ("t_request_end_ns", "t_response_start_ns", "station", "function", "outcome",
@@ -158,3 +167,21 @@ class Collector:
         self._close_txns()
         return DecodeOutput(frames_frame(self.frame_chunks), transactions_frame(self.txn_chunks),
                             events_frame(self.events))
+
+
+def add_neutral_columns(out: DecodeOutput, proto) -> DecodeOutput:
+    """Append the protocol-neutral columns (``docs/tables.md``, schema version 2) from the protocol's hooks.
+
+    ``proto.frame_fields_columns(frames)`` and ``proto.transaction_fields_columns(transactions)`` give
+    source, destination, service (and the transactions' result code) for their rows.
+    """
+    name = pd.Categorical.from_codes(np.zeros(0, np.int8), categories=[proto.name])
+    for table, hook in ((out.frames, getattr(proto, "frame_fields_columns", None)),
+                        (out.transactions, getattr(proto, "transaction_fields_columns", None)),
+                        (out.events, None)):
+        n = len(table)
+        table["protocol"] = pd.Categorical.from_codes(np.zeros(n, np.int8), dtype=name.dtype)
+        if hook is not None:
+            for col, values in hook(table).items():
+                table[col] = values
+    return out

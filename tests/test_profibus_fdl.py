@@ -175,3 +175,50 @@ def test_decoder_pairs_profibus_requests_and_answers():
     assert got == [(5, "ok", False, 0), (6, "timeout", False, 0), (6, "ok", True, 0), (7, "ok", False, 0),
                    (127, "broadcast", False, 0), (9, "exception", False, 3)]
     assert all(x.response_ms >= 0 for x in txns if x.outcome == "ok")
+
+
+def test_tables_carry_the_protocol_neutral_columns():
+    """Schema version 2 (docs/tables.md): protocol, source, destination, service, result code."""
+    from buswitness.records import Record, RecordBatch
+    fmt = SerialFormat.parse("8E1", 1_500_000)
+    c = fmt.char_time_s * 1e9
+    wire = [fdl.build(fdl.SD2, 5, 2, 0x40 | 0x0D | 0x10, b"\x01", dsap=61, ssap=62),
+            fdl.build(fdl.SD1, 2, 5, 0x02),  # no resource
+            fdl.build(fdl.SD4, 3, 2)]
+    t, recs = 1_000_000, []
+    for raw in wire:
+        t += int(len(raw) * c) + 200_000
+        recs.append(Record(0, t, raw))
+    dec = Decoder(DecoderConfig(serial=fmt, protocol="profibus-dp", latency_ms={0: 0.1}))
+    out = [dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()]
+    frames = [o.frames for o in out if len(o.frames)][0]
+    tx = [o.transactions for o in out if len(o.transactions)][0]
+    assert frames["protocol"].astype(str).tolist() == ["profibus-dp"] * 3
+    assert frames["source"].tolist() == [2, 5, 2] and frames["destination"].tolist() == [5, 2, 3]
+    assert frames["service"].tolist() == ["SRD_high:set_param", "no_resource", "token"]
+    row = tx.iloc[0]
+    assert (row.source, row.destination, row.service, row.result_code, row.outcome) == \
+        (2, 5, "SRD_high:set_param", 2, "exception")
+
+
+def test_modbus_tables_carry_the_same_neutral_columns():
+    """Modbus RTU: the master has no address (-1); service is the function's name (MAP V1.1b3 section 6.3,
+    FC03 "Read Holding Registers"); the result code is the exception code."""
+    from buswitness.decode import append_crc
+    from buswitness.records import Record, RecordBatch
+    fmt = SerialFormat.parse("8E1", 19200)
+    c = fmt.char_time_s * 1e9
+    wire = [append_crc(bytes([7, 3, 0, 0, 0, 1])), append_crc(bytes([7, 0x83, 2]))]
+    t, recs = 1_000_000, []
+    for raw in wire:
+        t += int(len(raw) * c) + 5_000_000
+        recs.append(Record(0, t, raw))
+    dec = Decoder(DecoderConfig(serial=fmt, latency_ms={0: 0.1}))
+    out = [dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()]
+    frames = [o.frames for o in out if len(o.frames)][0]
+    tx = [o.transactions for o in out if len(o.transactions)][0]
+    assert frames["source"].tolist() == [-1, 7] and frames["destination"].tolist() == [7, -1]
+    assert frames["protocol"].astype(str).tolist() == ["modbus-rtu"] * 2
+    row = tx.iloc[0]
+    assert (row.source, row.destination, row.result_code, row.exception_code) == (-1, 7, 2, 2)
+    assert "holding" in str(row.service).lower()

@@ -84,3 +84,30 @@ def test_cli_simulate_and_analyze_with_protocol_option(tmp_path):
         assert f"station {address}: {want['requests']} requests, {want['answered']} answered" in r.stdout
     r = run_cli("analyze", "p.bwcap", "--protocol", "fieldbus-x", "--no-progress")
     assert r.returncode == 2 and "fieldbus-x" in r.stderr
+
+
+def test_detect_checks_a_profibus_capture_with_its_own_framing():
+    from pathlib import Path
+
+    from buswitness import detect
+    path = Path(__file__).resolve().parent.parent / "sample_captures" / "mixing-line-profibus-12s.bwcap"
+    src = open_capture(path)
+    assert src.header.extra["protocol"] == "profibus-dp"
+    as_profibus = detect.check_capture(src.header.serial, src.iter_batches(), protocol="profibus-dp")
+    assert as_profibus.looks_right and as_profibus.score.explained == 1.0
+    as_modbus = detect.check_capture(src.header.serial, open_capture(path).iter_batches(), protocol="modbus-rtu")
+    assert as_modbus.score.explained < 0.5
+
+
+def test_record_stores_the_protocol_in_the_header():
+    import argparse
+
+    from buswitness.cli import cmd_record
+    parser = argparse.ArgumentParser()
+    sub = parser.add_subparsers()
+    cmd_record.add_parser(sub)
+    args = parser.parse_args(["record", "/dev/null", "-o", "x.bwcap", "--protocol", "profibus-dp", "--baud", "1500000"])
+    cfg = cmd_record.config_from_args(args, args.ports)
+    assert cfg.extra["protocol"] == "profibus-dp"
+    old = parser.parse_args(["record", "/dev/null", "-o", "x.bwcap", "--protocol", "rtu"])
+    assert cmd_record.config_from_args(old, old.ports).extra["protocol"] == "modbus-rtu"

@@ -5,7 +5,12 @@ from __future__ import annotations
 from buswitness.decode.ascii import AsciiScanner, decode_ascii_frame
 from buswitness.decode.pairing import Pairing
 from buswitness.decode.protocols.base import DamageText, LineTiming, NoMarks
-from buswitness.decode.protocols.modbus_rtu import describe_damage, describe_idle
+from buswitness.decode.protocols.modbus_rtu import (
+    describe_damage,
+    describe_idle,
+    frame_fields_columns,
+    transaction_fields_columns,
+)
 from buswitness.decode.timing import t15_s, t35_s
 from buswitness.serial import SerialFormat
 
@@ -45,6 +50,8 @@ class ModbusAscii:
         return describe_damage(raw, at_boundary)
 
     describe_idle = staticmethod(describe_idle)
+    frame_fields_columns = staticmethod(frame_fields_columns)
+    transaction_fields_columns = staticmethod(transaction_fields_columns)
 
     @staticmethod
     def frame_fields(raw: bytes) -> tuple[int, int, int]:

@@ -8,8 +8,10 @@ to the decoder core.
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 from buswitness.decode.bulk import bulk_spans
-from buswitness.decode.framer import RegionScanner
+from buswitness.decode.framer import RegionScanner, explained_fraction, split_frames
+from buswitness.decode.functions import function_name
 from buswitness.decode.lengths import EITHER, MIN_FRAME, PUBLIC_CODES, candidate_lengths
 from buswitness.decode.pairing import Pairing
 from buswitness.decode.protocols.base import DamageText, LineTiming
@@ -72,6 +74,26 @@ class RtuBulk:
         sc.known_addresses.update(np.unique(addrs).tolist())
 
 
+_SERVICE = pd.CategoricalDtype([function_name(c) for c in range(256)])
+
+
+def frame_fields_columns(frames: pd.DataFrame) -> dict:
+    """Source and destination from the direction (the master has no address: -1), service from the function."""
+    address = frames["address"].to_numpy().astype(np.int16)
+    direction = frames["direction"].astype(str).to_numpy() if len(frames) else np.zeros(0, str)
+    req, rsp = direction == "request", direction == "response"
+    return {"source": np.where(rsp, address, -1).astype(np.int16),
+            "destination": np.where(req, address, -1).astype(np.int16),
+            "service": pd.Categorical.from_codes(frames["function"].to_numpy().astype(np.int16), dtype=_SERVICE)}
+
+
+def transaction_fields_columns(tx: pd.DataFrame) -> dict:
+    """The master (-1) asks the station; the service is the function, the result code the exception code."""
+    return {"source": np.full(len(tx), -1, np.int16), "destination": tx["station"].to_numpy().astype(np.int16),
+            "service": pd.Categorical.from_codes(tx["function"].to_numpy().astype(np.int16), dtype=_SERVICE),
+            "result_code": tx["exception_code"].to_numpy().astype(np.int16)}
+
+
 class ModbusRtu:
     name = "modbus-rtu"
     label = "Modbus RTU"
@@ -99,6 +121,10 @@ class ModbusRtu:
 
     describe_damage = staticmethod(describe_damage)
     describe_idle = staticmethod(describe_idle)
+    frame_fields_columns = staticmethod(frame_fields_columns)
+    transaction_fields_columns = staticmethod(transaction_fields_columns)
+    split = staticmethod(split_frames)
+    explained_fraction = staticmethod(explained_fraction)
 
     @staticmethod
     def frame_fields(raw: bytes) -> tuple[int, int, int]:

@@ -6,12 +6,14 @@ delimiters, lengths and FCS, with resync), :mod:`.pairing` (requests and answers
 
 from __future__ import annotations
 
+import numpy as np
+import pandas as pd
 from buswitness.decode.events import Frame
 from buswitness.decode.protocols.base import DamageText, LineTiming
 from buswitness.decode.protocols.profibus_dp.fdl import SC, SD4, START_DELIMITERS, parse
 from buswitness.decode.protocols.profibus_dp.figures import ProfibusFigures
 from buswitness.decode.protocols.profibus_dp.pairing import FdlPairing
-from buswitness.decode.protocols.profibus_dp.scanner import FdlScanner, explained_fraction
+from buswitness.decode.protocols.profibus_dp.scanner import FdlScanner, explained_fraction, split_telegrams
 from buswitness.serial import SerialFormat
 
 #: Synchronisation time: the idle the line holds before every request, 33 bit times (from memory).
@@ -56,6 +58,10 @@ class ProfibusDp:
     #: Only the token holder asks and it waits for its answer: what the wire shows is what the master
     #: accepted, so answers are not judged against an inferred timeout.
     answers_judged_on_the_wire = True
+    #: Rates ``detect`` tries (from memory: the DP rates from 9.6 kbit/s; adapters reach about 3 Mbit/s).
+    baud_rates = (9600, 19200, 45450, 93750, 187500, 500000, 1500000, 3000000)
+    formats = ("8E1",)
+    split = staticmethod(split_telegrams)
 
     @staticmethod
     def new_figures(fmt: SerialFormat, target_rotation_ms: float | None = None) -> ProfibusFigures:
@@ -104,6 +110,24 @@ class ProfibusDp:
         return t.sa, t.da, t.fc
 
     explained_fraction = staticmethod(explained_fraction)
+
+    @staticmethod
+    def frame_fields_columns(frames: pd.DataFrame) -> dict:
+        tels = [parse(r) for r in frames["raw"]]
+        return {"source": np.array([t.sa for t in tels], np.int16),
+                "destination": np.array([t.da for t in tels], np.int16),
+                "service": [t.service for t in tels]}
+
+    @staticmethod
+    def transaction_fields_columns(tx: pd.DataFrame) -> dict:
+        reqs = [parse(r) for r in tx["request_raw"]]
+        result = []
+        for raw in tx["response_raw"]:
+            t = parse(raw) if raw else None
+            result.append(-1 if t is None else 0 if t.kind == "ack" else t.function)
+        return {"source": np.array([t.sa for t in reqs], np.int16),
+                "destination": np.array([t.da for t in reqs], np.int16),
+                "service": [t.service for t in reqs], "result_code": np.array(result, np.int16)}
 
 
 PROTOCOL = ProfibusDp()
