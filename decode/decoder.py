@@ -23,7 +23,6 @@ from buswitness.decode.protocols.base import EITHER, JUNK, REQUEST, RESPONSE, Fi
 from buswitness.decode.tables import (
     Collector,
     DecodeOutput,
-    add_neutral_columns,
     events_table,
     frames_table,
     transactions_table,
@@ -454,13 +453,10 @@ class Decoder:
         Runs of flag-free records on a single RTU port go through the bulk path (columns all
         the way); everything else goes record by record. Both give the same results.
         """
-        return add_neutral_columns(self._feed_batch(batch), self.proto)
-
-    def _feed_batch(self, batch: RecordBatch) -> DecodeOutput:
         col = Collector()
         count = len(batch)
         if count == 0:
-            return col.output()
+            return col.output(self.proto)
         payload = batch.payload.tobytes()
         offsets = batch.offsets
         lengths = batch.length
@@ -475,9 +471,9 @@ class Decoder:
             out: list = []
             self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
             col.add_objects(out)
-            return col.output()
+            return col.output(self.proto)
         self._port_records(np.arange(count), batch, payload, offsets, plain, col)
-        return col.output()
+        return col.output(self.proto)
 
     def _port_records(self, idx: np.ndarray, batch: RecordBatch, payload: bytes, offsets: np.ndarray,
                       plain: np.ndarray, col: Collector | None) -> None:
@@ -569,7 +565,7 @@ class Decoder:
 
     def flush(self) -> DecodeOutput:
         """End of input, as tables."""
-        return add_neutral_columns(DecodeOutput.from_objects(self.flush_events()), self.proto)
+        return DecodeOutput.from_objects(self.flush_events(), self.proto)
 
     # -- internals ----------------------------------------------------------------------------
     def _port(self, port: int) -> _Port:

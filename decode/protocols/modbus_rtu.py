@@ -79,19 +79,21 @@ _SERVICE = pd.CategoricalDtype([function_name(c) for c in range(256)])
 
 def frame_fields_columns(frames: pd.DataFrame) -> dict:
     """Source and destination from the direction (the master has no address: -1), service from the function."""
-    address = frames["address"].to_numpy().astype(np.int16)
-    direction = frames["direction"].astype(str).to_numpy() if len(frames) else np.zeros(0, str)
-    req, rsp = direction == "request", direction == "response"
+    address = np.asarray(frames["address"]).astype(np.int16)
+    direction = pd.Categorical(frames["direction"], categories=["request", "response", "unknown"])
+    codes = direction.codes
+    req, rsp = codes == 0, codes == 1
     return {"source": np.where(rsp, address, -1).astype(np.int16),
             "destination": np.where(req, address, -1).astype(np.int16),
-            "service": pd.Categorical.from_codes(frames["function"].to_numpy().astype(np.int16), dtype=_SERVICE)}
+            "service": pd.Categorical.from_codes(np.asarray(frames["function"]).astype(np.int16), dtype=_SERVICE, validate=False)}
 
 
 def transaction_fields_columns(tx: pd.DataFrame) -> dict:
     """The master (-1) asks the station; the service is the function, the result code the exception code."""
-    return {"source": np.full(len(tx), -1, np.int16), "destination": tx["station"].to_numpy().astype(np.int16),
-            "service": pd.Categorical.from_codes(tx["function"].to_numpy().astype(np.int16), dtype=_SERVICE),
-            "result_code": tx["exception_code"].to_numpy().astype(np.int16)}
+    station = np.asarray(tx["station"]).astype(np.int16)
+    return {"source": np.full(station.shape[0], -1, np.int16), "destination": station,
+            "service": pd.Categorical.from_codes(np.asarray(tx["function"]).astype(np.int16), dtype=_SERVICE, validate=False),
+            "result_code": np.asarray(tx["exception_code"]).astype(np.int16)}
 
 
 class ModbusRtu:
