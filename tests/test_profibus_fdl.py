@@ -222,3 +222,34 @@ def test_modbus_tables_carry_the_same_neutral_columns():
     row = tx.iloc[0]
     assert (row.source, row.destination, row.result_code, row.exception_code) == (-1, 7, 2, 2)
     assert "holding" in str(row.service).lower()
+
+
+def test_figures_flag_two_stations_on_one_address_and_rotation_over_target():
+    """Hand-built traffic: slave 5 answers data exchange in two shapes (two devices set to address 5); the
+    token goes 2 -> 3 -> 2 with one slow round."""
+    from buswitness.decode.protocols import get
+    from buswitness.records import Record, RecordBatch
+    fmt = SerialFormat.parse("8E1", 187500)
+    c = fmt.char_time_s * 1e9
+    dec = Decoder(DecoderConfig(serial=fmt, protocol="profibus-dp", latency_ms={0: 0.1}))
+    t, outs = 1_000_000, []
+
+    def send(raw: bytes, pause_us: float) -> None:
+        nonlocal t
+        t += int(len(raw) * c + pause_us * 1000)
+        outs.append(dec.feed_batch(RecordBatch.from_records([Record(0, t, raw)])))
+
+    for k in range(6):
+        send(fdl.build(fdl.SD2, 5, 2, 0x40 | 0x0D | 0x10 | (0x20 * (k % 2)), b"\x00\x01"), 300)
+        send(fdl.build(fdl.SD2, 2, 5, 0x08, b"\x11" if k % 2 else b"\x11\x22\x33"), 300)
+        send(fdl.build(fdl.SD4, 3, 2), 300)
+        send(fdl.build(fdl.SD4, 2, 3), 20_000 if k == 3 else 300)
+    outs.append(dec.flush())
+    figures = get("profibus-dp").new_figures(fmt, target_rotation_ms=10.0)
+    for o in outs:
+        figures.add(o.frames, o.transactions, o.events)
+    res = figures.result()
+    assert res["masters"][2]["tokens"] == 6 and res["masters"][3]["tokens"] == 6
+    assert res["masters"][2]["over_target"] == 1
+    kinds = {(f["kind"], f["station"]) for f in figures.findings()}
+    assert ("two_on_one_address", 5) in kinds and ("rotation_over_target", 2) in kinds
