@@ -17,6 +17,7 @@ from buswitness.analysis.histogram import FINE, count_above
 from buswitness.analysis.render import environment, stylesheet
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.analysis.summary import UNTIMED_NOTE
+from buswitness.decode.timing import t35_s
 from buswitness.errors import UsageError
 from buswitness.fsutil import atomic_write
 from markupsafe import Markup
@@ -114,7 +115,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         "late": result.late_answers(address), "hist": _histogram_svg(result, address), "tail": _tail(result, s),
         "failures": result.failure_rows(address),
         "damage": result.damage, "char_ms": result.header.serial.char_time_s * 1000.0,
-        "t35_ms": result.header.serial.t35_s * 1000.0, "resolution_pct": 100 * FINE.relative_resolution,
+        "t35_ms": t35_s(result.header.serial) * 1000.0, "resolution_pct": 100 * FINE.relative_resolution,
         "span": {"start": result.utc_at(result.span_s[0]), "end": result.utc_at(result.span_s[1]),
                  "hours": result.bus.duration_s / 3600.0},
     }

@@ -17,10 +17,11 @@ import numpy as np
 import pandas as pd
 from buswitness.analysis.exports import utc_anchor_of
 from buswitness.analysis.figures import NS_PER_MIN, Accumulator
+from buswitness.analysis.finding import Finding, ranked
 from buswitness.analysis.result import AnalysisResult, build_result
 from buswitness.analysis.sinks import SinkContext
 from buswitness.analysis.stationmap import StationMap
-from buswitness.analysis.timeout import given_timeout, infer_timeout
+from buswitness.analysis.timeout import TimeoutEstimate, given_timeout, infer_timeout
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
 
 #: Rows gathered before a block is processed: large enough that per-block overhead is small.
@@ -41,6 +42,7 @@ class AnalysisOptions:
     progress: bool | None = None  #: kept for callers; the bar is the command line's (``analyze(progress=...)``)
     block_rows: int = BLOCK_ROWS
     port_roles: dict[int, str] | None = None  #: what each port hears; None: as the capture header says
+    protocol: str | None = None  #: field protocol (buswitness.protocols); None: as the capture header says
 
 
 def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -124,6 +126,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     options = options or AnalysisOptions()
     smap = options.station_map or StationMap()
     char_ns = header.serial.char_time_s * 1e9
+    proto = _protocol(header, options)
+    extra = proto.new_figures(header.serial) if hasattr(proto, "new_figures") else None
     acc: Accumulator | None = None
     pending: list = []
     rows = 0
@@ -152,6 +156,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         acc.add_frames(frames)
         acc.add_transactions(tx)
         acc.add_events(events)
+        if extra is not None:
+            extra.add(frames, tx, events)
         for sink in sinks:
             sink.write(frames, tx, events)
 
@@ -164,9 +170,18 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         process()
         if acc is None:
             acc = start(int(header.start_monotonic_ns or 0), 0)
-        timeout = given_timeout(options.timeout_ms) if options.timeout_ms else infer_timeout(acc.move_on,
-                                                                                              acc.in_time)
+        if options.timeout_ms:
+            timeout = given_timeout(options.timeout_ms)
+        elif getattr(proto, "answers_judged_on_the_wire", False):
+            timeout = TimeoutEstimate(None, "not used", explanation=(
+                f"{proto.label}: only the token holder asks and it waits for its answer, so every answer on the "
+                f"wire is one the master accepted (an unanswered request shows as a retry or the next request)"))
+        else:
+            timeout = infer_timeout(acc.move_on, acc.in_time)
         result = build_result(header, paths or [], damage, acc.figures(copy=False), smap, timeout)
+        result.protocol = proto.name
+        if extra is not None:
+            result.protocol_figures = {**extra.result(), "findings": extra.findings()}
         result.sinks = sinks
         if close_sinks and sinks:
             result.findings = evaluate_findings(result)
@@ -190,6 +205,21 @@ def abort(sinks: Sequence) -> None:
     for sink in sinks:
         with contextlib.suppress(Exception):
             sink.abort()
+
+
+def protocol_findings(result: AnalysisResult) -> list[Finding]:
+    """The protocol's own findings (decode/protocols/<name>/figures.py) as findings of the report."""
+    label = "slave" if result.protocol == "profibus-dp" else "station"
+    return [Finding(rule=f["kind"].replace("_", "-"), severity="warning", statement=f["text"], station=f["station"],
+                    station_label=f"{label} {f['station']}", evidence={"protocol": result.protocol})
+            for f in result.protocol_figures.get("findings", [])]
+
+
+def _protocol(header: CaptureHeader, options: AnalysisOptions):
+    """The protocol object the options or the capture header name (buswitness.protocols)."""
+    from buswitness.decode.protocols import get
+    from buswitness.protocols import DEFAULT
+    return get(options.protocol or str(header.extra.get("protocol", DEFAULT)))
 
 
 def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
@@ -281,7 +311,7 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     options = options or AnalysisOptions()
     delivery = assess_delivery(source)
     header, decoding = delivery_headers(source.header, delivery)
-    cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles)
+    cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)
     paths = list(getattr(source, "paths", []))
     total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None
     done = 0
@@ -314,6 +344,5 @@ def evaluate_findings(result: AnalysisResult) -> list:
     except ModuleNotFoundError as exc:
         if exc.name != "buswitness.analysis.findings":
             raise
-        return []
-    from buswitness.analysis.finding import ranked
-    return ranked(list(evaluate(result)))
+        return protocol_findings(result)
+    return ranked(list(evaluate(result)) + protocol_findings(result))

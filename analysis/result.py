@@ -116,6 +116,9 @@ class AnalysisResult:
     delivery: list[dict] = field(default_factory=list)
     tool_version: str = __version__
     analysed_utc: str = ""
+    #: the field protocol (buswitness.protocols) and its own figures (decode/protocols/<name>/figures.py)
+    protocol: str = "modbus-rtu"
+    protocol_figures: dict = field(default_factory=dict)
     unjudged: Figures | None = None  #: the same before judging: what ``merge_results`` adds together
     headers: list = field(default_factory=list)  #: every capture's header, when merged from several
     sinks: list = field(default_factory=list, repr=False)  #: the outputs analyze fed (analysis/sinks)

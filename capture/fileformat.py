@@ -27,7 +27,7 @@ import struct
 import time
 import uuid
 import zlib
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -35,8 +35,23 @@ from typing import BinaryIO
 
 import numpy as np
 from buswitness import __version__
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, NotACaptureError, OutputError, UnsupportedVersionError
+from buswitness.protocols import DEFAULT as DEFAULT_PROTOCOL
+from buswitness.protocols import canonical as canonical_protocol
+from buswitness.records import (  # noqa: F401  (re-exported: the record batch lives on the ground floor)
+    FLAG_BREAK,
+    FLAG_DISCONNECTED,
+    FLAG_LINE_ERROR,
+    FLAG_LOST,
+    FLAG_NAMES,
+    FLAG_PAUSED,
+    FLAG_REOPENED,
+    FLAG_UNTIMED,
+    Record,
+    RecordBatch,
+    flag_names,
+)
+from buswitness.serial import SerialFormat
 
 MAGIC = b"\x9bBWCAP\r\n"
 FORMAT_VERSION = 1
@@ -64,31 +79,6 @@ MAX_RECORD_NS = 1 << 62
 MAX_SPAN_NS = 366 * 86400 * 10**9
 MAX_PART = 9999
 MAX_MONOTONIC_NS = (1 << 63) - 1
-
-# Record flags. A record may carry flags and no bytes (a marker).
-FLAG_LINE_ERROR = 0x01   #: the bytes arrived marked bad by the UART (parity or framing error)
-FLAG_BREAK = 0x02        #: a break condition (line held low) was received here
-FLAG_LOST = 0x04         #: bytes were lost before this record (overrun, queue overflow)
-FLAG_REOPENED = 0x08     #: the port was reopened after a disconnect; there is a gap before this record
-FLAG_PAUSED = 0x10       #: capture was paused before this record
-FLAG_DISCONNECTED = 0x20  #: the port went away at this time
-FLAG_UNTIMED = 0x40      #: the timestamp is synthetic (imported raw bytes); only byte order is real
-
-FLAG_NAMES = {
-    FLAG_LINE_ERROR: "line-error",
-    FLAG_BREAK: "break",
-    FLAG_LOST: "bytes-lost",
-    FLAG_REOPENED: "reopened",
-    FLAG_PAUSED: "paused",
-    FLAG_DISCONNECTED: "disconnected",
-    FLAG_UNTIMED: "untimed",
-}
-
-
-def flag_names(flags: int) -> list[str]:
-    """Human names of the bits set in ``flags``."""
-    return [name for bit, name in FLAG_NAMES.items() if flags & bit]
-
 
 @dataclass
 class PortInfo:
@@ -227,62 +217,7 @@ def _check_header(h: CaptureHeader) -> None:
                                   and all(str(k).isascii() and str(k).isdigit() and int(k) <= 255
                                           for k in roles)):
         raise ValueError(f"port_roles must map port numbers to one of {', '.join(_PORT_ROLES)}")
-    protocol = h.extra.get("protocol", "rtu")
-    if not isinstance(protocol, str) or protocol.lower() not in ("rtu", "ascii"):
-        raise ValueError(f"protocol {protocol!r} is not rtu or ascii")
-
-
-@dataclass(frozen=True)
-class Record:
-    """One read: which port, when the read returned (monotonic ns), flags, and the bytes."""
-
-    port: int
-    t_ns: int
-    data: bytes
-    flags: int = 0
-
-
-@dataclass
-class RecordBatch:
-    """Records as columns: the form the decoder's bulk path consumes."""
-
-    t_ns: np.ndarray      # int64, monotonic ns at read return
-    length: np.ndarray    # int64, bytes per record
-    port: np.ndarray      # uint8
-    flags: np.ndarray     # uint8
-    payload: np.ndarray   # uint8, all records' bytes back to back
-
-    def __len__(self) -> int:
-        return int(self.t_ns.shape[0])
-
-    @property
-    def offsets(self) -> np.ndarray:
-        """Start of each record's bytes in ``payload``."""
-        ends = np.cumsum(self.length)
-        return ends - self.length
-
-    def records(self) -> Iterator[Record]:
-        payload = self.payload.tobytes()
-        pos = 0
-        for t, n, p, f in zip(self.t_ns.tolist(), self.length.tolist(), self.port.tolist(), self.flags.tolist()):
-            yield Record(p, t, payload[pos:pos + n], f)
-            pos += n
-
-    @classmethod
-    def from_records(cls, records: Iterable[Record]) -> RecordBatch:
-        recs = list(records)
-        return cls(
-            t_ns=np.fromiter((r.t_ns for r in recs), dtype=np.int64, count=len(recs)),
-            length=np.fromiter((len(r.data) for r in recs), dtype=np.int64, count=len(recs)),
-            port=np.fromiter((r.port for r in recs), dtype=np.uint8, count=len(recs)),
-            flags=np.fromiter((r.flags for r in recs), dtype=np.uint8, count=len(recs)),
-            payload=np.frombuffer(b"".join(r.data for r in recs), dtype=np.uint8).copy(),
-        )
-
-    @classmethod
-    def empty(cls) -> RecordBatch:
-        return cls(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.uint8), np.zeros(0, np.uint8),
-                   np.zeros(0, np.uint8))
+    canonical_protocol(h.extra.get("protocol", DEFAULT_PROTOCOL))
 
 
 def part_path(base: Path, part: int) -> Path:

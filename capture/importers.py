@@ -35,8 +35,8 @@ from buswitness.capture.fileformat import (
     ReadReport,
     RecordBatch,
 )
-from buswitness.decode.timing import SerialFormat, parse_baud
 from buswitness.errors import InputFileError, UsageError
+from buswitness.serial import SerialFormat, parse_baud
 
 #: Timestamps above this are taken as UNIX epoch seconds (1973-03-03), below as relative.
 EPOCH_THRESHOLD_S = 1e8

@@ -33,8 +33,8 @@ from buswitness.capture.fileformat import (
     PortInfo,
 )
 from buswitness.capture.parmrk import ParmrkParser
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import DeviceError, OutputError
+from buswitness.serial import SerialFormat
 
 #: Queue memory cap: beyond this many unwritten bytes, new reads are dropped and marked lost.
 DEFAULT_QUEUE_CAP_BYTES = 64 << 20

@@ -19,8 +19,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import serial
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import DeviceError
+from buswitness.serial import SerialFormat
 from serial.tools import list_ports
 
 try:

@@ -9,9 +9,9 @@ from typing import Protocol
 
 from buswitness.capture.fileformat import MAGIC, CaptureHeader, CaptureReader, ReadReport, RecordBatch
 from buswitness.capture.importers import HexTextSource, RawBinarySource, looks_like_hex_text
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, NotACaptureError, UsageError
 from buswitness.fsutil import check_input_file
+from buswitness.serial import SerialFormat
 
 INPUT_KINDS = ("auto", "capture", "hex", "raw")
 

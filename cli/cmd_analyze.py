@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from buswitness.cli.common import add_input_options, roles_arg, serial_halves
+from buswitness.cli.common import add_input_options, add_protocol_option, roles_arg, serial_halves
 from buswitness.textsafe import visible
 
 HELP = "analyse a capture: per-station figures, findings, dashboard and exports"
@@ -43,6 +43,7 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
                    help="what each port of the capture hears, in port order (master, slaves or both), when "
                         "the recording did not say; e.g. master,slaves for a four-wire bus")
     add_input_options(p)
+    add_protocol_option(p)
 
 
 def add_parser(sub: argparse._SubParsersAction) -> None:
@@ -73,7 +74,7 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
-                              port_roles=roles)
+                              port_roles=roles, protocol=getattr(args, "protocol", None))
     result = analyze_with_bar(source, options, sinks, show=False if args.no_progress else None)
     damage = result.damage
     if result.bus.frames == 0 and damage is not None and not damage.clean:

@@ -6,9 +6,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from buswitness.capture import detect
-from buswitness.cli.common import baud_arg, format_arg, number_arg
-from buswitness.decode.timing import COMMON_BAUD_RATES
+from buswitness import detect
+from buswitness.cli.common import add_protocol_option, baud_arg, format_arg, number_arg
+from buswitness.serial import COMMON_BAUD_RATES
 from buswitness.textsafe import visible
 
 HELP = "find a bus's baud rate and character format from its traffic"
@@ -47,6 +47,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
                    help=f"formats to try (default: {','.join(detect.COMMON_FORMATS)})")
     p.add_argument("--top", type=number_arg(1, MAX_TOP, "--top", integer=True), default=8,
                    help=f"rows of the ranking to show, 1 to {MAX_TOP} (default 8)")
+    add_protocol_option(p)
     p.set_defaults(run=run)
 
 
@@ -76,16 +77,20 @@ def run(args: argparse.Namespace) -> int:
         for info in source.header.ports:
             if len(source.header.ports) > 1:
                 print(visible(f"port {info.id} ({info.name}):"))
-            check = detect.check_capture(source.header.serial, source.iter_batches(), port=info.id)
+            protocol = args.protocol or str(source.header.extra.get("protocol", "modbus-rtu"))
+            check = detect.check_capture(source.header.serial, source.iter_batches(), port=info.id,
+                                         protocol=protocol)
             print(visible(check.describe(), keep_newlines=True))
         return 0
     check_port(args.target)
-    bauds = args.bauds or list(COMMON_BAUD_RATES)
-    formats = args.formats or list(detect.COMMON_FORMATS)
+    from buswitness.decode.protocols import get
+    proto = get(args.protocol or "modbus-rtu")
+    bauds = args.bauds or list(getattr(proto, "baud_rates", COMMON_BAUD_RATES))
+    formats = args.formats or list(getattr(proto, "formats", detect.COMMON_FORMATS))
     trials = detect.candidates(bauds, formats)
     print(f"listening on {args.target} at {len(trials)} settings, {args.seconds:g} s each "
           f"(about {len(trials) * args.seconds:.0f} s; listen-only)", file=sys.stderr)
-    scores = detect.rank_settings(detect.port_sampler(args.target, args.seconds), trials)
+    scores = detect.rank_settings(detect.port_sampler(args.target, args.seconds), trials, proto.name)
     print_ranking(scores, args.top)
     print(detect.verdict(scores))
     return 0

@@ -8,6 +8,7 @@ import collections
 from buswitness.capture.fileformat import flag_names
 from buswitness.capture.sources import open_capture
 from buswitness.cli.common import add_input_options, serial_halves
+from buswitness.decode.timing import t15_s, t35_s
 from buswitness.textsafe import visible
 
 HELP = "print a capture file's header, record counts and any damage found"
@@ -31,7 +32,7 @@ def run(args: argparse.Namespace) -> int:
     show(f"capture      {', '.join(str(p) for p in src.paths)}")
     show(f"source       {h.source} (format version {h.format_version}, written by buswitness {h.tool_version})")
     show(f"serial       {h.serial} (character {h.serial.char_time_s * 1e3:.3f} ms, "
-          f"t1.5 {h.serial.t15_s * 1e3:.3f} ms, t3.5 {h.serial.t35_s * 1e3:.3f} ms)")
+         f"t1.5 {t15_s(h.serial) * 1e3:.3f} ms, t3.5 {t35_s(h.serial) * 1e3:.3f} ms)")
     for port in h.ports:
         lat = f"{port.latency_ms:g} ms ({port.latency_source})" if port.latency_ms is not None else "unknown"
         show(f"port {port.id}       {port.name}  adapter latency {lat}")

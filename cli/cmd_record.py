@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.common import (
+    add_protocol_option,
     add_serial_options,
     check_port,
     duration_s,
@@ -22,8 +23,8 @@ from buswitness.cli.common import (
     serial_from_args,
     size_bytes,
 )
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import OutputError, UsageError
+from buswitness.serial import SerialFormat
 from buswitness.textsafe import visible
 from rich.console import RenderableType
 
@@ -80,6 +81,7 @@ def rotate_arg(text: str) -> tuple[str, int]:
 def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:
     """Options shared by ``record`` and ``watch``."""
     add_serial_options(p, from_file=False)
+    add_protocol_option(p, from_file=False)
     p.add_argument("-o", "--output", type=Path, required=output_required, default=None,
                    help="capture file to write (e.g. night.bwcap); never overwritten")
     p.add_argument("--rotate", type=rotate_arg, default=None,
@@ -125,6 +127,8 @@ def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConf
             raise UsageError(f"--roles names {len(args.roles)} role(s) for {len(ports)} port(s); give one per port")
         # The decoder reads these to take direction from the port (docs/capture-format.md, header extra).
         cfg.extra["port_roles"] = {str(i): role for i, role in enumerate(args.roles)}
+    if getattr(args, "protocol", None):
+        cfg.extra["protocol"] = args.protocol  # the decoder reads it (docs/capture-format.md, header extra)
     if args.rotate is not None:
         kind, value = args.rotate
         if kind == "bytes":

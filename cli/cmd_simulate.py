@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import os
 
-from buswitness.cli.common import baud_arg, duration_at_most, format_arg, number_arg
+from buswitness.cli.common import add_protocol_option, baud_arg, duration_at_most, format_arg, number_arg
 from buswitness.errors import EXIT_OK, OutputError, UsageError
 
 HELP = "simulate a bus with faults and write a capture with its ground truth"
@@ -30,16 +30,18 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--format", dest="char_format", type=format_arg, default=None,
                    help="override the bus character format only: 8E1, 8N2, 8N1, ... (default: the scenario's own)")
     p.add_argument("--list", action="store_true", help="list the built-in scenarios and exit")
+    add_protocol_option(p, from_file=False)
     p.set_defaults(run=run)
 
 
 def run(args: argparse.Namespace) -> int:
     from buswitness.fsutil import MAX_TEXT_INPUT_BYTES, check_input_file
-    from buswitness.simulate import builtin_descriptions, load_scenario, simulate
+    from buswitness.simulate import builtin_descriptions, load_scenario, profibus, simulate
 
     if args.list:
         for name, text in builtin_descriptions().items():
             print(f"{name:24s} {text}")
+        print(f"{profibus.NAME:24s} {profibus.DESCRIPTION}")
         return EXIT_OK
     if not args.output:
         raise UsageError("give the capture file to write with -o CAPTURE.bwcap (or --list to see the scenarios)")
@@ -48,6 +50,11 @@ def run(args: argparse.Namespace) -> int:
             raise OutputError(f"{path}: already exists; choose another output name (nothing was overwritten)")
     if args.seed < 0:
         raise UsageError(f"--seed must be zero or more, not {args.seed}")
+    if args.protocol == "profibus-dp" or args.scenario == profibus.NAME:
+        return _run_profibus(args, profibus)
+    if args.protocol not in (None, "modbus-rtu"):
+        raise UsageError(f"the built-in scenarios simulate Modbus RTU or (scenario {profibus.NAME}) Profibus DP, "
+                         f"not {args.protocol}")
     if os.path.lexists(args.scenario) and args.scenario not in builtin_descriptions():
         check_input_file(args.scenario, "scenario file", MAX_TEXT_INPUT_BYTES)
     sc = load_scenario(args.scenario)
@@ -66,4 +73,18 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} frames on the wire")
     if args.truth:
         print(f"wrote {args.truth}: ground truth (frames, transactions, events, per-station figures)")
+    return EXIT_OK
+
+
+def _run_profibus(args: argparse.Namespace, profibus) -> int:
+    """The Profibus DP scenario (simulate/profibus.py)."""
+    if args.scenario not in (profibus.NAME, "pumpstation"):
+        raise UsageError(f"the Profibus DP scenario is {profibus.NAME}; {args.scenario!r} is a Modbus scenario")
+    sim = profibus.simulate_profibus(duration_s=args.duration or 20.0, seed=args.seed, baud=args.baud)
+    info = sim.write(args.output, args.truth)
+    print(f"simulated {sim.duration_s:g} s of scenario {profibus.NAME} (Profibus DP, {sim.sc.serial}, seed {sim.seed}) "
+          f"in {info['seconds']:.1f} s")
+    print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} telegrams on the wire")
+    if args.truth:
+        print(f"wrote {args.truth}: ground truth (per-slave requests, answers, retries, drop-outs; tokens per master)")
     return EXIT_OK

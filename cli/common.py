@@ -6,8 +6,8 @@ import argparse
 import math
 import re
 
-from buswitness.decode.timing import SerialFormat, parse_baud
 from buswitness.errors import UsageError
+from buswitness.serial import SerialFormat, parse_baud
 
 _DURATION = re.compile(r"(\d+(?:\.\d+)?)\s*(ms|s|m|h|d)", re.IGNORECASE | re.ASCII)
 _UNITS_S = {"ms": 1e-3, "s": 1.0, "m": 60.0, "h": 3600.0, "d": 86400.0}
@@ -83,6 +83,23 @@ def format_arg(text: str) -> str:
 
 #: What ``--baud`` and ``--format`` fall back to when nothing else states the bus's setting.
 DEFAULT_SERIAL = SerialFormat()
+
+
+def protocol_arg(text: str) -> str:
+    """A field protocol's registry name (old names rtu/ascii are understood)."""
+    from buswitness.protocols import canonical
+    try:
+        return canonical(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def add_protocol_option(parser: argparse.ArgumentParser, from_file: bool = True) -> None:
+    """``--protocol modbus-rtu|modbus-ascii|profibus-dp`` (the registry in buswitness.protocols)."""
+    from buswitness.protocols import DEFAULT, NAMES
+    own = "the capture's own, else " if from_file else ""
+    parser.add_argument("--protocol", type=protocol_arg, default=None, metavar="|".join(NAMES),
+                        help=f"the field protocol on the bus (default: {own}{DEFAULT})")
 
 
 def add_serial_options(parser: argparse.ArgumentParser, required: bool = False, from_file: bool = True) -> None:

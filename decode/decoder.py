@@ -1,7 +1,7 @@
 """The decoder facade: records in, frames, damage events and transactions out. No I/O.
 
 ``Decoder.feed`` takes one record and returns objects (for tests and small inputs);
-``Decoder.feed_batch`` takes a :class:`~buswitness.capture.fileformat.RecordBatch` and returns
+``Decoder.feed_batch`` takes a :class:`~buswitness.records.RecordBatch` and returns
 a :class:`DecodeOutput` of DataFrames laid out as ``docs/tables.md`` says. Both keep their
 state between calls, so a frame may straddle two records or two batches, and ``flush``
 closes whatever is still open at the end of the input.
@@ -15,7 +15,23 @@ from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
-from buswitness.capture.fileformat import (
+from buswitness.decode.arrival import Timeline
+from buswitness.decode.events import Damage, Frame
+from buswitness.decode.messages import BulkRun, DamageMsg, FrameMsg, RegularRun, Span
+from buswitness.decode.protocols import get as get_protocol
+from buswitness.decode.protocols.base import EITHER, JUNK, REQUEST, RESPONSE, FieldProtocol
+from buswitness.decode.tables import (
+    Collector,
+    DecodeOutput,
+    events_table,
+    frames_table,
+    transactions_table,
+)
+from buswitness.errors import UsageError
+from buswitness.protocols import DEFAULT as DEFAULT_PROTOCOL
+from buswitness.protocols import NAMES as PROTOCOLS
+from buswitness.protocols import canonical
+from buswitness.records import (
     FLAG_BREAK,
     FLAG_DISCONNECTED,
     FLAG_LINE_ERROR,
@@ -23,33 +39,15 @@ from buswitness.capture.fileformat import (
     FLAG_PAUSED,
     FLAG_REOPENED,
     FLAG_UNTIMED,
-    CaptureHeader,
     RecordBatch,
 )
-from buswitness.decode.arrival import Timeline
-from buswitness.decode.ascii import AsciiScanner, decode_ascii_frame
-from buswitness.decode.bulk import bulk_spans
-from buswitness.decode.events import Damage, Frame
-from buswitness.decode.framer import JUNK, RegionScanner, Span
-from buswitness.decode.lengths import EITHER, MIN_FRAME, PUBLIC_CODES, REQUEST, RESPONSE, candidate_lengths
-from buswitness.decode.pairing import Pairing
-from buswitness.decode.tables import (
-    OUTCOME_CODE,
-    Collector,
-    DecodeOutput,
-    events_table,
-    frames_table,
-    transactions_table,
-)
-from buswitness.decode.timing import SerialFormat
-from buswitness.errors import UsageError
+from buswitness.serial import SerialFormat
 
 DEFAULT_LATENCY_MS = 16.0
 DEFAULT_HOST_DELAY_MS = 1.0
 PORT_ROLES = ("master", "slaves", "both")
 #: Runs of flag-free records shorter than this go record by record.
 BULK_MIN_BYTES = 2048
-PROTOCOLS = ("rtu", "ascii")
 
 _GAP_FLAGS = FLAG_REOPENED | FLAG_PAUSED | FLAG_DISCONNECTED
 _CUT_FLAGS = _GAP_FLAGS | FLAG_BREAK | FLAG_LOST
@@ -69,14 +67,16 @@ class DecoderConfig:
     serial: SerialFormat = field(default_factory=SerialFormat)
     latency_ms: dict[int, float] = field(default_factory=dict)
     host_delay_ms: float = DEFAULT_HOST_DELAY_MS
-    protocol: str = "rtu"
+    protocol: str = DEFAULT_PROTOCOL
     untimed: bool = False
     port_roles: dict[int, str] = field(default_factory=dict)
     packet_bytes: int = 62
 
     def __post_init__(self) -> None:
-        if self.protocol not in PROTOCOLS:
-            raise UsageError(f"protocol {self.protocol!r} is not one of {', '.join(PROTOCOLS)}")
+        try:
+            self.protocol = canonical(self.protocol)  # old names ("rtu", "ascii") are understood
+        except ValueError:
+            raise UsageError(f"protocol {self.protocol!r} is not one of {', '.join(PROTOCOLS)}") from None
         for port, role in self.port_roles.items():
             if role not in PORT_ROLES:
                 raise UsageError(f"port {port} role {role!r} is not one of {', '.join(PORT_ROLES)} "
@@ -85,7 +85,7 @@ class DecoderConfig:
             raise UsageError(f"host delay {self.host_delay_ms!r} ms must be zero or more")
 
     @classmethod
-    def from_header(cls, header: CaptureHeader,
+    def from_header(cls, header,
                     host_delay_ms: float | None = None, protocol: str | None = None,
                     port_roles: dict[int, str] | None = None) -> DecoderConfig:
         """Settings from a capture header; anything the header lacks gets the documented default.
@@ -98,7 +98,7 @@ class DecoderConfig:
         if roles is None:
             extra = header.extra.get("port_roles") or {}
             roles = {int(k): str(v) for k, v in extra.items()} if isinstance(extra, dict) else {}
-        proto = protocol or str(header.extra.get("protocol", "rtu")).lower()
+        proto = protocol or str(header.extra.get("protocol", DEFAULT_PROTOCOL)).lower()
         delay = host_delay_ms
         if delay is None:
             delay = float(header.extra.get("host_delay_ms", DEFAULT_HOST_DELAY_MS))
@@ -111,20 +111,10 @@ class DecoderConfig:
     def role_for(self, port: int) -> str:
         return self.port_roles.get(port, "both")
 
-
-def _describe_damage(raw: bytes, at_boundary: bool) -> tuple[str, int, str]:
-    """Kind, likely station and a sentence for a run of bytes that forms no valid frame."""
-    n = len(raw)
-    fc = raw[1] if n >= 2 else -1
-    shaped = n >= 2 and raw[0] <= 247 and (fc in PUBLIC_CODES or (fc & 0x80 and (fc & 0x7F) in PUBLIC_CODES))
-    if shaped:
-        rules = [length for length, _ in candidate_lengths(raw, 0, n) if length]
-        if at_boundary and rules and max(rules) > n:
-            return "truncated", raw[0], (f"a frame from or to station {raw[0]} cut short after {n} bytes "
-                                         f"(expected {max(rules)})")
-        if n >= MIN_FRAME:
-            return "crc_error", raw[0], f"{n} bytes shaped like a frame for station {raw[0]}, CRC check failed"
-    return "stray_bytes", -1, f"{n} stray byte{'s' if n != 1 else ''} that form no frame"
+    @property
+    def proto(self) -> FieldProtocol:
+        """The protocol object (decode/protocols/) this configuration names."""
+        return get_protocol(self.protocol)
 
 
 class _Port:
@@ -138,19 +128,19 @@ class _Port:
 
     def __init__(self, port: int, cfg: DecoderConfig) -> None:
         self.port = port
-        fmt = cfg.serial
-        self.char_ns = fmt.char_time_s * 1e9
-        self.t15_ns = fmt.t15_s * 1e9
-        self.t35_ns = fmt.t35_s * 1e9
-        self.ascii = cfg.protocol == "ascii"
-        self.scanner: RegionScanner | AsciiScanner = AsciiScanner() if self.ascii else RegionScanner()
+        self.proto = proto = cfg.proto
+        self.timing = timing = proto.timing(cfg.serial)
+        self.char_ns = timing.char_ns
+        self.t15_ns = timing.gap_in_frame_ns
+        self.t35_ns = timing.frame_gap_ns
+        self.cuts = timing.cuts_frames
+        self.marking = proto.marks_bytes
         self.timeline = Timeline(self.char_ns, cfg.latency_for(port) * 1e6, cfg.host_delay_ms * 1e6,
                                  cfg.packet_bytes, cfg.untimed)
         self.untimed = cfg.untimed
         self.role = cfg.role_for(port)
         self.one_way = REQUEST if self.role == "master" else RESPONSE if self.role == "slaves" else 0
-        if isinstance(self.scanner, RegionScanner):
-            self.scanner.one_way = self.one_way
+        self.scanner = proto.new_scanner(self.one_way)
         self.buf = bytearray()
         self.base = 0  # absolute stream position of buf[0]
         # record starts (absolute positions, increasing) with a silence over t1.5 before them
@@ -159,29 +149,13 @@ class _Port:
         self.last_key = -(1 << 62)
         self.expect_response = False  # the bulk walk's guess for the next frame's direction
         self._marks: dict[str, list] = {}
-        self._held: list[tuple[int, tuple]] = []
+        self._held: list[tuple[int, int, DamageMsg]] = []  # (stream position, time, event)
         self._merge_ns = cfg.latency_for(port) * 1e6 + cfg.host_delay_ms * 1e6 + 4 * self.char_ns
         self._last_end = (0, 0)  # end interval of the last frame handed on (for a break right behind it)
 
-    @staticmethod
-    def _describe_idle(raw: bytes, follows: tuple[int, bool], marked: bool) -> tuple[str, int, str]:
-        """Kind, talker and a sentence for a byte a driver left on a line nobody holds idle.
-
-        The talker is the station whose answer the byte follows, or -1 for the master (it has no
-        address) when the byte follows a request.
-        """
-        address, request = follows
-        after = f"the master's frame to station {address}" if request else f"station {address}'s answer"
-        how = ", marked bad by the UART" if marked else ""
-        if marked and not raw[0]:
-            how = ", marked bad by the UART (PARMRK reports it as a break: both have one escape)"
-        return "idle_line_byte", -1 if request else address, (
-            f"byte 0x{raw[0]:02X}{how} right after {after}: the line floated when the driver let go "
-            f"(not part of the frame)")
-
     def add(self, t_ns: int, data: bytes, flags: int, out: list) -> None:
         """Take one record; append (sort key, item) pairs for what it completes to ``out``."""
-        if flags & FLAG_BREAK and isinstance(self.scanner, RegionScanner):
+        if flags & FLAG_BREAK and self.marking:
             self.scanner.add_break(len(self.buf))
         if flags & _CUT_FLAGS:
             self._scan(False, out)
@@ -189,12 +163,12 @@ class _Port:
         if data:
             start = self.base + len(self.buf)
             silence = self.timeline.add(t_ns, len(data))
-            if silence > self.t35_ns and not self.ascii:
+            if silence > self.t35_ns and self.cuts:
                 self.scanner.add_boundary(len(self.buf))
             if silence > self.t15_ns:
                 self.silence_at.append(start)
                 self.silence_ns.append(silence)
-            if flags & FLAG_LINE_ERROR and isinstance(self.scanner, RegionScanner):
+            if flags & FLAG_LINE_ERROR and self.marking:
                 for k in range(len(self.buf), len(self.buf) + len(data)):
                     self.scanner.add_mark(k)
             self.buf.extend(data)
@@ -231,7 +205,7 @@ class _Port:
         t_first, _t_last, raw, pos = self._marks.pop(kind)
         # The marked bytes arrived within one adapter period before the first such read returned.
         t = int(t_first - self._merge_ns / 2)
-        self._held.append((pos, (t, ("damage", Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind])))))
+        self._held.append((pos, t, DamageMsg(Damage(kind, self.port, t, bytes(raw), -1, _MARK_TEXT[kind]))))
 
     def _unmark(self, pos: int, kind: str) -> bool:
         """Take the byte at absolute ``pos`` out of the ``kind`` event (line_error, break) holding it;
@@ -247,14 +221,15 @@ class _Port:
         if run is not None and holds(run[3], run[2]):
             self._close_mark(kind)
         for entry in self._held:
-            first, (t, (_tag, damage)) = entry
+            first, t, msg = entry
+            damage = msg.damage
             if damage.kind == kind and holds(first, damage.raw):
                 self._held.remove(entry)
                 k = pos - first
                 for start, raw in ((first, damage.raw[:k]), (pos + 1, damage.raw[k + 1:])):
                     if raw:
                         part = Damage(damage.kind, damage.port, damage.t_ns, raw, damage.station, damage.detail)
-                        self._held.append((start, (t, ("damage", part))))
+                        self._held.append((start, t, DamageMsg(part)))
                 return True
         return False
 
@@ -269,16 +244,16 @@ class _Port:
         if pos is None:
             ready, self._held = self._held, []
         else:
-            undecided = settled and isinstance(self.scanner, RegionScanner) and self.scanner.after_frame
+            undecided = settled and self.marking and self.scanner.after_frame
 
             def due(h: tuple) -> bool:
                 if h[0] != pos:
                     return h[0] < pos
-                return not (undecided and h[1][1][1].kind in ("line_error", "break"))
+                return not (undecided and h[2].damage.kind in ("line_error", "break"))
 
             ready = [h for h in self._held if due(h)]
             self._held = [h for h in self._held if not due(h)]
-        return [item for _pos, item in sorted(ready, key=lambda h: h[0])]
+        return [(t, msg) for _pos, t, msg in sorted(ready, key=lambda h: h[0])]
 
     def _span_items(self, span: Span) -> list:
         """A span as queue items, with the held events that come before it."""
@@ -300,8 +275,8 @@ class _Port:
     def add_bulk(self, t_ns: np.ndarray, n: np.ndarray, payload: bytes, pieces: list) -> None:
         """Take many flag-free records, each with bytes, at once; append pieces in stream order.
 
-        A piece is ``("items", [(key, item), ...])`` from the sequential framer or
-        ``("bulk", end_lo, end_hi, lengths, shapes, addresses, functions, raws)`` from the bulk path.
+        A piece is a list of ``(key, message)`` pairs from the sequential framer or a
+        :class:`BulkRun` from the protocol's bulk path.
         """
         offsets = len(self.buf) + np.cumsum(n) - n
         silence = self.timeline.add_many(t_ns, n)
@@ -315,7 +290,7 @@ class _Port:
 
     def _scan_bulk(self, pieces: list) -> None:
         sc = self.scanner
-        assert isinstance(sc, RegionScanner)
+        bulk = self.proto.bulk
         buf = bytes(self.buf)
         arr = np.frombuffer(buf, dtype=np.uint8)
         end = len(buf)
@@ -327,41 +302,34 @@ class _Port:
             run = 2  # frames the sequential framer takes before the bulk walk tries again
             held = self._held_before(self.base + sc.settled, settled=True)
             if held:
-                pieces.append(("items", held))
+                pieces.append(held)
             if sc.junk_start is None:
-                starts, lens, shapes, expect = bulk_spans(buf, arr, sc.pos, end, self.expect_response,
-                                                          self.one_way)
+                starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end, self.expect_response,
+                                                                      self.one_way)
                 if starts.size and self._held:
                     # stop before the first frame that comes after a held event's bytes
                     keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
                     if keep < starts.size:
-                        starts, lens, shapes = starts[:keep], lens[:keep], shapes[:keep]
+                        starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
+                                                            fcs[:keep])
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size and stops.size:
                     j = np.searchsorted(stops, starts, "right")
                     inside = (j < stops.size) & (stops[np.minimum(j, stops.size - 1)] < starts + lens)
                     if inside.any():
                         keep = int(np.argmax(inside))
-                        starts, lens, shapes = starts[:keep], lens[:keep], shapes[:keep]
+                        starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
+                                                            fcs[:keep])
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size:
                     ends = (starts + lens).tolist()
                     raws = [buf[a:b] for a, b in zip(starts.tolist(), ends)]
-                    addrs = arr[starts]
                     first = starts + self.base
                     lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
                     self._last_end = (int(lo[-1]), int(hi[-1]))
-                    pieces.append(("bulk", lo, hi, lens, shapes, addrs, arr[starts + 1], raws))
+                    pieces.append(BulkRun(lo, hi, lens, shapes, addrs, fcs, raws))
                     sc.pos = ends[-1]
-                    sc.anchored = True
-                    # the talker of a frame the length rules leave open is judged as the
-                    # sequential framer judges it (from the frame before), so both paths agree
-                    k = len(raws) - 1
-                    while k > max(0, len(raws) - 64) and int(shapes[k]) == EITHER:
-                        k -= 1
-                    for i in range(k, len(raws)):
-                        sc.note_frame(raws[i], int(shapes[i]))
-                    sc.known_addresses.update(np.unique(addrs).tolist())
+                    bulk.after_run(sc, raws, shapes, addrs)
                     self.expect_response = expect
                     progressed = True
                 if starts.size < self.BULK_SHORT_RUN:
@@ -375,7 +343,7 @@ class _Port:
                 items: list = []
                 for span in spans:
                     items.extend(self._span_items(span))
-                pieces.append(("items", items))
+                pieces.append(items)
                 for span in reversed(spans):
                     if span.shape:
                         self.expect_response = (span.shape == REQUEST if span.shape != EITHER
@@ -387,13 +355,13 @@ class _Port:
                 break
         self._trim()
 
-    def bulk_items(self, piece: tuple) -> list:
-        """A bulk piece as queue items, for pairing in time order with other ports."""
-        _tag, lo, hi, lens, shapes, _addrs, _fcs, raws = piece
+    def bulk_items(self, run: BulkRun) -> list:
+        """A bulk run as queue items, for pairing in time order with other ports."""
+        lo, hi = run.lo, run.hi
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
-        keys = (base - np.rint(lens * self.char_ns).astype(np.int64)).tolist()
-        return [(k, ("frame", self.port, raw, a, b, sh, 0.0, 0))
-                for k, raw, a, b, sh in zip(keys, raws, lo.tolist(), hi.tolist(), shapes.tolist())]
+        keys = (base - np.rint(run.lens * self.char_ns).astype(np.int64)).tolist()
+        return [(k, FrameMsg(self.port, raw, a, b, sh))
+                for k, raw, a, b, sh in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist())]
 
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
@@ -414,7 +382,7 @@ class _Port:
             if gone:
                 del self.silence_at[:gone], self.silence_ns[:gone]
 
-    def _item(self, span: Span, marked: bool = False) -> tuple:
+    def _item(self, span: Span, marked: bool = False) -> tuple[int, FrameMsg | DamageMsg]:
         a, b = self.base + span.start, self.base + span.end
         raw = bytes(self.buf[span.start:span.end])
         if a == b:  # a break mark right behind a frame: the marked 0x00 one character after its last byte
@@ -426,22 +394,20 @@ class _Port:
             # Damaged bytes are mostly one talker's back-to-back bytes: bound them like a frame.
             t = (lo + hi) // 2 - round(len(raw) * self.char_ns)
             if span.follows is not None:
-                kind, station, detail = self._describe_idle(raw, span.follows, marked)
+                text = self.proto.describe_idle(raw, span.follows, marked)
             else:
-                kind, station, detail = _describe_damage(raw, span.at_boundary)
-            return t, ("damage", Damage(kind, self.port, t, raw, station, detail))
+                text = self.proto.describe_damage(raw, span.at_boundary)
+            return t, DamageMsg(Damage(text.kind, self.port, t, raw, text.station, text.detail))
         self._last_end = (lo, hi)
         gaps = self.silence_ns[bisect_right(self.silence_at, a):bisect_left(self.silence_at, b)]
         # Sort key among ports: a master's frame by its earliest start, a station's by its latest,
         # so an answer never sorts before the request it answers, however coarse the timestamps.
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
         t_start = base - round(len(raw) * self.char_ns)
-        wire = 0
-        if self.ascii:
-            wire = len(raw)
-            raw = decode_ascii_frame(raw) or raw
+        raw, wire = self.proto.unwrap(raw)
+        if not self.cuts:
             gaps = []
-        return t_start, ("frame", self.port, raw, lo, hi, span.shape, max(gaps) if gaps else 0.0, wire)
+        return t_start, FrameMsg(self.port, raw, lo, hi, span.shape, max(gaps) if gaps else 0.0, wire)
 
 
 class Decoder:
@@ -450,10 +416,12 @@ class Decoder:
     def __init__(self, config: DecoderConfig | None = None) -> None:
         self.config = config or DecoderConfig()
         self.ports: dict[int, _Port] = {}
-        fmt = self.config.serial
-        self.char_ns = fmt.char_time_s * 1e9
+        self.proto = self.config.proto
+        timing = self.proto.timing(self.config.serial)
+        self.char_ns = timing.char_ns
         # No timeout here: pairing records what the wire shows, the analysis judges it (one timeout).
-        self.pairing = Pairing(fmt.t35_s * 1e9, timed=not self.config.untimed)
+        self.pairing = self.proto.new_pairing(timing, not self.config.untimed)
+        self._frame = getattr(self.proto, "make_frame", Frame)
         self._queue: list[tuple[int, int, tuple]] = []
         self._seq = 0
         self._slack_ns = int(max([self.config.latency_for(p) for p in self.config.latency_ms] + [DEFAULT_LATENCY_MS])
@@ -488,12 +456,12 @@ class Decoder:
         col = Collector()
         count = len(batch)
         if count == 0:
-            return col.output()
+            return col.output(self.proto)
         payload = batch.payload.tobytes()
         offsets = batch.offsets
         lengths = batch.length
         ports = np.unique(batch.port)
-        single = ports.size == 1 and set(self.ports) <= {int(ports[0])} and self.config.protocol == "rtu"
+        single = ports.size == 1 and set(self.ports) <= {int(ports[0])} and self.proto.bulk is not None
         plain = ((batch.flags & ~np.uint8(FLAG_UNTIMED)) == 0) & (lengths > 0)
         if not single:
             # Several ports: each port's stream is framed on its own (bulk where it can), then
@@ -503,9 +471,9 @@ class Decoder:
             out: list = []
             self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
             col.add_objects(out)
-            return col.output()
+            return col.output(self.proto)
         self._port_records(np.arange(count), batch, payload, offsets, plain, col)
-        return col.output()
+        return col.output(self.proto)
 
     def _port_records(self, idx: np.ndarray, batch: RecordBatch, payload: bytes, offsets: np.ndarray,
                       plain: np.ndarray, col: Collector | None) -> None:
@@ -515,7 +483,7 @@ class Decoder:
         pos = 0
         for run_start, run_end in zip(edges[::2].tolist(), edges[1::2].tolist()):
             sel = idx[run_start:run_end]
-            if int(batch.length[sel].sum()) < BULK_MIN_BYTES:
+            if self.proto.bulk is None or int(batch.length[sel].sum()) < BULK_MIN_BYTES:
                 continue  # numpy's fixed cost per call outweighs the gain on short runs
             self._records(idx[pos:run_start], batch, payload, offsets, col)
             self._bulk_run(sel, batch, payload, offsets, col)
@@ -548,8 +516,8 @@ class Decoder:
         pieces: list = []
         p.add_bulk(t_ns, lengths, data, pieces)
         for piece in pieces:
-            if piece[0] == "items":
-                self._enqueue(p, piece[1])
+            if not isinstance(piece, BulkRun):
+                self._enqueue(p, piece)
                 if col is not None:
                     out: list = []
                     self._release(None, out)
@@ -559,9 +527,9 @@ class Decoder:
             else:
                 self._enqueue(p, p.bulk_items(piece))
 
-    def _bulk_frames(self, p: _Port, piece: tuple, col: Collector) -> None:
+    def _bulk_frames(self, p: _Port, run: BulkRun, col: Collector) -> None:
         """Frames from the bulk path: times in columns, pairing in columns where traffic is regular."""
-        _tag, lo, hi, lens, shapes, addrs, fcs, raws = piece
+        lo, hi, lens, shapes, addrs, fcs, raws = run.lo, run.hi, run.lens, run.shapes, run.addrs, run.fcs, run.raws
         c = self.char_ns
         t_end = (lo + hi) // 2
         t_start = t_end - np.rint(lens * c).astype(np.int64)
@@ -573,16 +541,18 @@ class Decoder:
         i = 0
         while i < m:
             if role == "both" and pr.is_quiet():
-                run = _regular_pairs(shapes[i:], addrs[i:], fcs[i:])
-                if run:
-                    j = i + 2 * run
-                    self._pair_columns(p.port, raws, lo, hi, lens, t_start, t_end, addrs, fcs, i, j, col)
+                pairs = pr.regular_run(shapes[i:], addrs[i:], fcs[i:])
+                if pairs:
+                    j = i + 2 * pairs
+                    columns, events = pr.pair_regular(RegularRun(p.port, run, t_start, t_end, c, i, j))
+                    col.add_transaction_columns(columns)
+                    col.add_objects(events)
                     directions[i:j:2] = 0
                     directions[i + 1:j:2] = 1
                     i = j
                     continue
             out: list = []
-            frame = self._deliver(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0, 0, out,
+            frame = self._deliver(FrameMsg(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
                                   keep_frame=False)
             directions[i] = 0 if frame.direction == "request" else 1 if frame.direction == "response" else 2
             col.add_objects(out)
@@ -593,68 +563,9 @@ class Decoder:
             "direction": directions, "raw": raws,
         })
 
-    def _pair_columns(self, port: int, raws: list, lo: np.ndarray, hi: np.ndarray, lens: np.ndarray,
-                      t_start: np.ndarray, t_end: np.ndarray, addrs: np.ndarray, fcs: np.ndarray, i: int, j: int,
-                      col: Collector) -> None:
-        """Transactions of a run of request/answer pairs, as Pairing would make them, in columns.
-
-        Each answer follows its request at once, so none is late and nothing stays open; what
-        the run teaches (answer counts, slowest answers) goes back to the one Pairing object.
-        """
-        pr = self.pairing
-        q = np.arange(i, j, 2)
-        r = q + 1
-        c_rsp = lens[r] * self.char_ns
-        rsp_raws = raws[i + 1:j:2]
-        req_raws = raws[i:j:2]
-        exc = (fcs[r] & 0x80) != 0
-        codes = np.zeros(q.size, dtype=np.uint8)
-        if exc.any():
-            codes[exc] = [rsp_raws[k][2] for k in np.flatnonzero(exc).tolist()]
-        is_exc = exc & (codes != 0)
-        outcome = np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"]).astype(np.int8)
-        conflict = np.zeros(q.size, dtype=bool)
-        if pr.timed:
-            mid = (t_end[r] - c_rsp - t_end[q]) / 1e6
-            low = (lo[r] - c_rsp - hi[q]) / 1e6
-            high = (hi[r] - c_rsp - lo[q]) / 1e6
-            # as Pairing._times: a contradiction widens to [0, width], never collapses
-            conflict = high < 0
-            before = -high
-            width = high - low
-            low = np.where(conflict, 0.0, np.maximum(low, 0.0))
-            high = np.where(conflict, width, high)
-            mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
-        else:
-            mid = low = high = np.full(q.size, np.nan)
-        retry = np.zeros(q.size, dtype=bool)
-        if not pr.last_answered and pr.last_request is not None:
-            retry[0] = pr.last_request.raw == req_raws[0]
-        col.add_transaction_columns({
-            "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": addrs[q],
-            "function": fcs[q], "outcome": outcome, "exception_code": np.where(is_exc, codes, 0), "retry": retry,
-            "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
-            "request_raw": req_raws, "response_raw": rsp_raws,
-        })
-        events: list = []
-        for k in np.flatnonzero(conflict).tolist():
-            events.append(Damage("timing_conflict", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
-                                 f"station {rsp_raws[k][0]}'s answer would have begun {before[k]:.3f} "
-                                 f"ms or more before its request ended: the character format or the adapter's "
-                                 f"latency is not what the capture states (response time widened to "
-                                 f"[0, {high[k]:.3f}] ms)"))
-        short = np.flatnonzero(~conflict & (high * 1e6 < pr.t35_ns))
-        events += [Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
-                          f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
-                          f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()]
-        col.add_objects(events)
-        last = int(q[-1])
-        pr.absorb_regular(Frame(port, raws[last], int(lo[last]), int(hi[last]), self.char_ns, "request"),
-                          addrs[q], mid * 1e6)
-
     def flush(self) -> DecodeOutput:
         """End of input, as tables."""
-        return DecodeOutput.from_objects(self.flush_events())
+        return DecodeOutput.from_objects(self.flush_events(), self.proto)
 
     # -- internals ----------------------------------------------------------------------------
     def _port(self, port: int) -> _Port:
@@ -687,44 +598,33 @@ class Decoder:
         q = self._queue
         while q and (limit is None or q[0][0] < limit):
             _key, _seq, item = heapq.heappop(q)
-            if item[0] == "damage":
-                out.append(self.pairing.on_damage(item[1]))
-                out.extend(self.pairing.collisions(item[1]))
+            if isinstance(item, DamageMsg):
+                out.append(self.pairing.on_damage(item.damage))
+                out.extend(self.pairing.collisions(item.damage))
                 continue
-            _tag, port, raw, lo, hi, shape, gap, wire = item
-            self._deliver(port, raw, lo, hi, shape, gap, wire, out)
+            self._deliver(item, out)
 
-    def _deliver(self, port: int, raw: bytes, lo: int, hi: int, shape: int, gap: float, wire: int, out: list,
-                 keep_frame: bool = True) -> Frame:
+    def _deliver(self, msg: FrameMsg, out: list, keep_frame: bool = True) -> Frame:
         """One frame into pairing; its events and finished transactions (and the frame) go to ``out``."""
+        port, raw, lo, hi, shape, gap, wire = (msg.port, msg.raw, msg.t_end_lo_ns, msg.t_end_hi_ns, msg.shape,
+                                               msg.gap_ns, msg.wire_chars)
         role = self.config.role_for(port)
         if role == "master":
             direction = "request"
         elif role == "slaves":
             direction = "response"
         else:
-            direction = self.pairing.direction_of(Frame(port, raw, lo, hi, self.char_ns, wire_chars=wire), shape)
-        frame = Frame(port, raw, lo, hi, self.char_ns, direction, wire)
+            direction = self.pairing.direction_of(self._frame(port, raw, lo, hi, self.char_ns, "unknown", wire), shape)
+        frame = self._frame(port, raw, lo, hi, self.char_ns, direction, wire)
         if keep_frame:
             out.append(frame)
         if gap:
-            out.append(Damage("gap_in_frame", port, frame.t_start_ns, raw, raw[0],
+            out.append(Damage("gap_in_frame", port, frame.t_start_ns, raw, frame.address,
                               f"a silence of at least {gap / 1e6:.3f} ms inside a frame (over t1.5)"))
         txns, events = self.pairing.on_frame(frame)
         out.extend(events)
         out.extend(txns)
         return frame
-
-
-def _regular_pairs(shapes: np.ndarray, addrs: np.ndarray, fcs: np.ndarray) -> int:
-    """How many request/answer pairs open these frames: request-shaped to station N, then N's answer."""
-    k = np.arange(0, shapes.shape[0] - 1, 2)
-    if k.size == 0:
-        return 0
-    ok = ((shapes[k] == REQUEST) & (shapes[k + 1] == RESPONSE) & (addrs[k] == addrs[k + 1]) & (addrs[k] != 0)
-          & ((fcs[k + 1] & 0x7F) == fcs[k]))
-    bad = np.flatnonzero(~ok)
-    return int(bad[0]) if bad.size else int(k.size)
 
 
 def decode_source(source, config: DecoderConfig | None = None) -> Iterator[DecodeOutput]:

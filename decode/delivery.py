@@ -29,7 +29,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from buswitness.decode.timing import SerialFormat
+from buswitness.decode.timing import SerialFormat, t35_s
 
 #: The latency timer's range on the common adapter parts, whole milliseconds (TIMING.md).
 TIMER_RANGE_MS = (1, 255)
@@ -248,7 +248,7 @@ def measure_pitch(t_ns: np.ndarray, n: np.ndarray, latency_ms: float, stated: Se
     chars: list[np.ndarray] = []
     used_runs = used_full = 0
     c_ms = stated.char_time_s * 1e3
-    if stated.t35_s * 1e3 + c_ms >= 2 * latency_ms:
+    if t35_s(stated) * 1e3 + c_ms >= 2 * latency_ms:
         # gap j links records j and j+1
         one_tick = (np.abs(gap - latency_ms) <= tol) & (k[1:] < packet_bytes) & (k[:-1] < packet_bytes)
         empty_tick = gap >= 2 * latency_ms - tol

@@ -25,7 +25,6 @@ from __future__ import annotations
 
 from bisect import bisect_left
 from collections.abc import Sequence
-from dataclasses import dataclass
 
 from buswitness.decode.crc import CRC_TABLE, crc16_modbus
 from buswitness.decode.lengths import (
@@ -40,29 +39,11 @@ from buswitness.decode.lengths import (
     candidate_lengths,
     plausible,
 )
+from buswitness.decode.messages import Span
 
 JUNK = 0
 _NEED = -1
 _NO = 0
-
-
-@dataclass(frozen=True)
-class Span:
-    """A piece of the stream: a frame (``shape`` > 0, see lengths) or damaged bytes (``shape`` 0)."""
-
-    start: int
-    end: int
-    shape: int
-    at_boundary: bool = False  # damaged run that ends at a certain silence (or the end of input)
-    crosses: bool = False  # frame with a certain silence inside it
-    #: An idle-line byte (shape ``JUNK``): the address of the frame it follows and whether that
-    #: frame was taken as a request (the master let go of the line) or as an answer.
-    follows: tuple[int, bool] | None = None
-
-    @property
-    def kind(self) -> str:
-        """``frame``, ``idle`` (a byte a driver left behind its frame) or ``damage``."""
-        return "frame" if self.shape else "idle" if self.follows is not None else "damage"
 
 
 def _valid(buf: bytes, p: int, n: int) -> bool:

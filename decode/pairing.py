@@ -59,6 +59,8 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from buswitness.decode.events import Damage, Frame, Transaction
 from buswitness.decode.lengths import REQUEST, RESPONSE
+from buswitness.decode.messages import RegularRun
+from buswitness.decode.tables import OUTCOME_CODE
 
 #: How long (and for how many later requests at most) an unanswered request waits for a late
 #: answer before it is final: slow stations answer up to seconds late.
@@ -377,6 +379,79 @@ class Pairing:
                     st.slowest_ns = float(s)
         self.last_request = last_request
         self.last_answered = last_answered
+
+    # -- the columnar path: the same state, whole runs at a time -----------------------------------
+    @staticmethod
+    def regular_run(shapes: np.ndarray, addrs: np.ndarray, fcs: np.ndarray) -> int:
+        """How many request/answer pairs open these frames: request-shaped to station N, then N's answer."""
+        k = np.arange(0, shapes.shape[0] - 1, 2)
+        if k.size == 0:
+            return 0
+        ok = ((shapes[k] == REQUEST) & (shapes[k + 1] == RESPONSE) & (addrs[k] == addrs[k + 1]) & (addrs[k] != 0)
+              & ((fcs[k + 1] & 0x7F) == fcs[k]))
+        bad = np.flatnonzero(~ok)
+        return int(bad[0]) if bad.size else int(k.size)
+
+    def pair_regular(self, rr: RegularRun) -> tuple[dict, list[Damage]]:
+        """Transactions of a run of request/answer pairs (see :meth:`regular_run`), in columns.
+
+        Called only while :meth:`is_quiet`. Each answer follows its request at once, so none is
+        late and nothing stays open; gives exactly what :meth:`on_frame` gives frame by frame
+        (tests/test_pairing_columns.py), and learns what the run teaches (answer counts,
+        slowest answers) into this object's own state.
+        """
+        run, i, j, port, char_ns = rr.run, rr.i, rr.j, rr.port, rr.char_ns
+        raws, lo, hi, lens, addrs, fcs, t_start, t_end = run.raws, run.lo, run.hi, run.lens, run.addrs, \
+            run.fcs, rr.t_start, rr.t_end
+        q = np.arange(i, j, 2)
+        r = q + 1
+        c_rsp = lens[r] * char_ns
+        rsp_raws = raws[i + 1:j:2]
+        req_raws = raws[i:j:2]
+        exc = (fcs[r] & 0x80) != 0
+        codes = np.zeros(q.size, dtype=np.uint8)
+        if exc.any():
+            codes[exc] = [rsp_raws[k][2] for k in np.flatnonzero(exc).tolist()]
+        is_exc = exc & (codes != 0)
+        outcome = np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"]).astype(np.int8)
+        conflict = np.zeros(q.size, dtype=bool)
+        if self.timed:
+            mid = (t_end[r] - c_rsp - t_end[q]) / 1e6
+            low = (lo[r] - c_rsp - hi[q]) / 1e6
+            high = (hi[r] - c_rsp - lo[q]) / 1e6
+            # as _times: a contradiction widens to [0, width], never collapses
+            conflict = high < 0
+            before = -high
+            width = high - low
+            low = np.where(conflict, 0.0, np.maximum(low, 0.0))
+            high = np.where(conflict, width, high)
+            mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
+        else:
+            mid = low = high = np.full(q.size, np.nan)
+        retry = np.zeros(q.size, dtype=bool)
+        if not self.last_answered and self.last_request is not None:
+            retry[0] = self.last_request.raw == req_raws[0]
+        columns = {
+            "t_request_end_ns": t_end[q], "t_response_start_ns": t_start[r], "station": addrs[q],
+            "function": fcs[q], "outcome": outcome, "exception_code": np.where(is_exc, codes, 0), "retry": retry,
+            "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
+            "request_raw": req_raws, "response_raw": rsp_raws,
+        }
+        events: list[Damage] = []
+        for k in np.flatnonzero(conflict).tolist():
+            events.append(Damage("timing_conflict", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                                 f"station {rsp_raws[k][0]}'s answer would have begun {before[k]:.3f} "
+                                 f"ms or more before its request ended: the character format or the adapter's "
+                                 f"latency is not what the capture states (response time widened to "
+                                 f"[0, {high[k]:.3f}] ms)"))
+        short = np.flatnonzero(~conflict & (high * 1e6 < self.t35_ns))
+        events += [Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                          f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
+                          f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()]
+        last = int(q[-1])
+        self.absorb_regular(Frame(port, raws[last], int(lo[last]), int(hi[last]), char_ns, "request"),
+                            addrs[q], mid * 1e6)
+        return columns, events
 
     # -- internals ----------------------------------------------------------------------------------
     def _on_request(self, req: Frame) -> None:

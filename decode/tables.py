@@ -13,12 +13,22 @@ import numpy as np
 import pandas as pd
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
 
+#: Version of the table layout (docs/tables.md). 2: protocol-neutral columns added (protocol, source,
+#: destination, service, result_code); every column of version 1 is unchanged.
+SCHEMA_VERSION = 2
+
+#: Protocol-neutral columns each table gains after its version-1 columns (docs/tables.md).
+NEUTRAL_FRAME_COLUMNS = ("protocol", "source", "destination", "service")
+NEUTRAL_TRANSACTION_COLUMNS = ("protocol", "source", "destination", "service", "result_code")
+NEUTRAL_EVENT_COLUMNS = ("protocol",)
+
 FRAME_COLUMNS = ("t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port", "address", "function", "length",
                  "direction", "raw")
 TRANSACTION_COLUMNS = ("t_request_end_ns", "t_response_start_ns", "station", "function", "outcome",
                        "exception_code", "retry", "response_ms", "response_ms_low", "response_ms_high",
                        "request_raw", "response_raw")
 EVENT_COLUMNS = ("t_ns", "kind", "station", "port", "raw", "detail")
+_V1_COLUMNS = frozenset(FRAME_COLUMNS) | frozenset(TRANSACTION_COLUMNS) | frozenset(EVENT_COLUMNS)
 
 _FRAME_TYPES = {"t_start_ns": np.int64, "t_end_ns": np.int64, "t_end_lo_ns": np.int64, "t_end_hi_ns": np.int64,
                 "port": np.uint8, "address": np.uint8, "function": np.uint8, "length": np.int32, "direction": np.int8}
@@ -59,31 +69,45 @@ def _objects(chunks: list[dict], name: str) -> pd.Series:
     return pd.Series(values, dtype=object)
 
 
-def frames_frame(chunks: list[dict]) -> pd.DataFrame:
+def _neutral(data: dict, n: int, proto, hook_name: str) -> list[str]:
+    """Add the protocol-neutral columns to ``data`` (built in one DataFrame with the rest); their names."""
+    data["protocol"] = pd.Categorical.from_codes(np.zeros(n, np.int8), dtype=pd.CategoricalDtype([proto.name]),
+                                                 validate=False)
+    hook = getattr(proto, hook_name, None) if hook_name else None
+    if hook is not None:
+        data.update(hook(data))
+    return [c for c in data if c not in _V1_COLUMNS]
+
+
+def frames_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
     data = {name: _concat(chunks, name, _FRAME_TYPES[name]) for name in FRAME_COLUMNS if name != "raw"}
     data["direction"] = pd.Categorical.from_codes(data["direction"], categories=list(DIRECTIONS))
     data["raw"] = _objects(chunks, "raw")
-    return pd.DataFrame(data, columns=list(FRAME_COLUMNS))
+    extra = [] if proto is None else _neutral(data, len(data["raw"]), proto, "frame_fields_columns")
+    return pd.DataFrame(data, columns=list(FRAME_COLUMNS) + extra)
 
 
-def transactions_frame(chunks: list[dict]) -> pd.DataFrame:
+def transactions_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
     data = {name: _concat(chunks, name, _TXN_TYPES[name]) for name in TRANSACTION_COLUMNS
             if name not in ("request_raw", "response_raw")}
     data["outcome"] = pd.Categorical.from_codes(data["outcome"], categories=list(OUTCOMES))
     data["request_raw"] = _objects(chunks, "request_raw")
     data["response_raw"] = _objects(chunks, "response_raw")
-    return pd.DataFrame(data, columns=list(TRANSACTION_COLUMNS))
+    extra = [] if proto is None else _neutral(data, len(data["request_raw"]), proto, "transaction_fields_columns")
+    return pd.DataFrame(data, columns=list(TRANSACTION_COLUMNS) + extra)
 
 
-def events_frame(events: list[Damage]) -> pd.DataFrame:
-    return pd.DataFrame({
+def events_frame(events: list[Damage], proto=None) -> pd.DataFrame:
+    data = {
         "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
         "kind": pd.Categorical([e.kind for e in events], categories=list(EVENT_KINDS)),
         "station": np.array([e.station for e in events], dtype=np.int16),
         "port": np.array([e.port for e in events], dtype=np.uint8),
         "raw": pd.Series([e.raw for e in events], dtype=object),
         "detail": pd.Series([e.detail for e in events], dtype=object),
-    }, columns=list(EVENT_COLUMNS))
+    }
+    extra = [] if proto is None else _neutral(data, len(events), proto, "")
+    return pd.DataFrame(data, columns=list(EVENT_COLUMNS) + extra)
 
 
 def frames_table(frames: list[Frame]) -> pd.DataFrame:
@@ -110,10 +134,11 @@ class DecodeOutput:
     events: pd.DataFrame
 
     @classmethod
-    def from_objects(cls, items: list) -> DecodeOutput:
+    def from_objects(cls, items: list, proto=None) -> DecodeOutput:
+        """Tables of objects; with ``proto``, the protocol-neutral columns too (schema version 2)."""
         col = Collector()
         col.add_objects(items)
-        return col.output()
+        return col.output(proto)
 
 
 class Collector:
@@ -153,8 +178,25 @@ class Collector:
             self.txn_chunks.append(transaction_columns(self._txns))
             self._txns = []
 
-    def output(self) -> DecodeOutput:
+    def output(self, proto=None) -> DecodeOutput:
+        """The tables; with ``proto`` (decode/protocols/), the protocol-neutral columns too (schema version 2)."""
         self._close_frames()
         self._close_txns()
-        return DecodeOutput(frames_frame(self.frame_chunks), transactions_frame(self.txn_chunks),
-                            events_frame(self.events))
+        return DecodeOutput(frames_frame(self.frame_chunks, proto), transactions_frame(self.txn_chunks, proto),
+                            events_frame(self.events, proto))
+
+
+def add_neutral_columns(out: DecodeOutput, proto) -> DecodeOutput:
+    """``out`` (version-1 tables) with the protocol-neutral columns of ``proto`` appended (schema version 2)."""
+    tables = []
+    for table, hook in ((out.frames, "frame_fields_columns"), (out.transactions, "transaction_fields_columns"),
+                        (out.events, None)):
+        data = {c: table[c] for c in table.columns}
+        if hook is None:
+            data["protocol"] = pd.Categorical.from_codes(np.zeros(len(table), np.int8),
+                                                         dtype=pd.CategoricalDtype([proto.name]))
+            extra = ["protocol"]
+        else:
+            extra = _neutral(data, len(table), proto, hook)
+        tables.append(pd.DataFrame(data, columns=list(table.columns) + extra, index=table.index))
+    return DecodeOutput(*tables)

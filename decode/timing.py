@@ -1,135 +1,35 @@
-"""Serial character format and the Modbus serial-line silence intervals.
+"""Modbus serial-line silence intervals t1.5 and t3.5 from the serial character format.
 
-A character on the wire is a start bit, the data bits, an optional parity bit and the stop
-bits. Its duration (the character time ``c``) sets every other interval: t1.5 (the longest
-gap allowed inside a frame) and t3.5 (the shortest silence between frames). Above 19200 baud
-the Modbus serial-line specification recommends fixed values instead, because the computed
-ones become too short for real UART timers.
-
-The format kept here is the *bus's* format (for example 8E1), which is not always the
-format the host port was opened with: a pseudo-terminal in tests is opened 8N1.
+t1.5 is the longest gap allowed inside a frame and t3.5 the shortest silence between
+frames; both are multiples of the character time. Above 19200 baud the Modbus serial-line
+specification recommends fixed values instead, because the computed ones become too short
+for real UART timers. The character format itself lives on the ground floor
+(:mod:`buswitness.serial`) and is re-exported here for older imports.
 """
 
 from __future__ import annotations
 
-import re
-from dataclasses import dataclass
-
-from buswitness.errors import SerialFormatError
-
-PARITIES = {"N": "none", "E": "even", "O": "odd", "M": "mark", "S": "space"}
+from buswitness.serial import COMMON_BAUD_RATES, PARITIES, SerialFormat, parse_baud
 
 #: Above this rate the specification's fixed timer values apply (MSL V1.02 p13, remark).
 FIXED_TIMER_ABOVE_BAUD = 19200
 FIXED_T15_S = 750e-6
 FIXED_T35_S = 1.750e-3
 
-#: Rates the trade uses on RS-485 (common practice); ``detect`` tries these.
-COMMON_BAUD_RATES = (1200, 2400, 4800, 9600, 19200, 38400, 57600, 115200)
 
-_SHORT_FORM = re.compile(r"^\s*([5-8])\s*([NEOMSneoms])\s*(1|1\.5|2)\s*$")
-
-
-@dataclass(frozen=True)
-class SerialFormat:
-    """Baud rate and character format of a serial line, e.g. ``SerialFormat(19200, 8, "E", 1)``."""
-
-    baud: int = 19200
-    data_bits: int = 8
-    parity: str = "E"
-    stop_bits: float = 1
-
-    def __post_init__(self) -> None:
-        if not isinstance(self.baud, int) or isinstance(self.baud, bool) or not 50 <= self.baud <= 4_000_000:
-            raise SerialFormatError(
-                f"baud rate {self.baud!r} is not a usable serial rate (expected a whole number from 50 to "
-                f"4000000, e.g. 9600 or 19200)"
-            )
-        if self.data_bits not in (5, 6, 7, 8):
-            raise SerialFormatError(f"{self.data_bits!r} data bits is not a serial character size (5 to 8)")
-        if self.parity not in PARITIES:
-            raise SerialFormatError(
-                f"parity {self.parity!r} is not one of N (none), E (even), O (odd), M (mark), S (space)"
-            )
-        if self.stop_bits not in (1, 1.5, 2):
-            raise SerialFormatError(f"{self.stop_bits!r} stop bits is not possible (1, 1.5 or 2)")
-
-    @classmethod
-    def parse(cls, short_form: str, baud: int = 19200) -> SerialFormat:
-        """Parse the usual short form (``8E1``, ``8N2``, ``7E1``) at the given baud rate."""
-        match = _SHORT_FORM.match(short_form or "")
-        if not match:
-            raise SerialFormatError(
-                f"character format {short_form!r} is not understood: write data bits, parity and stop bits, "
-                f"e.g. 8E1 (Modbus RTU default), 8N2 or 8N1"
-            )
-        data, parity, stop = match.groups()
-        stop_bits: float = 1.5 if stop == "1.5" else int(stop)
-        return cls(baud=int(baud), data_bits=int(data), parity=parity.upper(), stop_bits=stop_bits)
-
-    @property
-    def short_form(self) -> str:
-        """The format as ``8E1``; the baud rate is not part of it."""
-        stop = "1.5" if self.stop_bits == 1.5 else str(int(self.stop_bits))
-        return f"{self.data_bits}{self.parity}{stop}"
-
-    def __str__(self) -> str:
-        return f"{self.baud} {self.short_form}"
-
-    @property
-    def bits_per_char(self) -> float:
-        """Bits on the wire per character: start + data + parity + stop."""
-        return 1 + self.data_bits + (0 if self.parity == "N" else 1) + self.stop_bits
-
-    @property
-    def char_time_s(self) -> float:
-        """Duration of one character on the wire, in seconds."""
-        return self.bits_per_char / self.baud
-
-    @property
-    def bit_time_s(self) -> float:
-        return 1.0 / self.baud
-
-    @property
-    def t15_s(self) -> float:
-        """Longest silence allowed between two characters of one frame (t1.5)."""
-        if self.baud > FIXED_TIMER_ABOVE_BAUD:
-            return FIXED_T15_S
-        return 1.5 * self.char_time_s
-
-    @property
-    def t35_s(self) -> float:
-        """Shortest silence that separates two frames (t3.5)."""
-        if self.baud > FIXED_TIMER_ABOVE_BAUD:
-            return FIXED_T35_S
-        return 3.5 * self.char_time_s
-
-    def frame_time_s(self, n_bytes: int) -> float:
-        """Time the line is busy carrying ``n_bytes`` back-to-back characters."""
-        return n_bytes * self.char_time_s
-
-    def to_dict(self) -> dict:
-        return {"baud": self.baud, "format": self.short_form}
-
-    @classmethod
-    def from_dict(cls, data: dict) -> SerialFormat:
-        return cls.parse(str(data.get("format", "8E1")), int(data.get("baud", 19200)))
-
-    def overridden(self, baud: int | None = None, short_form: str | None = None) -> SerialFormat:
-        """This setting with the baud rate and/or the character format replaced, each half on its own.
-
-        ``--format 8N2`` on a 9600 capture keeps 9600; ``--baud`` alone keeps the format.
-        """
-        if baud is None and short_form is None:
-            return self
-        return SerialFormat.parse(short_form or self.short_form, self.baud if baud is None else baud)
+def t15_s(fmt: SerialFormat) -> float:
+    """Longest silence allowed between two characters of one Modbus RTU frame (t1.5)."""
+    if fmt.baud > FIXED_TIMER_ABOVE_BAUD:
+        return FIXED_T15_S
+    return 1.5 * fmt.char_time_s
 
 
-def parse_baud(text: str | int) -> int:
-    """Turn ``"19200"`` or ``19200`` into a checked baud rate."""
-    try:
-        baud = int(str(text).strip())
-    except ValueError:
-        raise SerialFormatError(f"baud rate {text!r} is not a number (e.g. 9600 or 19200)") from None
-    SerialFormat(baud=baud)  # validates
-    return baud
+def t35_s(fmt: SerialFormat) -> float:
+    """Shortest silence that separates two Modbus RTU frames (t3.5)."""
+    if fmt.baud > FIXED_TIMER_ABOVE_BAUD:
+        return FIXED_T35_S
+    return 3.5 * fmt.char_time_s
+
+
+__all__ = ["COMMON_BAUD_RATES", "FIXED_T15_S", "FIXED_T35_S", "FIXED_TIMER_ABOVE_BAUD", "PARITIES",
+           "SerialFormat", "parse_baud", "t15_s", "t35_s"]

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR
-from buswitness.decode.timing import SerialFormat
+from buswitness.serial import SerialFormat
 
 
 def char_bits(values: np.ndarray, fmt: SerialFormat) -> np.ndarray:

@@ -18,8 +18,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from buswitness.capture.fileformat import CaptureHeader, CaptureWriter, PortInfo, RecordBatch
-from buswitness.decode.timing import SerialFormat
+from buswitness.decode.timing import t35_s
 from buswitness.errors import OutputError, UsageError
+from buswitness.serial import SerialFormat
 from buswitness.simulate.adapter import AdapterModel
 from buswitness.simulate.bus import Bus, expand_windows
 from buswitness.simulate.fastpath import PlainSchedule, is_plain
@@ -156,7 +157,7 @@ class SimResult:
             rows.append((a, b, "noise_burst", -1,
                          f"{ev.detail or 'noise burst on the line'} (bit-error rate {ev.bit_error_rate:g})"))
         present: dict[int, int] = {}
-        t35_ms = sc.serial.t35_s * 1e3
+        t35_ms = t35_s(sc.serial) * 1e3
         for st in sc.stations:
             if st.absent:
                 rows.append((t0, t1, "absent", st.address, f"{st.name} is never on the bus"))

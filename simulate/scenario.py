@@ -16,8 +16,8 @@ from pathlib import Path
 from typing import Any
 
 import tomllib
-from buswitness.decode.timing import SerialFormat
 from buswitness.errors import InputFileError, SerialFormatError, UsageError
+from buswitness.serial import SerialFormat
 
 #: Function codes the simulated master can poll, with what the request carries.
 READ_FUNCTIONS = (1, 2, 3, 4)

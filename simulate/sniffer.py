@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from buswitness.capture.fileformat import FLAG_LINE_ERROR
-from buswitness.decode.timing import SerialFormat
+from buswitness.serial import SerialFormat
 from buswitness.simulate.bus import MASTER, WireSlice
 from buswitness.simulate.line import char_bits, invert, low_intervals, merge_intervals, receive
 

@@ -11,7 +11,7 @@ from buswitness.capture.fileformat import Record, RecordBatch
 from buswitness.decode import Decoder, DecoderConfig, append_crc
 from buswitness.decode.bulk import frame_only
 from buswitness.decode.framer import RegionScanner, split_frames
-from buswitness.decode.tables import DecodeOutput
+from buswitness.decode.tables import DecodeOutput, add_neutral_columns
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from test_decode_properties import VECTORS
@@ -36,7 +36,7 @@ def _both_ways(batches: list[RecordBatch], cfg: DecoderConfig) -> None:
         for r in b.records():
             objs += one.feed(r.port, r.t_ns, r.data, r.flags)
     objs += one.flush_events()
-    ref = DecodeOutput.from_objects(objs)
+    ref = add_neutral_columns(DecodeOutput.from_objects(objs), cfg.proto)  # the tables add them (schema 2)
     for table in ("frames", "transactions", "events"):
         _same(pd.concat([getattr(o, table) for o in outs], ignore_index=True), getattr(ref, table))
 
@@ -212,3 +212,18 @@ def test_four_wire_capture_decodes_the_same_in_bulk_and_record_by_record(monkeyp
     cfg = DecoderConfig(serial=FMT_19200, latency_ms={0: latency_ms, 1: latency_ms},
                         port_roles={0: "master", 1: "slaves"})
     _both_ways(batches, cfg)
+
+
+# Found by test_fuzzed_records_decode_the_same_in_bulk_and_record_by_record on 2026-12-02 while moving the
+# decoder behind the protocol seam; the commit before the move (301244a) gives the same difference, so it is
+# the pairing's own behaviour, left for its owner: a request repeated after a line-error-marked answer pairs
+# as timeout-then-corrupt on the bulk path and corrupt-then-timeout record by record.
+@pytest.mark.xfail(strict=True, reason="pre-existing: bulk and per-record pairing differ on a marked retry")
+def test_marked_retry_decodes_the_same_in_bulk_and_record_by_record(monkeypatch):
+    import buswitness.decode.decoder as decoder_module
+    monkeypatch.setattr(decoder_module, "BULK_MIN_BYTES", 0)
+    records = [(0, b"\x01\x01\x00\x13\x00\x13\x8c\x02", 1), (0, b"\x01\x01\x03\xcdk\x05B\x82", 1),
+               (0, b"\x01\x01\x00\x13\x00\x13\x8c\x02", 0), (0, b"\x01\x01\x00\x13\x00\x13\x8c\x02", 1)]
+    recs = [Record(0, 1_000_000_000, data, flags) for _dt, data, flags in records]
+    batches = [RecordBatch.from_records([r]) for r in recs]
+    _both_ways(batches, DecoderConfig(serial=FMT_19200, latency_ms={0: 1.0}))

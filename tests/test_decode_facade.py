@@ -50,8 +50,10 @@ def test_batch_tables_match_the_object_view():
     assert len(a.frames) + len(b.frames) == len(of_type(objs, Frame))
     txns = list(a.transactions.itertuples()) + list(b.transactions.itertuples())
     assert [t.outcome for t in txns] == [t.outcome for t in of_type(objs, Transaction)]
+    # schema version 2 (docs/tables.md): version 1's columns unchanged, the protocol-neutral ones after them
     assert list(a.frames.columns) == ["t_start_ns", "t_end_ns", "t_end_lo_ns", "t_end_hi_ns", "port", "address",
-                                      "function", "length", "direction", "raw"]
+                                      "function", "length", "direction", "raw",
+                                      "protocol", "source", "destination", "service"]
 
 
 def test_unknown_port_role_is_a_clear_error():

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from buswitness.capture import detect
+from buswitness import detect
 from buswitness.capture.fileformat import CaptureHeader, CaptureReader, CaptureWriter, PortInfo
 from buswitness.decode.crc import append_crc
 from buswitness.decode.timing import SerialFormat

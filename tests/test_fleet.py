@@ -74,7 +74,7 @@ def test_tables_carry_capture_id_typed_utc_times_protocol_and_schema_version(dat
         assert types[column] in ("TIMESTAMP WITH TIME ZONE", "TIMESTAMP_NS WITH TIME ZONE", "TIMESTAMPTZ_NS",
                                  "TIMESTAMPTZ"), (table, types[column])
         assert {"capture_id", "protocol", "schema_version", "site", "bus", "date"} <= set(types), table
-    assert con.execute("SELECT DISTINCT protocol, schema_version FROM frames").fetchall() == [("rtu", 1)]
+    assert con.execute("SELECT DISTINCT protocol, schema_version FROM frames").fetchall() == [("modbus-rtu", 1)]
     # the first frame of each night lies just after 22:00 UTC of its date
     rows = con.execute("SELECT date, min(t_start) FROM frames WHERE bus = 'east' GROUP BY date ORDER BY date").fetchall()
     assert all(t.hour == 22 and t.minute == 0 and t.date() == d for d, t in rows)

@@ -9,7 +9,9 @@ import sys
 import pytest
 
 SUBPACKAGES = ["buswitness", "buswitness.capture", "buswitness.decode", "buswitness.analysis", "buswitness.cli",
-               "buswitness.simulate", "buswitness.errors", "buswitness.fsutil"]
+               "buswitness.simulate", "buswitness.errors", "buswitness.fsutil", "buswitness.records", "buswitness.serial",
+               "buswitness.protocols", "buswitness.detect", "buswitness.decode.protocols",
+               "buswitness.decode.protocols.profibus_dp"]
 
 
 @pytest.mark.parametrize("name", SUBPACKAGES)

@@ -17,11 +17,12 @@ from buswitness.analysis.rules.common import (
     slowest_examples,
 )
 from buswitness.analysis.rules.thresholds import Thresholds
+from buswitness.decode.timing import t15_s, t35_s
 
 
 def _t_ms(result: AnalysisResult) -> tuple[float, float]:
     serial = result.header.serial
-    return serial.t15_s * 1e3, serial.t35_s * 1e3
+    return t15_s(serial) * 1e3, t35_s(serial) * 1e3
 
 
 def _latency_text(result: AnalysisResult) -> str:

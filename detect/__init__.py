@@ -18,8 +18,10 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from buswitness.capture.fileformat import FLAG_BREAK, FLAG_LINE_ERROR, Record, RecordBatch
-from buswitness.decode.timing import COMMON_BAUD_RATES, SerialFormat
+from buswitness.decode.protocols import get as get_protocol
+from buswitness.protocols import DEFAULT as DEFAULT_PROTOCOL
+from buswitness.records import FLAG_BREAK, FLAG_LINE_ERROR, Record, RecordBatch
+from buswitness.serial import COMMON_BAUD_RATES, SerialFormat
 
 #: Formats tried by default, most common on Modbus RTU first (MSL V1.02 §2.5.1: even parity required,
 #: no parity then needs two stop bits).
@@ -96,7 +98,19 @@ class CharTime:
 FULL_PACKET = 62
 
 
-def estimate_char_time(data: bytes, t_ns: np.ndarray, lengths: np.ndarray) -> CharTime | None:
+def _split(data: bytes, protocol: str) -> list:
+    """Frame and damage spans of ``data`` taken whole, by the protocol's own scanner."""
+    proto = get_protocol(protocol)
+    split = getattr(proto, "split", None)
+    if split is not None:
+        return list(split(data))
+    out: list = []
+    proto.new_scanner(0).scan(data, len(data), True, out)
+    return out
+
+
+def estimate_char_time(data: bytes, t_ns: np.ndarray, lengths: np.ndarray,
+                       protocol: str = DEFAULT_PROTOCOL) -> CharTime | None:
     """Character time from reads that fall inside one CRC-valid frame.
 
     A frame's bytes are back to back. When a read ``b`` lies inside a frame that began
@@ -105,13 +119,11 @@ def estimate_char_time(data: bytes, t_ns: np.ndarray, lengths: np.ndarray) -> Ch
     ``b`` took the interval between the two reads to arrive, within one character:
     ``c = interval / n`` (TIMING.md). None when fewer than ``MIN_TIMING_PAIRS`` reads qualify.
     """
-    from buswitness.decode import split_frames
-
     t = np.asarray(t_ns, dtype=np.int64)
     n = np.asarray(lengths, dtype=np.int64)
     if t.shape[0] < 3 or int(n.sum()) != len(data):
         return None
-    frames = [(sp.start, sp.end) for sp in split_frames(data) if sp.shape]
+    frames = [(sp.start, sp.end) for sp in _split(data, protocol) if sp.shape]
     if not frames:
         return None
     f_start = np.array([a for a, _ in frames], dtype=np.int64)
@@ -133,10 +145,12 @@ def estimate_char_time(data: bytes, t_ns: np.ndarray, lengths: np.ndarray) -> Ch
     return CharTime(float(np.median(ratios)), len(ratios))
 
 
-def _explained(data: bytes) -> float:
-    from buswitness.decode import explained_fraction
-
-    return float(explained_fraction(data))
+def _explained(data: bytes, protocol: str = DEFAULT_PROTOCOL) -> float:
+    proto = get_protocol(protocol)
+    share = getattr(proto, "explained_fraction", None)
+    if share is not None:
+        return float(share(data))
+    return sum(s.end - s.start for s in _split(data, protocol) if s.shape) / len(data) if data else 0.0
 
 
 @dataclass(frozen=True)
@@ -172,13 +186,13 @@ class Score:
         return "; ".join(parts)
 
 
-def score_observation(setting: SerialFormat, obs: Observation) -> Score:
-    """Score what a receiver at ``setting`` delivered."""
-    ct = estimate_char_time(obs.data, obs.t_ns, obs.lengths)
+def score_observation(setting: SerialFormat, obs: Observation, protocol: str = DEFAULT_PROTOCOL) -> Score:
+    """Score what a receiver at ``setting`` delivered (framed as ``protocol``)."""
+    ct = estimate_char_time(obs.data, obs.t_ns, obs.lengths, protocol)
     timing: bool | None = None
     if ct is not None:
         timing = abs(ct.seconds - setting.char_time_s) <= TIMING_TOLERANCE * setting.char_time_s
-    return Score(setting, len(obs.data), _explained(obs.data) if obs.data else 0.0, obs.marked, obs.breaks,
+    return Score(setting, len(obs.data), _explained(obs.data, protocol) if obs.data else 0.0, obs.marked, obs.breaks,
                  timing, None if ct is None else ct.seconds)
 
 
@@ -188,13 +202,14 @@ def _rank_key(s: Score) -> tuple:
             -s.value, s.setting.baud)
 
 
-def rank_settings(sample: Callable[[SerialFormat], Sample], candidates: Iterable[SerialFormat]) -> list[Score]:
+def rank_settings(sample: Callable[[SerialFormat], Sample], candidates: Iterable[SerialFormat],
+                  protocol: str = DEFAULT_PROTOCOL) -> list[Score]:
     """Listen at every candidate setting (``sample`` returns what a receiver set so delivered) and rank them.
 
     Best first: by the share of bytes in valid, unmarked frames (2% steps), then by whether
     the timestamps agree with the format's character time, then by the usual Modbus order.
     """
-    scores = [score_observation(c, Observation.of(sample(c))) for c in candidates]
+    scores = [score_observation(c, Observation.of(sample(c)), protocol) for c in candidates]
     return sorted(scores, key=_rank_key)
 
 
@@ -282,7 +297,7 @@ class FileCheck:
 
 
 def check_capture(setting: SerialFormat, batches: Iterable[RecordBatch], max_bytes: int = 2 << 20,
-                  port: int = 0) -> FileCheck:
+                  port: int = 0, protocol: str = DEFAULT_PROTOCOL) -> FileCheck:
     """Check one port of a capture (its first ``max_bytes`` of data) against the settings in its header."""
     taken: list[Record] = []
     total = 0
@@ -295,6 +310,6 @@ def check_capture(setting: SerialFormat, batches: Iterable[RecordBatch], max_byt
                 total += len(r.data)
         if total >= max_bytes:
             break
-    score = score_observation(setting, Observation.of(taken))
+    score = score_observation(setting, Observation.of(taken), protocol)
     implied = None if score.char_time_s is None else score.char_time_s * setting.baud
     return FileCheck(setting, score, implied)
