@@ -60,20 +60,29 @@ def run(args: argparse.Namespace) -> int:
     sc = load_scenario(args.scenario)
     res = simulate(sc, duration_s=args.duration, seed=args.seed, latency_ms=args.latency_ms, baud=args.baud,
                    bus_format=args.char_format, keep_tables=bool(args.truth))
+    info = _write(res, args)
+    s = res.scenario
+    print(f"simulated {res.duration_s:g} s of scenario {s.name} ({s.serial}, adapter latency "
+          f"{s.adapter.latency_ms:g} ms, seed {res.seed}) in {info['seconds']:.1f} s")
+    _wrote(args, info, "frames", "frames, transactions, events, per-station figures")
+    return EXIT_OK
+
+
+def _write(sim, args: argparse.Namespace) -> dict:
+    """Write the capture (and truth); on any failure remove what was begun, so nothing half written stays."""
     try:
-        info = res.write(args.output, args.truth)
+        return sim.write(args.output, args.truth)
     except BaseException:
         for path in (args.output, args.truth):
             if path and os.path.exists(path):
                 os.unlink(path)
         raise
-    s = res.scenario
-    print(f"simulated {res.duration_s:g} s of scenario {s.name} ({s.serial}, adapter latency "
-          f"{s.adapter.latency_ms:g} ms, seed {res.seed}) in {info['seconds']:.1f} s")
-    print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} frames on the wire")
+
+
+def _wrote(args: argparse.Namespace, info: dict, units: str, truth: str) -> None:
+    print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} {units} on the wire")
     if args.truth:
-        print(f"wrote {args.truth}: ground truth (frames, transactions, events, per-station figures)")
-    return EXIT_OK
+        print(f"wrote {args.truth}: ground truth ({truth})")
 
 
 def _run_profibus(args: argparse.Namespace, profibus) -> int:
@@ -81,10 +90,8 @@ def _run_profibus(args: argparse.Namespace, profibus) -> int:
     if args.scenario not in (profibus.NAME, "pumpstation"):
         raise UsageError(f"the Profibus DP scenario is {profibus.NAME}; {args.scenario!r} is a Modbus scenario")
     sim = profibus.simulate_profibus(duration_s=args.duration or 20.0, seed=args.seed, baud=args.baud)
-    info = sim.write(args.output, args.truth)
+    info = _write(sim, args)
     print(f"simulated {sim.duration_s:g} s of scenario {profibus.NAME} (Profibus DP, {sim.sc.serial}, seed {sim.seed}) "
           f"in {info['seconds']:.1f} s")
-    print(f"wrote {args.output}: {info['records']} records, {info['bytes']} bytes, {info['frames']} telegrams on the wire")
-    if args.truth:
-        print(f"wrote {args.truth}: ground truth (per-slave requests, answers, retries, drop-outs; tokens per master)")
+    _wrote(args, info, "telegrams", "per-slave requests, answers, retries, drop-outs; tokens per master")
     return EXIT_OK
