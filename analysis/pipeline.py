@@ -265,11 +265,18 @@ def _sample_records(source, limit: int) -> dict[int, tuple[np.ndarray, np.ndarra
     return {p: (np.concatenate(t[p])[:limit], np.concatenate(n[p])[:limit]) for p in t}
 
 
-def assess_delivery(source, limit: int = DELIVERY_SAMPLE_RECORDS) -> list:
+def assess_delivery(source, limit: int = DELIVERY_SAMPLE_RECORDS, protocol: str | None = None) -> list:
     """Per port: the adapter latency (estimated where the header does not state it) and the measured
-    character pitch (``buswitness.decode.delivery``), from a bounded first pass over the records."""
+    character pitch (``buswitness.decode.delivery``), from a bounded first pass over the records.
+
+    The pitch is measured for Modbus only: its model reads whole frames from back-to-back reads, and
+    the short Profibus telegrams with their idle gaps at 1.5 Mbit/s read as slow characters.
+    """
     from buswitness.decode.delivery import assess_port
+    from buswitness.protocols import DEFAULT, canonical
     header = source.header
+    name = canonical(protocol or str(header.extra.get("protocol", DEFAULT)))
+    modbus = name.startswith("modbus")
     if header.timing == "none":
         return []
     samples = _sample_records(source, limit)
@@ -277,7 +284,7 @@ def assess_delivery(source, limit: int = DELIVERY_SAMPLE_RECORDS) -> list:
     for p in header.ports:
         t, n = samples.get(p.id, (np.zeros(0, np.int64), np.zeros(0, np.int64)))
         stated = p.latency_ms if p.latency_ms else None
-        out.append(assess_port(p.id, t, n, header.serial, stated, p.latency_source))
+        out.append(assess_port(p.id, t, n, header.serial, stated, p.latency_source, measure_pitch_too=modbus))
     return out
 
 
@@ -309,7 +316,7 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     """
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
-    delivery = assess_delivery(source)
+    delivery = assess_delivery(source, protocol=options.protocol)
     header, decoding = delivery_headers(source.header, delivery)
     cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)
     paths = list(getattr(source, "paths", []))

@@ -383,10 +383,11 @@ class PortDelivery:
 
 def assess_port(port: int, t_ns: np.ndarray, n: np.ndarray, stated: SerialFormat,
                 latency_ms: float | None, latency_source: str = "unknown",
-                packet_bytes: int = PACKET_BYTES) -> PortDelivery:
+                packet_bytes: int = PACKET_BYTES, measure_pitch_too: bool = True) -> PortDelivery:
     """Estimate the latency when ``latency_ms`` is None, measure the pitch, and choose what the model uses.
 
     ``t_ns``/``n`` are one port's records with bytes, in time order (a bounded sample is enough).
+    ``measure_pitch_too`` False skips the pitch (a protocol whose traffic does not fit its model).
     """
     t, k = merge_same_time(t_ns, n)
     estimate = None
@@ -397,7 +398,7 @@ def assess_port(port: int, t_ns: np.ndarray, n: np.ndarray, stated: SerialFormat
         latency = estimate.latency_ms
         if estimate.source == "estimated" or latency > FALLBACK_LATENCY_MS:
             source = "estimated"
-    pitch = measure_pitch(t, k, latency, stated, packet_bytes)
+    pitch = measure_pitch(t, k, latency, stated, packet_bytes) if measure_pitch_too else None
     measured = None
     if pitch is not None and pitch_disagrees(pitch, stated.char_time_s):
         measured = format_for_pitch(pitch, stated)
