@@ -78,9 +78,12 @@ def summary_dict(result: AnalysisResult) -> dict:
                              "smallest and largest midpoints, as uncertain as the intervals they come from",
         },
         "timeout": result.timeout.to_dict(),
+        "protocol": result.protocol,
         "stations": stations,
         "bus": bus,
         "findings": [f.to_dict() for f in result.findings],
+        # the protocol's own figures (Profibus DP: drop-outs, re-parameterisations, token rotation per master)
+        **({"protocol_figures": result.protocol_figures} if result.protocol_figures else {}),
     })
 
 
