@@ -1,6 +1,8 @@
 """The bus description: read as written, a station map stays a station map, mistakes name the line and the fix.
 
 Check values from outside the project carry their source inline (MSL = MODBUS over Serial Line V1.02).
+
+Source: check values are the test's own fictional plant; rule limits cite MSL V1.02 inline where used.
 """
 
 from __future__ import annotations

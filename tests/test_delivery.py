@@ -8,6 +8,8 @@ Outside facts: an RTU character is 11 bits (start, 8 data, parity, stop), and wi
 two stop bits keep it 11 (MSL §2.5.1 p12); the adapter sends 62 data bytes per full packet
 and on each timer expiry, the timer restarting after each packet (AN232B-04, as in
 REFERENCES.md); 16 ms is the usual factory timer and 1 ms the low-latency one (TIMING.md).
+
+Source: character sizes from MSL V1.02 §2.5.1 p12 (cited inline); the 62-byte packet and timer grid are common practice (TIMING.md); everything else compares with what the test itself made.
 """
 
 from __future__ import annotations

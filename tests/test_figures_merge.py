@@ -2,6 +2,8 @@
 
 The oracle is the analysis of the whole rotated set (itself checked against the simulator's
 truth in test_analysis_truth.py): merging must not change a single count or histogram bin.
+
+Source: the checks compare with what the test itself made (one pass over the whole capture); no check value comes from outside the project.
 """
 
 from __future__ import annotations

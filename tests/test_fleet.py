@@ -4,6 +4,8 @@ Bus "east" has a station that degrades from night 4 and is fixed on night 6 (sim
 bus "west" stays healthy. The oracles: the simulator's own schedule of the fault (which nights,
 which station), and each capture's summary.json figures, which the DuckDB queries over the
 dataset must reproduce exactly.
+
+Source: the checks compare with what the test itself made (the simulator's schedule of the fault, each capture's own summary.json); no check value comes from outside the project.
 """
 
 from __future__ import annotations

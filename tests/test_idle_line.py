@@ -8,6 +8,8 @@ Frames here are built with an independent encoder: crcmod's predefined "modbus" 
 CRC-16/MODBUS of MSL V1.02 §2.5.1.2 and appendix B), never the decoder's own CRC code. Field
 layouts are those of MAP V1.1b3 §6.3 (FC03) and §6.6 (FC06). The PARMRK escapes are those of
 termios(3): ``FF 00 X`` for a byte X with a parity or framing error, ``FF FF`` for a data 0xFF.
+
+Source: frames from crcmod's predefined "modbus" CRC and MAP V1.1b3 §6.3/§6.6 layouts, PARMRK escapes from termios(3), as named above; idle byte values 0x00/0xFE/0xFF are common practice.
 """
 
 from __future__ import annotations

@@ -1,6 +1,8 @@
 """The floors of the house: capture and decode never import each other (issue 13, ground floor).
 
 Walks every module's import statements (static, so a lazy import inside a function counts too).
+
+Source: the project's own layering rule (STYLE.md); no check value comes from outside the project.
 """
 
 from __future__ import annotations

@@ -4,6 +4,8 @@ path (Pairing.on_frame) give the same transactions and leave the same learnt sta
 Frames are Modbus RTU read-holding-registers requests and answers (MAP V1.1b3 section 6.3:
 FC03 request 8 bytes, answer 5 + 2N bytes; exception answer FC | 0x80 and a code, section 7),
 CRC from crcmod's predefined "modbus" CRC (an outside reference).
+
+Source: frames from MAP V1.1b3 §6.3 and crcmod's predefined "modbus" CRC, as named above; the check itself compares two paths of the project.
 """
 
 from __future__ import annotations

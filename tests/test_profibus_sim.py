@@ -3,6 +3,8 @@
 The simulator builds its telegrams on its own (simulate/profibus.py), the decoder frames and
 pairs them from the adapter's records; per-station counts must equal the truth, at 1.5 Mbit/s
 and at 187.5 kbit/s.
+
+Source: the checks compare with the simulator's truth; telegram layouts are checked against pyprofibus in tests/test_profibus_fdl.py; no check value here comes from outside the project.
 """
 
 from __future__ import annotations

@@ -1,4 +1,7 @@
-"""Outputs as sinks: analyze(source, sinks=[...]) feeds each one; progress is a callback, never drawn."""
+"""Outputs as sinks: analyze(source, sinks=[...]) feeds each one; progress is a callback, never drawn.
+
+Source: the checks compare with what the test itself made; no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 

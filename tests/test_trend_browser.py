@@ -1,4 +1,7 @@
-"""The trend page in headless Chromium: offline, no script errors, one chart per station drawn."""
+"""The trend page in headless Chromium: offline, no script errors, one chart per station drawn.
+
+Source: the checks compare with what the test itself made; no check value comes from outside the project.
+"""
 
 from __future__ import annotations
 
