@@ -20,9 +20,9 @@ from dataclasses import dataclass, field
 from fractions import Fraction
 from pathlib import Path
 
-import tomllib
 from buswitness.analysis.stationmap import StationInfo, StationMap
 from buswitness.errors import InputFileError
+from buswitness.tomlcompat import tomllib
 
 #: Default value of a device's built-in terminator when the description does not give one, ohm
 #: (common practice: 120 ohm for typical twisted pair).

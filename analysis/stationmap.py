@@ -18,9 +18,9 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import tomllib
 from buswitness.errors import InputFileError
 from buswitness.fsutil import read_text_input
+from buswitness.tomlcompat import tomllib
 
 
 @dataclass(frozen=True)

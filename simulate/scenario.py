@@ -15,9 +15,9 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-import tomllib
 from buswitness.errors import InputFileError, SerialFormatError, UsageError
 from buswitness.serial import SerialFormat
+from buswitness.tomlcompat import tomllib
 
 #: Function codes the simulated master can poll, with what the request carries.
 READ_FUNCTIONS = (1, 2, 3, 4)

@@ -8,11 +8,11 @@ import re
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
-import tomllib
 from buswitness.analysis.busplan import load_plan, parse_plan
 from buswitness.analysis.plandraw import draw_plan, health_colour
 from buswitness.analysis.planreport import render_plan_page
 from buswitness.analysis.planrules import check_plan
+from buswitness.tomlcompat import tomllib
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_captures" / "pumpstation-bus.toml"
 SVG = "{http://www.w3.org/2000/svg}"

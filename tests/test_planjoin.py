@@ -11,13 +11,13 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-import tomllib
 from buswitness.analysis.busplan import load_plan, parse_plan
 from buswitness.analysis.pipeline import AnalysisOptions, analyze
 from buswitness.analysis.planjoin import health, joined_findings
 from buswitness.analysis.planrules import PLAN_CAUTION, check_plan
 from buswitness.capture.sources import open_capture
 from buswitness.simulate import load_scenario, simulate
+from buswitness.tomlcompat import tomllib
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_captures" / "pumpstation-bus.toml"

@@ -8,9 +8,9 @@ a rule of thumb with no single source.
 from __future__ import annotations
 
 import pytest
-import tomllib
 from buswitness.analysis.busplan import parse_plan
 from buswitness.analysis.planrules import PLAN_CAUTION, RULES, SOURCES, check_plan
+from buswitness.tomlcompat import tomllib
 
 
 def plan_of(text: str):
