@@ -21,6 +21,19 @@ FRAME_COLUMNS = ("t_start_s", "t_end_s", "t_end_low_s", "t_end_high_s", "utc", "
 EVENT_COLUMNS = ("t_s", "utc", "kind", "station", "port", "hex", "detail")
 
 
+#: The ``utc`` columns: timestamps with their zone, in Parquet as ``timestamp[ns, tz=UTC]``.
+UTC_DTYPE = pd.DatetimeTZDtype("ns", "UTC")
+
+
+def _csv_form(table: pd.DataFrame) -> pd.DataFrame:
+    """``table`` with ``utc`` written as ISO 8601 with its offset (``2026-03-04T21:00:01.000000+00:00``), empty if unknown."""
+    if "utc" not in table:
+        return table
+    out = table.copy()
+    out["utc"] = table["utc"].dt.strftime("%Y-%m-%dT%H:%M:%S.%f+00:00").fillna("")
+    return out
+
+
 def _hex(values: pd.Series) -> pd.Series:
     return values.map(lambda b: bytes(b).hex(" "))
 
@@ -49,10 +62,11 @@ class TableExporter:
                 self.paths.append(path)
 
     def _utc(self, t_ns: pd.Series) -> pd.Series:
+        """Wall-clock times as real UTC timestamps (``datetime64[ns, UTC]``); NaT where the file has no clock."""
         if self.utc_anchor is None:
-            return pd.Series([""] * len(t_ns), index=t_ns.index)
-        stamps = pd.Timestamp(self.utc_anchor) + pd.to_timedelta(t_ns - self.t0_ns, unit="ns")
-        return stamps.dt.strftime("%Y-%m-%dT%H:%M:%S.%f").str[:-3] + "Z"
+            return pd.Series(pd.NaT, index=t_ns.index, dtype=UTC_DTYPE)
+        offset = pd.to_timedelta(t_ns.astype("int64") - self.t0_ns, unit="ns")
+        return (pd.Timestamp(self.utc_anchor, tz="UTC") + offset).astype(UTC_DTYPE)
 
     def _secs(self, t_ns: pd.Series) -> pd.Series:
         return (t_ns.astype("int64") - self.t0_ns) / 1e9
@@ -86,7 +100,7 @@ class TableExporter:
             return
         for name, table in self.shape(frames, tx, events).items():
             if name in self._csv:
-                table.to_csv(self._csv[name], index=False, header=name not in self._header_written,
+                _csv_form(table).to_csv(self._csv[name], index=False, header=name not in self._header_written,
                              float_format="%.6f")
                 self._header_written.add(name)
             if name in self._parquet_files:
@@ -109,7 +123,7 @@ class TableExporter:
                     name in self._parquet_files and name not in self._parquet):
                 table = self.shape(frames_empty, tx_empty, events_empty)[name]
                 if name in self._csv and name not in self._header_written:
-                    table.to_csv(self._csv[name], index=False)
+                    _csv_form(table).to_csv(self._csv[name], index=False)
                     self._header_written.add(name)
                 if name in self._parquet_files and name not in self._parquet:
                     self._write_parquet(name, table)
