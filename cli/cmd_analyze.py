@@ -69,6 +69,11 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
     # load, so a wrong path or a damaged header is refused at once.
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
+    if args.roles and len(args.roles) != len(source.header.ports):
+        from buswitness.errors import UsageError
+
+        raise UsageError(visible(f"--roles names {len(args.roles)} role(s) but {args.capture} holds "
+                                 f"{len(source.header.ports)} port(s); give one role per port"))
 
     from buswitness.analysis import AnalysisOptions
 

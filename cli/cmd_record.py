@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.common import (
+    DEFAULT_SERIAL,
     add_protocol_option,
     add_serial_options,
     check_port,
@@ -24,6 +25,7 @@ from buswitness.cli.common import (
     size_bytes,
 )
 from buswitness.errors import OutputError, UsageError
+from buswitness.fsutil import check_output_path
 from buswitness.serial import SerialFormat
 from buswitness.textsafe import visible
 from rich.console import RenderableType
@@ -33,8 +35,11 @@ if TYPE_CHECKING:
 
 HELP = "record a bus to a capture file through a serial adapter (listen-only)"
 
-DESCRIPTION = """Record everything one or two serial adapters receive into one capture file,
+DESCRIPTION = f"""Record everything one or two serial adapters receive into one capture file,
 with a host timestamp for every read, until --duration or --until, or Ctrl-C.
+
+The port is opened at {DEFAULT_SERIAL.baud} baud, {DEFAULT_SERIAL.short_form} (the Modbus RTU default) unless --baud and
+--format say otherwise; 'buswitness detect PORT' finds a bus's setting.
 
 Listen-only: buswitness never writes to the port, and asks the driver to leave RTS and DTR
 deasserted so a transceiver wired to them is not keyed (some drivers raise DTR/RTS when any
@@ -66,16 +71,28 @@ def seconds_until(text: str, now: datetime | None = None) -> float:
     return (target - now).total_seconds()
 
 
+#: Shortest rotation: a part per minute is already 1440 files a day; shorter makes a file per block.
+MIN_ROTATE_S = 60.0
+#: Smallest rotated part (1 MB): smaller parts are mostly header and index (common practice).
+MIN_ROTATE_BYTES = 1_000_000
+_ROTATE_TIME = re.compile(r"^\s*(?:\d+(?:\.\d+)?\s*[smhd]\s*)+$", re.IGNORECASE | re.ASCII)
+_ROTATE_SIZE = re.compile(r"^\s*\d+(?:\.\d+)?\s*(?:B|KB|MB|GB|KiB|MiB|GiB)\s*$", re.IGNORECASE | re.ASCII)
+
+
 def rotate_arg(text: str) -> tuple[str, int]:
-    """``--rotate 1h`` (capture time) or ``--rotate 200MB`` (file size)."""
-    try:
-        return "bytes", size_bytes(text)
-    except argparse.ArgumentTypeError:
-        pass
-    try:
-        return "time", int(duration_s(text) * 1e9)
-    except argparse.ArgumentTypeError:
-        raise argparse.ArgumentTypeError(f"{text!r} is neither a duration (1h) nor a size (200MB)") from None
+    """``--rotate 1h`` (capture time) or ``--rotate 200MB`` (file size); the unit is required."""
+    if _ROTATE_SIZE.match(text):
+        value = size_bytes(text)
+        if value < MIN_ROTATE_BYTES:
+            raise argparse.ArgumentTypeError(f"{text!r}: a part must be at least 1MB (or rotate by time, e.g. 1h)")
+        return "bytes", value
+    if _ROTATE_TIME.match(text):
+        seconds = duration_s(text)
+        if seconds < MIN_ROTATE_S:
+            raise argparse.ArgumentTypeError(f"{text!r}: rotate at most once a minute (at least 1m, e.g. 1h)")
+        return "time", int(seconds * 1e9)
+    raise argparse.ArgumentTypeError(f"{text!r} needs a unit: a duration such as 1h or 30m, or a size such as "
+                                     f"200MB or 1GiB")
 
 
 def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> None:
@@ -84,8 +101,9 @@ def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> 
     add_protocol_option(p, from_file=False)
     p.add_argument("-o", "--output", type=Path, required=output_required, default=None,
                    help="capture file to write (e.g. night.bwcap); never overwritten")
-    p.add_argument("--rotate", type=rotate_arg, default=None,
-                   help="start a new numbered part every so much capture time (1h) or file size (200MB)")
+    p.add_argument("--rotate", type=rotate_arg, default=None, metavar="TIME|SIZE",
+                   help="start a new numbered part every so much capture time (1h, at least 1m) or file size "
+                        "(200MB, at least 1MB); the unit is required")
     p.add_argument("--note", default="", help="free text kept in the capture header, e.g. 'pump station bus 2'")
     p.add_argument("--low-latency", action="store_true",
                    help="set the USB adapter's latency timer to 1 ms (Linux; needs root or a udev rule)")
@@ -104,7 +122,10 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     add_recording_options(p, output_required=True)
     stop = p.add_mutually_exclusive_group()
     stop.add_argument("--duration", type=duration_s, default=None, help="stop after this long (e.g. 12h)")
-    stop.add_argument("--until", type=until_arg, default=None, help="stop at this local time of day (e.g. 07:00)")
+    stop.add_argument("--until", type=until_arg, default=None, metavar="HH:MM",
+                      help="stop the next time the clock shows this time of day, in the site's local time (this "
+                           "machine's time zone, the TZ of the reports' local times; the capture keeps UTC), "
+                           "e.g. 07:00")
     p.add_argument("--quiet", action="store_true", help="no status line, only errors and the summary")
     p.set_defaults(run=run)
 
@@ -112,12 +133,13 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
 def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConfig:
     if len(ports) > 2:
         raise UsageError("record takes one or two ports (one per wire pair or direction)")
-    if len(set(ports)) != len(ports):
-        raise UsageError("the same port was given twice")
     for port in ports:
         check_port(port)
-    if args.output is not None and os.path.lexists(args.output):
-        raise OutputError(f"{args.output}: already exists; choose another output name (nothing was overwritten)")
+    check_distinct_adapters(ports)
+    if args.output is not None:
+        if os.path.lexists(args.output):
+            raise OutputError(f"{args.output}: already exists; choose another output name (nothing was overwritten)")
+        check_output_path(args.output, "-o")
     bus = serial_from_args(args, SerialFormat())
     assert bus is not None
     cfg = RecorderConfig(devices=list(ports), bus=bus, output=args.output, notes=args.note,
@@ -136,6 +158,27 @@ def config_from_args(args: argparse.Namespace, ports: list[str]) -> RecorderConf
         else:
             cfg.rotate_ns = value
     return cfg
+
+
+def check_distinct_adapters(ports: list[str]) -> None:
+    """Refuse one adapter named twice: the same path, a link and its node, or two nodes of one USB serial number."""
+    from buswitness.capture import serialport
+
+    seen: dict[str, str] = {}
+    numbers: dict[str, str] = {}
+    for port in ports:
+        real = serialport.real_device(port)
+        if real in seen:
+            same = "the same port" if seen[real] == port else f"the same device as {seen[real]} ({real})"
+            raise UsageError(f"{port}: is {same}; give each adapter once (two ports are two adapters, one per "
+                             f"wire pair or direction)")
+        seen[real] = port
+        number = serialport.usb_serial_number(port)
+        if number:
+            if number in numbers:
+                raise UsageError(f"{port}: is the same USB adapter as {numbers[number]} (serial number "
+                                 f"{number}); give each adapter once")
+            numbers[number] = port
 
 
 def stop_after(args: argparse.Namespace) -> float | None:

@@ -43,7 +43,11 @@ def run(args: argparse.Namespace) -> int:
     import json
 
     from buswitness.analysis.trend import changes, nightly, text_summary, write_page
-    from buswitness.fsutil import atomic_write
+    from buswitness.fsutil import atomic_write, check_output_path
+
+    for path, option in ((args.html, "--html"), (args.json, "--json")):
+        if path:
+            check_output_path(path, option)
     table = nightly(args.dir, station=args.station, site=args.site, bus=args.bus, since=args.since)
     found = changes(table)
     print(text_summary(table, found))
