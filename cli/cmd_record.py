@@ -24,6 +24,7 @@ from buswitness.cli.common import (
     serial_from_args,
     size_bytes,
 )
+from buswitness.cli.silence import SILENCE_WINDOW_S, SilenceCheck
 from buswitness.errors import OutputError, UsageError
 from buswitness.fsutil import check_output_path
 from buswitness.serial import SerialFormat
@@ -107,6 +108,8 @@ def add_recording_options(p: argparse.ArgumentParser, output_required: bool) -> 
     p.add_argument("--note", default="", help="free text kept in the capture header, e.g. 'pump station bus 2'")
     p.add_argument("--low-latency", action="store_true",
                    help="set the USB adapter's latency timer to 1 ms (Linux; needs root or a udev rule)")
+    # How long without bytes or valid frames before the warning: internal, so tests need not wait a minute.
+    p.add_argument("--silence-window", type=duration_s, default=SILENCE_WINDOW_S, help=argparse.SUPPRESS)
     p.add_argument("--roles", type=roles_arg, default=None, metavar="ROLE[,ROLE]",
                    help="what each port hears, in port order: 'master' (only the master's pair), 'slaves' "
                         "(only the stations' pair) or 'both' (a two-wire bus, the default); e.g. "
@@ -246,9 +249,28 @@ class LiveFigures:
         if self.decoder is not None:
             self.decoder.finish()
 
+    @property
+    def valid_frames(self) -> int | None:
+        """Valid frames decoded so far (None: no decoder in this build, or it stopped)."""
+        if self.decoder is None:
+            return 0 if not self.tried else None
+        if self.decoder.disabled_reason is not None:
+            return None
+        return sum(st.frames for st in self.decoder.figures.rows())
 
-def summary(rec: Recorder) -> str:
-    """What was recorded, per port, for the last lines printed."""
+
+def silence_check(args: argparse.Namespace, cfg: RecorderConfig) -> SilenceCheck:
+    """The no-bytes / no-valid-frames check of a recording, at the bus setting it listens at."""
+    return SilenceCheck(list(cfg.devices), f"{cfg.bus.baud} {cfg.bus.short_form}",
+                        window_s=getattr(args, "silence_window", SILENCE_WINDOW_S))
+
+
+def elapsed_s(rec: Recorder) -> float:
+    return (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
+
+
+def summary(rec: Recorder, closing: list[str] | None = None) -> str:
+    """What was recorded, per port, for the last lines printed; ``closing``: the silence check's lines."""
     w = rec.writer
     elapsed = (time.monotonic_ns() - rec.start_ns) / 1e9 if rec.start_ns else 0.0
     lines = []
@@ -275,6 +297,7 @@ def summary(rec: Recorder) -> str:
             extra.append(f"{s.lost_reads} reads LOST (writer fell behind)")
         tail = f" ({'; '.join(extra)})" if extra else ""
         lines.append(f"  {s.name}: {s.bytes} bytes, {s.reads} reads{tail}")
+    lines.extend(closing or [])
     return visible("\n".join(lines), keep_newlines=True)  # port and file names come from outside
 
 
@@ -322,25 +345,35 @@ def run(args: argparse.Namespace) -> int:
 
     rec = Recorder(cfg, on_message=message)
     figures = LiveFigures(rec)
-    if show_status:
-        rec.tap = figures.tap
+    rec.tap = figures.tap  # the live decoder counts valid frames for the silence check, status line or not
+    silence = silence_check(args, cfg)
     seconds = stop_after(args)
+
+    def check() -> None:
+        figures.update()
+        for text in silence.check(elapsed_s(rec), [s.bytes for s in rec.stats], figures.valid_frames):
+            message(f"warning: {text}")
+
+    def closing() -> list[str]:
+        figures.finish()
+        return silence.closing(elapsed_s(rec), [s.bytes for s in rec.stats], figures.valid_frames)
+
     if show_status:
         live = Live(console=console, refresh_per_second=2, transient=True)
 
         def refresh() -> None:
-            figures.update()
+            check()
             live.update(status_renderable(rec, figures.decoder))
 
         with live:
             try:
                 run_recorder(rec, seconds, refresh)
             finally:
-                message(summary(rec))
+                message(summary(rec, closing()))
     else:
         try:
-            run_recorder(rec, seconds)
+            run_recorder(rec, seconds, check)
         finally:
             if rec.writer is not None:
-                message(summary(rec))
+                message(summary(rec, closing()))
     return 0
