@@ -105,12 +105,12 @@ def run(args: argparse.Namespace) -> int:
     from buswitness.analysis.sinks.dashboard import DashboardSink
     from buswitness.analysis.sinks.parquet import ParquetSink
     from buswitness.analysis.sinks.summary import SummarySink
-    from buswitness.analysis.summary import text_summary
+    from buswitness.cli.report_text import analyze_text
 
     sinks = ([DashboardSink(html)] if html else []) + ([SummarySink(js)] if js else []) + (
         [CsvSink(args.csv)] if args.csv else []) + ([ParquetSink(args.parquet)] if args.parquet else [])
     result = run_analysis(args, sinks=tuple(sinks))
-    print(text_summary(result))
+    print(analyze_text(result))
     print("wrote:")
     for p in result.written:
         print(visible(f"  {Path(p).resolve()}"))

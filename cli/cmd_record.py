@@ -62,14 +62,27 @@ def until_arg(text: str) -> str:
     return text
 
 
-def seconds_until(text: str, now: datetime | None = None) -> float:
-    """Seconds from ``now`` (local time) to the next time the clock shows ``text``."""
+def until_instant(text: str, now: datetime | None = None) -> datetime:
+    """The next moment the site's local clock shows ``text`` (this machine's time zone, TZ), as an aware time.
+
+    A naive ``now`` is read as local time. The target is built on the local calendar and given its own
+    UTC offset, so a night across a daylight-saving change still stops when the wall clock says.
+    """
     h, m, s = (int(x or 0) for x in _UNTIL.match(text).groups())  # type: ignore[union-attr]
-    now = now or datetime.now()
-    target = now.replace(hour=h, minute=m, second=s, microsecond=0)
-    if target <= now:
+    now = now or datetime.now().astimezone()
+    local_now = now.astimezone() if now.tzinfo else now
+    naive = local_now.replace(tzinfo=None)
+    target = naive.replace(hour=h, minute=m, second=s, microsecond=0)
+    if target <= naive:
         target += timedelta(days=1)
-    return (target - now).total_seconds()
+    return target.astimezone()  # a naive time is local time: this gives it the offset it has then
+
+
+def seconds_until(text: str, now: datetime | None = None) -> float:
+    """Seconds from ``now`` to the next time the local clock shows ``text``."""
+    now = now or datetime.now().astimezone()
+    aware_now = now if now.tzinfo else now.astimezone()
+    return (until_instant(text, now) - aware_now).total_seconds()
 
 
 #: Shortest rotation: a part per minute is already 1440 files a day; shorter makes a file per block.
@@ -348,6 +361,10 @@ def run(args: argparse.Namespace) -> int:
     rec.tap = figures.tap  # the live decoder counts valid frames for the silence check, status line or not
     silence = silence_check(args, cfg)
     seconds = stop_after(args)
+    if getattr(args, "until", None):
+        from buswitness.cli.report_text import local_time
+
+        message(f"recording until {local_time(until_instant(args.until))} (site local time)")
 
     def check() -> None:
         figures.update()

@@ -16,7 +16,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--station", type=_address, default=None, help="only this station address")
     p.add_argument("--site", default=None, help="only this site")
     p.add_argument("--bus", default=None, help="only this bus")
-    p.add_argument("--since", type=_date, default=None, metavar="YYYY-MM-DD", help="only nights from this date on")
+    p.add_argument("--since", type=_date, default=None, metavar="YYYY-MM-DD", help="only nights from this date on (the UTC date a capture starts on, as the dataset's date= folders)")
     p.add_argument("--html", metavar="FILE", default="trend.html", help="write the page here (default: trend.html)")
     p.add_argument("--json", metavar="FILE", default=None, help="also write the nightly figures and changes as JSON")
     p.set_defaults(run=run)
