@@ -86,18 +86,27 @@ def timeout_text(timeout) -> str:
                 f"unanswered requests)")
     if timeout.source == "not used":
         return "master timeout: not used by this protocol"
-    return "master timeout: not inferred yet (needs unanswered requests; give --timeout to set it)"
+    return "master timeout not inferred yet (too few unanswered requests; --timeout sets it)"
+
+
+#: Column headings, short enough for an 80-column terminal; the legend under the table spells them out.
+COLUMNS = ("station", "req.", "answ.", "late", "t/out", "exc.", "CRC", "last", "p50", "p95")
+LEGEND = ("req. requests, answ. answered in time, late answered after the timeout, t/out timeouts, exc. exception "
+          "answers, CRC failed CRC; last, p50, p95: response times in ms")
 
 
 def station_table(live, rec: Recorder | None = None, notes: list[str] | None = None,
                   final: bool = False) -> RenderableType:
-    """The table: one row per station (the analysis's figures), the timeout, ports and notes underneath."""
+    """The table: one row per station (the analysis's figures); the timeout in use on top, ports and notes under."""
+    from rich import box
     from rich.table import Table
 
     result = getattr(live, "result", None)
-    lines = [timeout_text(result.timeout if result is not None else None)]
+    head = "stations: final figures" if final else "stations (live)"
+    lines = [LEGEND]
     if rec is not None:
         elapsed = elapsed_s(rec)
+        head += f", {_hms(elapsed)}"
         for s in rec.stats:
             rate = f", {s.bytes / elapsed:.0f} B/s" if elapsed > 0 else ""
             state = " (gone, retrying)" if not s.connected else ""
@@ -105,21 +114,29 @@ def station_table(live, rec: Recorder | None = None, notes: list[str] | None = N
     if live is not None and getattr(live, "disabled_reason", None):
         lines.append(visible(live.disabled_reason))
     lines.extend(visible(n) for n in notes or [])
-    title = "stations: final figures" if final else "stations (live)"
-    table = Table(title=title, caption="\n".join(lines), caption_justify="left")
-    for col in ("station", "requests", "answered", "late", "timeouts", "exc.", "CRC err", "last ms", "p50 ms",
-                "p95 ms"):
-        table.add_column(col, justify="left" if col == "station" else "right")
+    title = f"{head}; {timeout_text(result.timeout if result is not None else None)}"
+    table = Table(title=title, title_justify="left", caption="\n".join(lines), caption_justify="left",
+                  box=box.SIMPLE_HEAD, pad_edge=False, padding=(0, 1))
+    for col in COLUMNS:
+        if col == "station":
+            table.add_column(col, justify="left", no_wrap=True, overflow="ellipsis", max_width=24)
+        else:
+            table.add_column(col, justify="right", no_wrap=True)
     if result is None:
         return table
     last = {st.station: st.last_response_ms for st in live.rolling.rows()}
     for st in result.stations:
-        if not (st.requests or st.crc_errors or st.answered):
-            continue
+        if not (st.requests or st.crc_errors or st.answered or st.address in result.station_map.stations):
+            continue  # an address seen only in noise; a named station stays, even unheard
         table.add_row(visible(st.label), str(st.requests), str(st.answered), str(st.late), str(st.timeouts),
                       str(st.exceptions), str(st.crc_errors), _ms(last.get(st.address)), _ms(st.response_ms["p50"]),
                       _ms(st.response_ms["p95"]))
     return table
+
+
+def _hms(seconds: float) -> str:
+    s = int(seconds)
+    return f"{s // 3600:d}:{s // 60 % 60:02d}:{s % 60:02d}"
 
 
 class _Tap:
