@@ -95,15 +95,32 @@ LEGEND = ("req. requests, answ. answered in time, late answered after the timeou
           "answers, CRC failed CRC; last, p50, p95: response times in ms")
 
 
+def fitted_table(console, live, rec: Recorder | None = None, notes: list[str] | None = None) -> RenderableType:
+    """The live table cut to one line less than the terminal, so a redraw never scrolls it.
+
+    A view taller than the terminal cannot be erased above the top line: its first lines would stay
+    in the scrollback at every redraw. The legend goes first, then the rows that do not fit.
+    """
+    height = max(5, console.size.height - 1)
+    table = station_table(live, rec, notes)
+    if len(console.render_lines(table, pad=False)) <= height:
+        return table
+    table = station_table(live, rec, notes, legend=False)
+    over = len(console.render_lines(table, pad=False)) - height
+    if over <= 0:
+        return table
+    return station_table(live, rec, notes, legend=False, max_rows=max(0, table.row_count - over - 1))
+
+
 def station_table(live, rec: Recorder | None = None, notes: list[str] | None = None,
-                  final: bool = False) -> RenderableType:
+                  final: bool = False, legend: bool = True, max_rows: int | None = None) -> RenderableType:
     """The table: one row per station (the analysis's figures); the timeout in use on top, ports and notes under."""
     from rich import box
     from rich.table import Table
 
     result = getattr(live, "result", None)
     head = "stations: final figures" if final else "stations (live)"
-    lines = [LEGEND]
+    lines = [LEGEND] if legend else []
     if rec is not None:
         elapsed = elapsed_s(rec)
         head += f", {_hms(elapsed)}"
@@ -125,9 +142,14 @@ def station_table(live, rec: Recorder | None = None, notes: list[str] | None = N
     if result is None:
         return table
     last = {st.station: st.last_response_ms for st in live.rolling.rows()}
-    for st in result.stations:
-        if not (st.requests or st.crc_errors or st.answered or st.address in result.station_map.stations):
-            continue  # an address seen only in noise; a named station stays, even unheard
+    rows = [st for st in result.stations
+            if st.requests or st.crc_errors or st.answered or st.address in result.station_map.stations]
+    # (an address seen only in noise has no row; a named station keeps one, even unheard)
+    if max_rows is not None and len(rows) > max_rows:
+        table.caption = (f"... {len(rows) - max_rows} more stations below (a taller terminal shows them)\n"
+                         + str(table.caption or ""))
+        rows = rows[:max_rows]
+    for st in rows:
         table.add_row(visible(st.label), str(st.requests), str(st.answered), str(st.late), str(st.timeouts),
                       str(st.exceptions), str(st.crc_errors), _ms(last.get(st.address)), _ms(st.response_ms["p50"]),
                       _ms(st.response_ms["p95"]))
@@ -217,7 +239,9 @@ def run(args: argparse.Namespace) -> int:
             message(f"warning: {text}")
 
     def table(final: bool = False) -> RenderableType:
-        return station_table(tap.live, rec, warnings[-2:] if not final else None, final=final)
+        if final:
+            return station_table(tap.live, rec, final=True)
+        return fitted_table(out, tap.live, rec, warnings[-2:])
 
     try:
         if live_view:
