@@ -16,9 +16,9 @@ SILENCE_WINDOW_S = 60.0
 
 
 def _span(seconds: float) -> str:
-    if seconds < 120:
-        return f"{seconds:.0f} s"
-    s = int(seconds)
+    s = int(seconds)  # whole seconds, as the summary's elapsed time shows them
+    if s < 120:
+        return f"{s} s"
     return f"{s // 3600:d}:{s // 60 % 60:02d}:{s % 60:02d}"
 
 
