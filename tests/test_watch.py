@@ -229,3 +229,24 @@ def test_timeout_in_use_is_shown_with_where_it_comes_from():
     inferred = TimeoutEstimate(150.0, "inferred", samples=12)
     assert timeout_text(inferred) == "master timeout about 150 ms (inferred so far from 12 unanswered requests)"
     assert "not inferred yet" in timeout_text(TimeoutEstimate(None, "not inferable"))
+
+
+def test_a_slowly_polled_bus_shows_each_answer_before_the_next_poll():
+    # The decoder closes a frame when the next byte arrives: on a bus polled every 3 s the old live
+    # view showed each answer 3 s late (at the next poll). The live analysis counts it once the bus
+    # has been quiet for longer than the master waits (1.5 x 200 ms here).
+    from buswitness.analysis.live import LiveAnalysis
+
+    header = CaptureHeader.new(SerialFormat.parse("8E1", 19200), [PortInfo(0, "p", latency_ms=1.0)])
+    req = append_crc(bytes([7, 3, 0, 0, 0, 1]))
+    rsp = append_crc(bytes([7, 3, 2, 0, 42]))
+    t0 = header.start_monotonic_ns
+    live = LiveAnalysis(header, timeout_ms=200.0)
+    for i in range(4):
+        t = t0 + i * 3_000_000_000
+        live.add(0, t, req, 0)
+        live.add(0, t + 20_000_000, rsp, 0)
+        assert sum(s.answered for s in live.update(t + 20_000_000).stations) == i  # the answer's frame is open
+        shown = live.update(t + 400_000_000)  # 0.4 s later, long before the next poll
+        assert sum(s.answered for s in shown.stations) == i + 1
+    assert sum(s.answered for s in live.finish().stations) == 4
