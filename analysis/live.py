@@ -85,6 +85,7 @@ class LiveAnalysis:
         self._sample_records = sample_records
         self._last_data_ns: int | None = None
         self._dirty = True
+        self._can_peek = True
         self.rolling = RollingStations()  #: last response time per station (what the accumulator does not keep)
         self.result: AnalysisResult | None = None
         self.peeked = False  #: the result shows the held last frame (the bus has been quiet long enough)
@@ -161,10 +162,16 @@ class LiveAnalysis:
                 if self._kept is not None and self._kept_records >= self._sample_records:
                     self._assess()
                 self._dirty = True
-            quiet = now_ns is not None and last_data is not None and now_ns - last_data > self._peek_after_ns()
+            quiet = (now_ns is not None and last_data is not None and self._can_peek
+                     and now_ns - last_data > self._peek_after_ns())
             if quiet and (self._dirty or not self.peeked):
-                self.result = self._peek()
-                self.peeked = True
+                try:
+                    self.result = self._peek()
+                    self.peeked = True
+                except Exception:  # noqa: BLE001 -- a decoder that cannot be copied: show what is settled
+                    self._can_peek = False
+                    self.result = self._judge(self._acc)
+                    self.peeked = False
             elif self._dirty or self.result is None:
                 self.result = self._judge(self._acc)
                 self.peeked = False
