@@ -6,6 +6,7 @@ import argparse
 import re
 import sys
 import time
+from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder
 from buswitness.cli.cmd_record import (
@@ -19,6 +20,9 @@ from buswitness.cli.cmd_record import (
 from buswitness.cli.common import duration_s
 from buswitness.textsafe import visible
 from rich.console import RenderableType
+
+if TYPE_CHECKING:
+    from rich.table import Table
 
 HELP = "live per-station figures in the terminal"
 
@@ -113,7 +117,7 @@ def fitted_table(console, live, rec: Recorder | None = None, notes: list[str] | 
 
 
 def station_table(live, rec: Recorder | None = None, notes: list[str] | None = None,
-                  final: bool = False, legend: bool = True, max_rows: int | None = None) -> RenderableType:
+                  final: bool = False, legend: bool = True, max_rows: int | None = None) -> Table:
     """The table: one row per station (the analysis's figures); the timeout in use on top, ports and notes under."""
     from rich import box
     from rich.table import Table
