@@ -94,12 +94,13 @@ def run(args: argparse.Namespace) -> int:
     html, js = args.html, args.json
     if not any((html, js, args.csv, args.parquet)):
         html, js = "report.html", "summary.json"
-    for path, option in ((html, "--html"), (js, "--json")):
-        if path:
-            check_output_path(path, option)
     for folder, option in ((args.csv, "--csv"), (args.parquet, "--parquet")):
         if folder:
             check_output_dir(folder, option)
+    made = [f for f in (args.csv, args.parquet) if f]  # the folders these options make may hold the others
+    for path, option in ((html, "--html"), (js, "--json")):
+        if path:
+            check_output_path(path, option, made_here=made)
 
     from buswitness.analysis.sinks.csv import CsvSink
     from buswitness.analysis.sinks.dashboard import DashboardSink

@@ -205,15 +205,18 @@ def read_text_input(path: str | os.PathLike, what: str, max_bytes: int = MAX_TEX
         raise InputFileError(path, f"the {what} is not UTF-8 text ({exc.reason} at byte {exc.start})") from None
 
 
-def check_output_path(path: str | os.PathLike, option: str) -> None:
+def check_output_path(path: str | os.PathLike, option: str, made_here: tuple | list = ()) -> None:
     """Refuse at once an output that exists and is not a regular file (a FIFO would hang the writer, a
-    directory or device cannot take a report); the terminal's streams and ``/dev/null`` are allowed."""
+    directory or device cannot take a report), or whose folder is missing; the terminal's streams and
+    ``/dev/null`` are allowed. ``made_here``: folders the same command creates (``--csv DIR``)."""
     if is_stream_output(path):
         return
     try:
         st = os.stat(path)
     except OSError:
-        check_parent_folder(path, option)
+        made = {os.path.abspath(f) for f in made_here}
+        if os.path.dirname(os.path.abspath(path)) not in made:
+            check_parent_folder(path, option)
         return  # does not exist yet (or cannot be seen): the atomic write reports any other problem
     kind = kind_of(st.st_mode)
     if kind:
