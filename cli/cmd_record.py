@@ -7,11 +7,12 @@ import os
 import re
 import signal
 import sys
+import threading
 import time
 from collections.abc import Callable
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from buswitness.capture.recorder import Recorder, RecorderConfig
 from buswitness.cli.common import (
@@ -236,29 +237,60 @@ def run_recorder(rec: Recorder, seconds: float | None, refresh: Callable[[], Non
             signal.signal(sig, handler)
 
 
-class LiveFigures:
-    """The optional live decoder of a recording, created on the first record (the header exists by then)."""
+#: Records held for the live figures while their decoder is still being made (its imports take seconds).
+MAX_EARLY_RECORDS = 200_000
 
-    def __init__(self, rec: Recorder) -> None:
+
+def _live_decoder(header: object) -> LiveDecoder | None:
+    from buswitness.analysis.rolling import LiveDecoder
+
+    return LiveDecoder.create(header)
+
+
+class LiveFigures:
+    """The optional live decoder of a recording, made by the main thread once the header exists.
+
+    The writer thread only queues records (:meth:`tap`): making the decoder imports the decoder and
+    pandas, seconds that must never hold up writing and syncing the file. ``make`` builds the
+    decoder from the capture header (``record``: rolling counts; ``watch``: the live analysis).
+    """
+
+    def __init__(self, rec: Recorder, make: Callable[[object], object | None] | None = None) -> None:
         self.rec = rec
-        self.decoder: LiveDecoder | None = None
+        self.make = make or _live_decoder
+        self.decoder: Any = None
         self.tried = False
+        self._early: list[tuple[int, int, bytes, int]] = []
+        self._lock = threading.Lock()
 
     def tap(self, port: int, t_ns: int, data: bytes, flags: int) -> None:
-        """Recorder tap (writer thread): queue each record for the decoder."""
+        """Recorder tap (writer thread): queue each record for the decoder; never waits on the decoder."""
+        decoder = self.decoder
+        if decoder is None:
+            with self._lock:
+                decoder = self.decoder
+                if decoder is None:
+                    if not self.tried and len(self._early) < MAX_EARLY_RECORDS:
+                        self._early.append((port, t_ns, data, flags))
+                    return
+        decoder.add(port, t_ns, data, flags)
+
+    def update(self, *args: object) -> None:
+        """Main thread: make the decoder once the header exists, then decode what was queued."""
         if not self.tried and self.rec.writer is not None:
-            from buswitness.analysis.rolling import LiveDecoder
-
-            self.tried = True
-            self.decoder = LiveDecoder.create(self.rec.writer.header)
+            made: Any = self.make(self.rec.writer.header)
+            with self._lock:
+                if made is not None:
+                    for record in self._early:
+                        made.add(*record)
+                self._early = []
+                self.decoder = made
+                self.tried = True
         if self.decoder is not None:
-            self.decoder.add(port, t_ns, data, flags)
-
-    def update(self) -> None:
-        if self.decoder is not None:
-            self.decoder.update()
+            self.decoder.update(*args)
 
     def finish(self) -> None:
+        self.update()
         if self.decoder is not None:
             self.decoder.finish()
 
@@ -269,7 +301,8 @@ class LiveFigures:
             return 0 if not self.tried else None
         if self.decoder.disabled_reason is not None:
             return None
-        return sum(st.frames for st in self.decoder.figures.rows())
+        frames = getattr(self.decoder, "valid_frames", None)
+        return frames if frames is not None else sum(st.frames for st in self.decoder.figures.rows())
 
 
 def silence_check(args: argparse.Namespace, cfg: RecorderConfig) -> SilenceCheck:

@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING
 
 from buswitness.capture.recorder import Recorder
 from buswitness.cli.cmd_record import (
+    LiveFigures,
     add_recording_options,
     config_from_args,
     elapsed_s,
@@ -165,36 +166,12 @@ def _hms(seconds: float) -> str:
     return f"{s // 3600:d}:{s // 60 % 60:02d}:{s % 60:02d}"
 
 
-class _Tap:
-    """Recorder tap: the live analysis, created on the first record (the header exists by then)."""
-
-    def __init__(self, rec: Recorder, args: argparse.Namespace) -> None:
-        self.rec = rec
-        self.args = args
-        self.live = None
-        self.tried = False
-        self.error: str | None = None
-
-    def __call__(self, port: int, t_ns: int, data: bytes, flags: int) -> None:
-        if not self.tried and self.rec.writer is not None:
-            self.live = make_live(self.rec.writer.header, self.args)
-            self.tried = True  # after: the main thread reads "tried and no live" as "no decoder in this build"
-        if self.live is not None:
-            self.live.add(port, t_ns, data, flags)
-
-    @property
-    def valid_frames(self) -> int | None:
-        if self.live is None:
-            return 0 if not self.tried else None
-        return None if self.live.disabled_reason else self.live.valid_frames
-
-
 def make_live(header, args: argparse.Namespace):
     """The live analysis of this header with the options given, or None when this build has no decoder."""
-    try:
+    try:  # (made by the main thread; the recorder's writer thread only queues records: LiveFigures)
         from buswitness.analysis.live import LiveAnalysis
         return LiveAnalysis(header, timeout_ms=args.timeout, station_map=_station_map(args))
-    except Exception:  # noqa: BLE001 -- runs in the writer thread: the live figures must never stop a recording
+    except Exception:  # noqa: BLE001 -- the live figures are a convenience: never stop a recording for them
         return None
 
 
@@ -227,15 +204,14 @@ def run(args: argparse.Namespace) -> int:
         target.print(visible(text, keep_newlines=True), markup=False, highlight=False, soft_wrap=True)
 
     rec = Recorder(cfg, on_message=message)
-    tap = _Tap(rec, args)
-    rec.tap = tap
+    tap = LiveFigures(rec, lambda header: make_live(header, args))
+    rec.tap = tap.tap
     silence = silence_check(args, cfg)
     said: list[bool] = []
 
     def update() -> None:
-        if tap.live is not None:
-            tap.live.update(time.monotonic_ns())
-        elif tap.tried and not said:
+        tap.update(time.monotonic_ns())
+        if tap.decoder is None and tap.tried and not said:
             said.append(True)
             message("the decoder is not available in this build: only byte counts are shown")
         for text in silence.check(elapsed_s(rec), [s.bytes for s in rec.stats], tap.valid_frames):
@@ -244,8 +220,8 @@ def run(args: argparse.Namespace) -> int:
 
     def table(final: bool = False) -> RenderableType:
         if final:
-            return station_table(tap.live, rec, final=True)
-        return fitted_table(out, tap.live, rec, warnings[-2:])
+            return station_table(tap.decoder, rec, final=True)
+        return fitted_table(out, tap.decoder, rec, warnings[-2:])
 
     try:
         if live_view:
@@ -268,8 +244,7 @@ def run(args: argparse.Namespace) -> int:
         else:
             run_recorder(rec, args.duration, update, period_s=0.25)
     finally:
-        if tap.live is not None:
-            tap.live.finish()
+        tap.finish()
         if rec.writer is not None:
             out.print(table(final=True))
             closing = silence.closing(elapsed_s(rec), [s.bytes for s in rec.stats], tap.valid_frames)
