@@ -69,6 +69,11 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
     # load, so a wrong path or a damaged header is refused at once.
     smap = load_station_map(args.stations) if args.stations else None
     source = open_capture(args.capture, args.input_kind, on_bad_line=args.on_bad_line, **serial_halves(args))
+    if args.roles and len(args.roles) != len(source.header.ports):
+        from buswitness.errors import UsageError
+
+        raise UsageError(visible(f"--roles names {len(args.roles)} role(s) but {args.capture} holds "
+                                 f"{len(source.header.ports)} port(s); give one role per port"))
 
     from buswitness.analysis import AnalysisOptions
 
@@ -89,23 +94,24 @@ def run(args: argparse.Namespace) -> int:
     html, js = args.html, args.json
     if not any((html, js, args.csv, args.parquet)):
         html, js = "report.html", "summary.json"
-    for path, option in ((html, "--html"), (js, "--json")):
-        if path:
-            check_output_path(path, option)
     for folder, option in ((args.csv, "--csv"), (args.parquet, "--parquet")):
         if folder:
             check_output_dir(folder, option)
+    made = [f for f in (args.csv, args.parquet) if f]  # the folders these options make may hold the others
+    for path, option in ((html, "--html"), (js, "--json")):
+        if path:
+            check_output_path(path, option, made_here=made)
 
     from buswitness.analysis.sinks.csv import CsvSink
     from buswitness.analysis.sinks.dashboard import DashboardSink
     from buswitness.analysis.sinks.parquet import ParquetSink
     from buswitness.analysis.sinks.summary import SummarySink
-    from buswitness.analysis.summary import text_summary
+    from buswitness.cli.report_text import analyze_text
 
     sinks = ([DashboardSink(html)] if html else []) + ([SummarySink(js)] if js else []) + (
         [CsvSink(args.csv)] if args.csv else []) + ([ParquetSink(args.parquet)] if args.parquet else [])
     result = run_analysis(args, sinks=tuple(sinks))
-    print(text_summary(result))
+    print(analyze_text(result))
     print("wrote:")
     for p in result.written:
         print(visible(f"  {Path(p).resolve()}"))

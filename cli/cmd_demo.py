@@ -66,9 +66,10 @@ def run(args: argparse.Namespace) -> int:
     from buswitness.analysis import AnalysisOptions, load_station_map
     from buswitness.analysis.dashboard import write_dashboard
     from buswitness.analysis.evidence import write_evidence
-    from buswitness.analysis.summary import text_summary, write_summary
+    from buswitness.analysis.summary import write_summary
     from buswitness.capture.sources import open_capture
     from buswitness.cli.progress import analyze_with_bar
+    from buswitness.cli.report_text import analyze_text
     from buswitness.errors import OutputError
     from buswitness.fsutil import atomic_write
     from buswitness.simulate import load_scenario, simulate
@@ -96,7 +97,7 @@ def run(args: argparse.Namespace) -> int:
     print("analysing ...", flush=True)
     result = analyze_with_bar(open_capture(capture), AnalysisOptions(station_map=load_station_map(stations)),
                               show=False if args.no_progress else None)
-    print(text_summary(result))
+    print(analyze_text(result))
     written = [capture, stations, write_dashboard(result, folder / "report.html"),
                write_summary(result, folder / "summary.json")]
     late = slowest_station(result)

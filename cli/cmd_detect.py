@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 
 from buswitness import detect
 from buswitness.cli.common import add_protocol_option, baud_arg, format_arg, number_arg
+from buswitness.errors import InputFileError, NotACaptureError
 from buswitness.serial import COMMON_BAUD_RATES
 from buswitness.textsafe import visible
 
@@ -67,13 +69,31 @@ def print_ranking(scores: list[detect.Score], top: int) -> None:
     Console(soft_wrap=True).print(table)
 
 
-def run(args: argparse.Namespace) -> int:
+def open_capture_for_detect(path: Path):
+    """``open_capture`` whose refusals never suggest an option ``detect`` does not take."""
     from buswitness.capture.sources import open_capture
+
+    try:
+        return open_capture(path)
+    except InputFileError as exc:
+        if "--" not in exc.hint:
+            raise
+        hint = ("detect checks buswitness captures and timestamped hex text" if isinstance(exc, NotACaptureError)
+                else "")
+        raise type(exc)(exc.path, exc.problem, hint) from None
+
+
+def run(args: argparse.Namespace) -> int:
     from buswitness.cli.common import check_port
 
     target = Path(args.target)
+    if "://" not in args.target and not os.path.exists(args.target):
+        from buswitness.capture.serialport import available_ports
+
+        seen = ", ".join(available_ports()) or "none"
+        raise InputFileError(args.target, "no such file or serial port", f"serial ports seen now: {seen}")
     if "://" not in args.target and target.is_file():
-        source = open_capture(target)
+        source = open_capture_for_detect(target)
         for info in source.header.ports:
             if len(source.header.ports) > 1:
                 print(visible(f"port {info.id} ({info.name}):"))

@@ -44,7 +44,11 @@ def run_check(args: argparse.Namespace) -> int:
     from buswitness.analysis.busplan import load_plan
     from buswitness.analysis.planreport import plan_json, plan_text, write_plan_page
     from buswitness.analysis.planrules import check_plan
+    from buswitness.fsutil import check_output_path
 
+    for path, option in ((args.html, "--html"), (args.json, "--json")):
+        if path:
+            check_output_path(path, option)  # before reading a long capture
     plan = load_plan(args.description)
     results = check_plan(plan)
     result = None

@@ -45,9 +45,13 @@ def run(args: argparse.Namespace) -> int:
         return EXIT_OK
     if not args.output:
         raise UsageError("give the capture file to write with -o CAPTURE.bwcap (or --list to see the scenarios)")
-    for path in (args.output, args.truth):
+    from buswitness.fsutil import check_output_path
+
+    for path, option in ((args.output, "-o"), (args.truth, "--truth")):
         if path and os.path.exists(path):
             raise OutputError(f"{path}: already exists; choose another output name (nothing was overwritten)")
+        if path:
+            check_output_path(path, option)
     if args.seed < 0:
         raise UsageError(f"--seed must be zero or more, not {args.seed}")
     if args.protocol == "profibus-dp" or args.scenario == profibus.NAME:

@@ -16,7 +16,7 @@ def add_parser(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--station", type=_address, default=None, help="only this station address")
     p.add_argument("--site", default=None, help="only this site")
     p.add_argument("--bus", default=None, help="only this bus")
-    p.add_argument("--since", type=_date, default=None, metavar="YYYY-MM-DD", help="only nights from this date on")
+    p.add_argument("--since", type=_date, default=None, metavar="YYYY-MM-DD", help="only nights from this date on (the UTC date a capture starts on, as the dataset's date= folders)")
     p.add_argument("--html", metavar="FILE", default="trend.html", help="write the page here (default: trend.html)")
     p.add_argument("--json", metavar="FILE", default=None, help="also write the nightly figures and changes as JSON")
     p.set_defaults(run=run)
@@ -43,7 +43,11 @@ def run(args: argparse.Namespace) -> int:
     import json
 
     from buswitness.analysis.trend import changes, nightly, text_summary, write_page
-    from buswitness.fsutil import atomic_write
+    from buswitness.fsutil import atomic_write, check_output_path
+
+    for path, option in ((args.html, "--html"), (args.json, "--json")):
+        if path:
+            check_output_path(path, option)
     table = nightly(args.dir, station=args.station, site=args.site, bus=args.bus, since=args.since)
     found = changes(table)
     print(text_summary(table, found))

@@ -205,26 +205,47 @@ def read_text_input(path: str | os.PathLike, what: str, max_bytes: int = MAX_TEX
         raise InputFileError(path, f"the {what} is not UTF-8 text ({exc.reason} at byte {exc.start})") from None
 
 
-def check_output_path(path: str | os.PathLike, option: str) -> None:
+def check_output_path(path: str | os.PathLike, option: str, made_here: tuple | list = ()) -> None:
     """Refuse at once an output that exists and is not a regular file (a FIFO would hang the writer, a
-    directory or device cannot take a report); the terminal's streams and ``/dev/null`` are allowed."""
+    directory or device cannot take a report), or whose folder is missing; the terminal's streams and
+    ``/dev/null`` are allowed. ``made_here``: folders the same command creates (``--csv DIR``)."""
     if is_stream_output(path):
         return
     try:
         st = os.stat(path)
     except OSError:
-        return  # does not exist yet (or cannot be seen): the atomic write reports any problem
+        made = {os.path.abspath(f) for f in made_here}
+        if os.path.dirname(os.path.abspath(path)) not in made:
+            check_parent_folder(path, option)
+        return  # does not exist yet (or cannot be seen): the atomic write reports any other problem
     kind = kind_of(st.st_mode)
     if kind:
         raise OutputError(f"{path}: {option} is {kind}, not a file; give the name of a file to write "
                           f"(or /dev/stdout)")
 
 
+def check_parent_folder(path: str | os.PathLike, option: str) -> None:
+    """Refuse an output whose folder does not exist: a mistyped folder is never created silently."""
+    parent = Path(os.path.abspath(path)).parent
+    if parent.is_dir():
+        return
+    shown = os.path.dirname(os.path.normpath(str(path))) or str(parent)
+    if parent.exists() or parent.is_symlink():
+        raise OutputError(f"{shown}: the folder for {option} is not a folder; give a path in an existing folder")
+    raise OutputError(f"{shown}: the folder for {option} does not exist (nothing was created); create it "
+                      f"first (mkdir -p {shown}) or give a path in an existing folder")
+
+
 def check_output_dir(path: str | os.PathLike, option: str) -> None:
-    """Refuse at once an output folder that exists and is not a directory."""
+    """Refuse at once an output folder that exists and is not a directory, or whose own folder is missing.
+
+    A missing ``path`` itself is created by the writer (the option names a folder to write into);
+    a missing folder above it is refused, so a typing error never builds a tree of folders.
+    """
     try:
         st = os.stat(path)
     except OSError:
+        check_parent_folder(path, option)
         return
     if not stat.S_ISDIR(st.st_mode):
         raise OutputError(f"{path}: {option} is {kind_of(st.st_mode) or 'a file'}, not a folder; give a folder to write into")

@@ -5,6 +5,7 @@ The helper process creates a pseudo-terminal, points a symlink at its slave end 
 
 * ``send FILE BAUD CHUNK``: write FILE's bytes to the master end, CHUNK bytes at a time, at
   the pace of BAUD baud 8N1 (10 bits a character), then answer ``done T_START T_END`` (monotonic ns);
+* ``replay CAPTURE [SPEED]``: write a capture file's bytes at their recorded pace, answer ``done T_START T_END``;
 * ``replug [NEWLINK]``: close the pty (the device goes away), remove the symlink, wait, make a
   new pty and point the symlink (or a new one, as when an adapter comes back under another
   name) at it (the device comes back), answer ``done``;
@@ -50,6 +51,27 @@ def _pace(master: int, data: bytes, baud: int, chunk: int) -> tuple[int, int]:
     return t0, time.monotonic_ns()
 
 
+def _replay(master: int, capture: Path, speed: float) -> tuple[int, int]:
+    """Write each record of ``capture`` at its own time (relative to the first), ``speed`` times as fast."""
+    from buswitness.capture.fileformat import CaptureReader
+
+    start = time.monotonic()
+    t0 = time.monotonic_ns()
+    first = None
+    for rec in CaptureReader(capture).iter_records():
+        if not rec.data:
+            continue
+        first = rec.t_ns if first is None else first
+        delay = start + (rec.t_ns - first) / 1e9 / speed - time.monotonic()
+        if delay > 0:
+            time.sleep(delay)
+        view = memoryview(rec.data)
+        while view:
+            n = os.write(master, view)
+            view = view[n:]
+    return t0, time.monotonic_ns()
+
+
 def helper_main(link: Path) -> None:
     master, slave = _make_pty(link)
     print("ready", os.ttyname(slave), flush=True)
@@ -60,6 +82,9 @@ def helper_main(link: Path) -> None:
         if cmd[0] == "send":
             data = Path(cmd[1]).read_bytes()
             t0, t1 = _pace(master, data, int(cmd[2]), int(cmd[3]))
+            print("done", t0, t1, flush=True)
+        elif cmd[0] == "replay":
+            t0, t1 = _replay(master, Path(cmd[1]), float(cmd[2]) if len(cmd) > 2 else 1.0)
             print("done", t0, t1, flush=True)
         elif cmd[0] == "replug":
             os.close(master)
@@ -118,6 +143,17 @@ class PtyAdapter:
         assert self.proc.stdout is not None
         answer = self.proc.stdout.readline().split()
         return int(answer[1]), int(answer[2])
+
+    def replay(self, capture: Path, speed: float = 1.0) -> tuple[int, int]:
+        """Write a capture's bytes into the pty at their recorded pace (``speed`` times as fast)."""
+        t0, t1 = self._command(f"replay {capture} {speed}")
+        return int(t0), int(t1)
+
+    def replay_async(self, capture: Path, speed: float = 1.0) -> None:
+        """Start :meth:`replay` and return at once; :meth:`wait_sent` collects the answer."""
+        assert self.proc.stdin is not None
+        self.proc.stdin.write(f"replay {capture} {speed}\n")
+        self.proc.stdin.flush()
 
     def replug(self, new_link: Path | None = None) -> None:
         """Make the device vanish (the pty closes, the path disappears) and come back as a new pty."""

@@ -7,8 +7,6 @@ wrote, the project's documented formats); no check value comes from outside the 
 from __future__ import annotations
 
 import argparse
-import subprocess
-import sys
 import time
 from datetime import datetime
 
@@ -34,25 +32,48 @@ def test_until_is_the_next_time_the_clock_shows_it():
 def test_rotate_takes_a_size_or_a_duration():
     assert rotate_arg("200MB") == ("bytes", 200_000_000)
     assert rotate_arg("1h") == ("time", 3600 * 10**9)
-    with pytest.raises(argparse.ArgumentTypeError, match="neither a duration"):
+    assert rotate_arg("1h30m") == ("time", 5400 * 10**9)
+    assert rotate_arg("1MB") == ("bytes", 1_000_000)
+    with pytest.raises(argparse.ArgumentTypeError, match="needs a unit"):
         rotate_arg("soon")
+
+
+@pytest.mark.parametrize("text", ["3600", "200", "0.5", "1e9"])
+def test_rotate_without_a_unit_is_refused(text):
+    with pytest.raises(argparse.ArgumentTypeError, match="needs a unit: a duration such as 1h"):
+        rotate_arg(text)
+
+
+@pytest.mark.parametrize("text, why", [("1s", "at least 1m"), ("59s", "at least 1m"), ("500ms", "needs a unit"),
+                                       ("8KB", "at least 1MB"), ("999999B", "at least 1MB")])
+def test_rotate_below_the_minimum_is_refused(text, why):
+    with pytest.raises(argparse.ArgumentTypeError, match=why):
+        rotate_arg(text)
+
+
+def test_rotate_refusal_is_a_one_line_usage_error(capsys):
+    from buswitness.cli.main import main
+
+    with pytest.raises(SystemExit) as exc:
+        main(["record", "/dev/ttyUSB9", "-o", "x.bwcap", "--rotate", "100"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "needs a unit" in err
 
 
 def test_rotation_by_size_gives_numbered_parts_that_read_back_as_one(tmp_path):
     out = tmp_path / "rot.bwcap"
     payload = sample_bytes(30000, seed=21)
     with PtyAdapter(tmp_path / "ttyR") as adapter:
-        proc = subprocess.Popen([sys.executable, "-m", "buswitness.cli.main", "record", str(adapter.link), "-o",
-                                 str(out), "--rotate", "8KB", "--quiet"], stderr=subprocess.PIPE, text=True)
-        end = time.monotonic() + 20
-        while not (out.exists() and out.stat().st_size) and time.monotonic() < end:
-            time.sleep(0.05)
-        # Slow enough that several one-second blocks are written, each one a rotation chance.
-        adapter.send(payload, 76800, chunk=64)
-        time.sleep(0.5)
-        proc.terminate()
-        _, err = proc.communicate(timeout=30)
-    assert proc.returncode == 0, err
+        # Below the command line's 1MB minimum (MIN_ROTATE_BYTES), so the recorder is driven directly.
+        rec = Recorder(RecorderConfig([str(adapter.link)], SerialFormat(), out, rotate_bytes=8000))
+        rec.start()
+        try:
+            # Slow enough that several one-second blocks are written, each one a rotation chance.
+            adapter.send(payload, 76800, chunk=64)
+            time.sleep(0.5)
+        finally:
+            rec.join()
     reader = CaptureReader(out)
     assert len(reader.paths) >= 2 and reader.paths[1].name == "rot.0001.bwcap"
     assert b"".join(r.data for r in reader.iter_records()) == payload
