@@ -26,7 +26,7 @@ from buswitness.analysis.figures import (
     response_figures,
 )
 from buswitness.analysis.finding import Finding
-from buswitness.analysis.histogram import FINE, quantile
+from buswitness.analysis.histogram import COARSE, FINE, quantile, quantiles_rows
 from buswitness.analysis.stationmap import StationMap
 from buswitness.analysis.timeout import TimeoutEstimate
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
@@ -208,6 +208,32 @@ class AnalysisResult:
         for key, values in bands.items():
             padded = list(values) + [float("nan")] * (n - len(values))
             out["rt_" + key] = padded
+        return out
+
+    def response_bands(self, address: int, k: int = 1, bins: int | None = None) -> dict:
+        """p50, p95 and max response time of one station in bins of ``k`` minutes (NaN where it did not answer).
+
+        The bins' histograms are added before the quantiles are read, so a 15-minute p95 is the p95
+        of those 15 minutes, not a mean of per-minute ones."""
+        n = self.minutes()
+        bins = max(1, -(-n // k)) if bins is None else bins
+        out = {key: np.full(bins, np.nan) for key in ("p50", "p95", "max")}
+        counts = self.figures.station_minute_rt.get(address)
+        mx = self.figures.station_minute_max.get(address)
+        if counts is None or mx is None or not len(counts):
+            return out
+        rows = np.zeros((bins * k, counts.shape[1]), counts.dtype)
+        m = min(len(counts), bins * k)
+        rows[:m] = counts[:m]
+        folded = rows.reshape(bins, k, -1).sum(axis=1)
+        out["p50"] = quantiles_rows(folded, 0.5, COARSE)
+        out["p95"] = quantiles_rows(folded, 0.95, COARSE)
+        peak = np.full(bins * k, np.nan)
+        peak[:min(len(mx), bins * k)] = mx[:bins * k, 0]
+        with np.errstate(all="ignore"):
+            grouped = peak.reshape(bins, k)
+            has = ~np.all(np.isnan(grouped), axis=1)
+            out["max"][has] = np.nanmax(grouped[has], axis=1)
         return out
 
     def bus_series(self) -> dict:
