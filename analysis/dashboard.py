@@ -243,7 +243,8 @@ def finding_views(result: AnalysisResult) -> list[dict]:
     return [{"severity": f.severity, "statement": f.statement, "station_label": f.station_label,
              "evidence": f.evidence, "examples": f.examples[:EXAMPLES_PER_FINDING], "causes": f.causes,
              "caution": f.caution,
-             "when": "" if f.t_start_s is None else f"{_clock(result, f.t_start_s)} to {_clock(result, f.t_end_s)}"}
+             "when": "" if f.t_start_s is None or f.t_end_s == f.t_start_s
+             else f"{_clock(result, f.t_start_s)} to {_clock(result, f.t_end_s)}"}
             for f in result.findings]
 
 

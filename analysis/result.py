@@ -151,9 +151,16 @@ class AnalysisResult:
         return np.stack([self.figures.events[1:, kinds].sum(axis=1), self.figures.outcomes.sum(axis=1)], axis=1)
 
     def station(self, address: int) -> StationFigures | None:
+        """The figures of one station; None when the capture has traffic but none of it to or from ``address``.
+
+        A capture with no valid frame at all (the no-traffic and no-valid-frames findings) says
+        nothing of any address: every station has zero figures there, so a report on one can still
+        be written, and says why it is empty."""
         for s in self.stations:
             if s.address == address:
                 return s
+        if not self.bus.frames:
+            return silent_station(address, self.station_map)
         return None
 
     @property
@@ -279,6 +286,19 @@ class AnalysisResult:
             values.append(int(counts[k:k + step].sum()))
         edges.append(round(float(FINE.lower_edge(min(hi, lo + step * len(values)))), 3))
         return edges, values
+
+
+def silent_station(address: int, smap: StationMap) -> StationFigures:
+    """Zero figures for a station of a capture in which nothing could be read."""
+    info = smap.get(address)
+    return StationFigures(
+        address=address, name=smap.name(address), label=smap.label(address),
+        position_m=info.position_m if info else None, notes=info.notes if info else "", requests=0, answered=0,
+        ok=0, timeouts=0, late=0, exceptions=0, exceptions_by_code={}, corrupt=0, ambiguous=0, crc_errors=0,
+        collisions=0, retries=0, response_ms=dict.fromkeys(("min", "p50", "p95", "p99", "max")),
+        response_ms_interval=dict.fromkeys(("p50", "p95", "p99")), timing_halfwidth_ms=None,
+        answers_over_timeout=None, poll_cycle_ms={"p50": None, "p95": None}, waiting_s=0.0, availability=None,
+        events={}, functions={}, device_ids=[], late_listed=0)
 
 
 def _station_figures(acc: Figures, address: int, smap: StationMap, timeout: TimeoutEstimate) -> StationFigures:
