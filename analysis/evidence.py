@@ -158,8 +158,9 @@ def headline_cards(result: AnalysisResult, s: StationFigures, findings: list) ->
 def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdentity] | None = None) -> dict:
     """Everything the evidence template shows, as plain data."""
     s = result.station(address)
-    if s is None or s.requests == 0 and not s.events and result.bus.frames:
-        seen = ", ".join(str(x.address) for x in result.stations if x.requests) or "none"
+    polled = [x for x in result.stations if x.requests]
+    if s is None or s.requests == 0 and not s.events and polled:
+        seen = ", ".join(str(x.address) for x in polled) or "none"
         raise UsageError(f"station {address} does not appear in this capture (stations polled: {seen})")
     silence = [f for f in result.findings if f.rule in SILENCE_RULES and f.station is None]
     findings = silence + [f for f in result.findings if f.station == address]

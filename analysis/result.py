@@ -151,15 +151,15 @@ class AnalysisResult:
         return np.stack([self.figures.events[1:, kinds].sum(axis=1), self.figures.outcomes.sum(axis=1)], axis=1)
 
     def station(self, address: int) -> StationFigures | None:
-        """The figures of one station; None when the capture has traffic but none of it to or from ``address``.
+        """The figures of one station; None when the master polled stations, but not ``address``.
 
-        A capture with no valid frame at all (the no-traffic and no-valid-frames findings) says
-        nothing of any address: every station has zero figures there, so a report on one can still
-        be written, and says why it is empty."""
+        A capture in which no request to any station could be read (the no-traffic, no-valid-frames
+        and unreadable-line findings) says nothing of any address: every station has zero figures
+        there, so a report on one can still be written, and says why it is empty."""
         for s in self.stations:
             if s.address == address:
                 return s
-        if not self.bus.frames:
+        if not any(s.requests for s in self.stations):
             return silent_station(address, self.station_map)
         return None
 
