@@ -252,7 +252,8 @@ def _clock(result: AnalysisResult, t_s: float | None) -> str:
     if t_s is None:
         return "end"
     utc = result.utc_at(t_s)
-    return utc[11:19] + " UTC" if utc else f"{t_s / 3600:.2f} h"
+    hours = t_s / 3600
+    return utc[11:19] + " UTC" if utc else f"{0.0 if abs(hours) < 0.005 else hours:.2f} h"
 
 
 def dashboard_data(result: AnalysisResult) -> dict:
