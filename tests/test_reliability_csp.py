@@ -63,7 +63,7 @@ def test_the_dashboard_draws_every_chart_under_its_policy_without_a_violation(ca
     require_chromium()
     assert main(["analyze", str(capture / "s.bwcap"), "--no-progress", "--html", str(capture / "b.html")]) == 0
     with OfflinePage(capture / "b.html") as (page, visit):
-        page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
+        page.wait_for_function("() => document.body.dataset.charts === 'drawn'", timeout=30_000)
         for chart in ("chart-rt", "chart-avail", "chart-dist", "chart-timeline", "chart-util"):
             assert page.evaluate(f"document.querySelectorAll('#{chart} .main-svg').length") > 0, chart
     assert visit.errors == [], visit.errors  # a policy violation is a console error in Chromium

@@ -117,7 +117,7 @@ def test_a_silent_capture_leads_both_reports_with_a_critical_finding(reports, na
 
 def test_the_demo_dashboard_splits_no_hex_byte_or_time_across_lines(reports):
     with OfflinePage(reports / "demo" / "report.html", width=1100) as (page, visit):
-        page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
+        page.wait_for_function("() => document.body.dataset.charts === 'drawn'", timeout=30_000)
         assert page.locator("#summary .finding .sev-critical").count() >= 1
         plots = page.evaluate("new Set(document.getElementById('chart-rt').data.map(t => t.xaxis)).size")
         assert plots == page.locator("#station-table tbody tr").count() == 8  # one small plot per station
@@ -147,7 +147,7 @@ def test_the_demo_evidence_report_splits_no_token_on_screen_or_on_a4(reports):
 def test_a_one_minute_dashboard_is_at_most_two_megabytes_and_its_png_button_downloads_a_png(reports):
     assert (reports / "minute.html").stat().st_size <= 2_000_000
     with OfflinePage(reports / "minute.html") as (page, visit):
-        page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
+        page.wait_for_function("() => document.body.dataset.charts === 'drawn'", timeout=30_000)
         assert page.locator(".modebar-btn[data-title*='share' i], .modebar-btn[data-title*='Chart Studio']").count() == 0
         assert page.locator("a[href*='plot.ly'], a[href*='plotly.com']").count() == 0
         chart = page.locator("#chart-util")
