@@ -52,7 +52,7 @@ CSP = ("default-src 'none'; script-src 'unsafe-inline'; style-src 'unsafe-inline
        "font-src data:")
 #: The x values of a trace that uses the page's shared time axis (filled in by the page's script).
 SHARED_X = "@time"
-#: Small multiples: pixels per row of station plots, and columns by number of stations.
+#: Small multiples: pixels per row of station plots (1 column up to 3 stations, 2 up to 12, then 3).
 MULTIPLE_ROW_PX = 118
 #: A station's plot is on a log scale when its slowest answers are this many times its fastest bins, else
 #: on a linear one from zero; the timeout line is drawn on a linear plot only when it is this close to the data.
@@ -87,7 +87,7 @@ def _columns(n: int) -> int:
 
 
 def _small_multiples(result: AnalysisResult, bins: Bins) -> dict:
-    """Response time per station: one small log-scale plot each, on one shared (linked) time axis."""
+    """Response time per station: one small plot each (its own scale), on one shared (linked) time axis."""
     stations = [s for s in result.stations
                 if any(v is not None for v in bins.stations.get(s.address, {}).get("p95", []))]
     n = len(stations)
