@@ -77,7 +77,7 @@ def charts(result: AnalysisResult, detail: TimeDetail | None = None) -> dict:
 
 
 def _base_layout() -> dict:
-    return {"margin": {"l": 60, "r": 20, "t": 10, "b": 45}, "paper_bgcolor": "rgba(0,0,0,0)",
+    return {"margin": {"l": 60, "r": 20, "t": 10, "b": 60}, "paper_bgcolor": "rgba(0,0,0,0)",
             "plot_bgcolor": "#fbfaf7", "font": {"family": "system-ui, sans-serif", "size": 12, "color": "#27323a"},
             "legend": {"orientation": "h", "x": 0, "y": 1.02, "yanchor": "bottom"}, "hovermode": "closest"}
 
@@ -95,12 +95,12 @@ def _small_multiples(result: AnalysisResult, bins: Bins) -> dict:
         return {"data": [], "layout": {}}
     cols = _columns(n)
     rows = math.ceil(n / cols)
-    height = rows * MULTIPLE_ROW_PX + 70
-    plot_h = height - 20 - 50
+    height = rows * MULTIPLE_ROW_PX + 80
+    plot_h = height - 20 - 60
     gap_y = 30 / plot_h
     gap_x = 0.05
     timeout = result.timeout.timeout_ms
-    layout = {**_base_layout(), "height": height, "showlegend": True, "margin": {"l": 55, "r": 15, "t": 20, "b": 50},
+    layout = {**_base_layout(), "height": height, "showlegend": True, "margin": {"l": 55, "r": 15, "t": 20, "b": 60},
               "legend": {"orientation": "h", "x": 1, "xanchor": "right", "y": 1.0, "yanchor": "bottom"}}
     data, annotations, shapes = [], [], []
     for i, s in enumerate(stations):
@@ -111,7 +111,7 @@ def _small_multiples(result: AnalysisResult, bins: Bins) -> dict:
         layout[f"xaxis{ax}"] = {"domain": [c / cols + (gap_x / 2 if c else 0), (c + 1) / cols - (gap_x / 2 if c < cols - 1 else 0)],
                                 "anchor": f"y{ax}", "showticklabels": bottom, "ticks": "outside" if bottom else "",
                                 **({"matches": "x"} if i else {}),
-                                **({"title": {"text": bins.x_title, "standoff": 2}} if bottom and c == 0 else {})}
+                                **({"title": {"text": bins.x_title, "standoff": 12}} if bottom and c == 0 else {})}
         values = [v for key in ("p50", "p95", "max") for v in series[key] if v is not None]
         real = [v for v in values if v >= SCALE_FLOOR_MS] or values  # not the adapter's zeros (zero_spike)
         low, high = min(real), max(real)
@@ -167,7 +167,7 @@ def zero_spike(result: AnalysisResult) -> dict | None:
 
 def _charts(result: AnalysisResult, bins: Bins) -> dict:
     base_layout = _base_layout()
-    x_axis = {"title": {"text": bins.x_title, "standoff": 4}}
+    x_axis = {"title": {"text": bins.x_title, "standoff": 12}}  # clear of the date line under the ticks
     avail_traces, dist_traces, heat_z, heat_y = [], [], [], []
     for i, s in enumerate(result.stations):
         colour = STATION_COLOURS[i % len(STATION_COLOURS)]
@@ -224,7 +224,7 @@ def _charts(result: AnalysisResult, bins: Bins) -> dict:
                                "colorscale": [[0, "#f4f1ea"], [0.001, "#f1d9a6"], [0.3, "#d08a2c"], [1, "#8c2f2b"]],
                                "colorbar": {"title": {"text": per}}, "hoverongaps": False}]
                      if heat_z and any(any(row) for row in heat_z) else [],
-                     "layout": {**base_layout, "margin": {"l": 190, "r": 20, "t": 10, "b": 45}, "xaxis": x_axis}},
+                     "layout": {**base_layout, "margin": {"l": 190, "r": 20, "t": 10, "b": 60}, "xaxis": x_axis}},
         "events": {"data": events, "layout": {**base_layout, "barmode": "stack",
                                               "yaxis": {"title": {"text": f"events {per}"}}, "xaxis": x_axis}},
         "util": {"data": [{"type": "scatter", "mode": "lines", "name": "line busy", "x": SHARED_X,
