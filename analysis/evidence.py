@@ -155,6 +155,15 @@ def headline_cards(result: AnalysisResult, s: StationFigures, findings: list) ->
             _card(_ms_text(s.response_ms.get("p95")), "95th percentile response time" + against)]
 
 
+def _exceptions_text(result: AnalysisResult, s: StationFigures) -> str:
+    """Exception responses written out: Modbus codes with their names (MAP V1.1b3 p48-49), other protocols' status."""
+    if not s.exceptions_by_code:
+        return ""
+    if result.protocol.startswith("modbus"):
+        return exceptions_sentence(s.exceptions_by_code)
+    return "; ".join(f"{fmt_count(n)} with status {code}" for code, n in sorted(s.exceptions_by_code.items()))
+
+
 def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdentity] | None = None) -> dict:
     """Everything the evidence template shows, as plain data."""
     s = result.station(address)
@@ -173,7 +182,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         "untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "s": s, "result": result, "timeout": result.timeout, "findings": findings,
         "caution": next((f.caution for f in findings if f.caution), ""), "silent": bool(silence),
         "cards": headline_cards(result, s, findings),
-        "exceptions": exceptions_sentence(s.exceptions_by_code) if s.exceptions_by_code else "",
+        "exceptions": _exceptions_text(result, s), "modbus": result.protocol.startswith("modbus"),
         "identity": identity if identity is not None else file_identity(result.paths),
         "header": result.header, "latency": latency, "latency_ms": latency_ms,
         "pitch_notices": [d["notice"] for d in result.delivery if d.get("notice")],
