@@ -77,7 +77,7 @@ def charts(result: AnalysisResult, detail: TimeDetail | None = None) -> dict:
 
 
 def _base_layout() -> dict:
-    return {"margin": {"l": 60, "r": 20, "t": 10, "b": 60}, "paper_bgcolor": "rgba(0,0,0,0)",
+    return {"margin": {"l": 60, "r": 20, "t": 10, "b": 60}, "paper_bgcolor": "#ffffff",  # the cards are white; a downloaded PNG is not see-through
             "plot_bgcolor": "#fbfaf7", "font": {"family": "system-ui, sans-serif", "size": 12, "color": "#27323a"},
             "legend": {"orientation": "h", "x": 0, "y": 1.02, "yanchor": "bottom"}, "hovermode": "closest"}
 
