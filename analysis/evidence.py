@@ -14,7 +14,14 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from buswitness.analysis.histogram import FINE, count_above
-from buswitness.analysis.render import environment, stylesheet
+from buswitness.analysis.render import (
+    environment,
+    exception_name,
+    exceptions_sentence,
+    fmt_count,
+    fmt_share,
+    stylesheet,
+)
 from buswitness.analysis.result import AnalysisResult, StationFigures
 from buswitness.analysis.summary import UNTIMED_NOTE
 from buswitness.decode.timing import t35_s
@@ -94,13 +101,78 @@ def _tail(result: AnalysisResult, s: StationFigures) -> list[dict]:
     return rows
 
 
+#: Bus-wide findings that make any report on one station empty: they lead the report on every station.
+SILENCE_RULES = ("no-traffic", "no-valid-frames", "unreadable-line")
+
+
+def _card(value: str, caption: str) -> dict:
+    return {"value": value, "caption": caption}
+
+
+def _ms_text(v: float | None) -> str:
+    return "–" if v is None else f"{v:,.1f} ms"
+
+
+def headline_cards(result: AnalysisResult, s: StationFigures, findings: list) -> list[dict]:
+    """The four figures at the top of the report, chosen for what its leading finding is about.
+
+    A duplicate address is told by the share of garbled answers, not by "0 timeouts"; a slow
+    station by its late answers against the timeout; a silent capture by what it did not hold."""
+    rule = findings[0].rule if findings else ""
+    t = result.timeout.timeout_ms
+    against = f" against a {t:.0f} ms timeout" if t else ""
+    requests = _card(fmt_count(s.requests), f"requests to address {s.address}")
+    if rule in SILENCE_RULES:
+        bus = result.bus
+        return [_card(fmt_count(bus.frames), "valid frames in the whole capture"),
+                _card(fmt_count(bus.bytes), "bytes in valid frames"),
+                _card(f"{bus.duration_s:,.0f} s", "recorded"),
+                _card(str(result.header.serial), "line settings the sniffer used")]
+    if rule == "duplicate-address":
+        orphans = next((f.evidence.get("orphan_answers") for f in findings if f.rule == rule), None)
+        return [_card(fmt_share(s.corrupt / s.requests) if s.requests else "–", "of its answers garbled"),
+                _card(fmt_count(s.crc_errors), "frames from its address failing the CRC check"),
+                _card("–" if orphans is None else fmt_count(orphans), "valid answers when none was awaited"),
+                requests]
+    if rule in ("no-answers", "never-present", "silent-period", "missed-polls"):
+        return [_card(fmt_count(s.timeouts), "requests with no answer (timeouts)"),
+                _card(fmt_share(s.timeouts / s.requests) if s.requests else "–", "of its requests unanswered"),
+                _card(f"{s.waiting_s:,.1f} s", "the master spent waiting on it"), requests]
+    if rule == "exceptions":
+        top = max(s.exceptions_by_code.items(), key=lambda kv: kv[1], default=None)
+        return [_card(fmt_count(s.exceptions), "exception responses"),
+                _card(fmt_share(s.exceptions / s.requests) if s.requests else "–", "of its requests"),
+                _card("–" if top is None else f"{top[0]:02X}",
+                      "most frequent exception" + ("" if top is None else f": {exception_name(top[0])}")),
+                requests]
+    if rule in ("station-errors", "far-station-errors", "errors-clustered", "errors-bus-wide"):
+        return [_card(fmt_share(s.corrupt / s.requests) if s.requests else "–", "of its answers damaged"),
+                _card(fmt_count(s.crc_errors), "frames failing the CRC check"),
+                _card(fmt_count(s.retries), "retries by the master"), requests]
+    return [requests,
+            _card(fmt_count(s.late), "answers after the master had given up (late)"),
+            _card(fmt_count(s.timeouts), "unanswered (timeouts)"),
+            _card(_ms_text(s.response_ms.get("p95")), "95th percentile response time" + against)]
+
+
+def _exceptions_text(result: AnalysisResult, s: StationFigures) -> str:
+    """Exception responses written out: Modbus codes with their names (MAP V1.1b3 p48-49), other protocols' status."""
+    if not s.exceptions_by_code:
+        return ""
+    if result.protocol.startswith("modbus"):
+        return exceptions_sentence(s.exceptions_by_code)
+    return "; ".join(f"{fmt_count(n)} with status {code}" for code, n in sorted(s.exceptions_by_code.items()))
+
+
 def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdentity] | None = None) -> dict:
     """Everything the evidence template shows, as plain data."""
     s = result.station(address)
-    if s is None or s.requests == 0 and not s.events:
-        seen = ", ".join(str(x.address) for x in result.stations if x.requests) or "none"
+    polled = [x for x in result.stations if x.requests]
+    if s is None or s.requests == 0 and not s.events and polled:
+        seen = ", ".join(str(x.address) for x in polled) or "none"
         raise UsageError(f"station {address} does not appear in this capture (stations polled: {seen})")
-    findings = [f for f in result.findings if f.station == address]
+    silence = [f for f in result.findings if f.rule in SILENCE_RULES and f.station is None]
+    findings = silence + [f for f in result.findings if f.station == address]
     ports = result.header.ports
     methods = {d["port"]: d["estimate"]["method"] for d in result.delivery if d.get("estimate")}
     latency = [{"name": p.name, "latency_ms": p.latency_ms, "source": p.latency_source,
@@ -108,7 +180,9 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
     latency_ms = max((p.latency_ms for p in ports if p.latency_ms is not None), default=None)
     return {
         "untimed": UNTIMED_NOTE if result.header.timing == "none" else "", "s": s, "result": result, "timeout": result.timeout, "findings": findings,
-        "caution": next((f.caution for f in findings if f.caution), ""),
+        "caution": next((f.caution for f in findings if f.caution), ""), "silent": bool(silence),
+        "cards": headline_cards(result, s, findings),
+        "exceptions": _exceptions_text(result, s), "modbus": result.protocol.startswith("modbus"),
         "identity": identity if identity is not None else file_identity(result.paths),
         "header": result.header, "latency": latency, "latency_ms": latency_ms,
         "pitch_notices": [d["notice"] for d in result.delivery if d.get("notice")],

@@ -23,6 +23,7 @@ from buswitness.analysis.rules import (
     layout,
     line,
     load,
+    silence,
     timing,
 )
 from buswitness.analysis.rules.thresholds import Thresholds
@@ -31,6 +32,8 @@ Rule = Callable[[AnalysisResult, Thresholds], list[Finding]]
 
 #: Every rule, by the id its findings carry.
 RULES: dict[str, Rule] = {
+    "no-traffic": silence.no_traffic,
+    "no-valid-frames": silence.no_valid_frames,
     "unreadable-line": line.unreadable_line,
     "sniffer-format": line.sniffer_format,
     "no-answers": absence.no_answers,
@@ -62,7 +65,9 @@ RULES: dict[str, Rule] = {
 #: A finding of the key rule makes findings of these rules redundant: on the same station, or on
 #: any station when either of the two concerns the bus as a whole.
 SUPERSEDES: dict[str, frozenset[str]] = {
-    "unreadable-line": frozenset(RULES) - {"unreadable-line"},
+    "no-traffic": frozenset(RULES) - {"no-traffic"},
+    "no-valid-frames": frozenset(RULES) - {"no-valid-frames"},
+    "unreadable-line": frozenset(RULES) - {"unreadable-line", "no-traffic", "no-valid-frames"},
     "no-answers": frozenset({"never-present", "silent-period", "missed-polls", "timeout-headroom"}),
     "duplicate-address": frozenset({"station-errors", "far-station-errors", "errors-bus-wide", "missed-polls",
                                     "late-collisions", "gap-in-frame", "idle-stray-bytes"}),

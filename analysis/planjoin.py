@@ -302,8 +302,8 @@ def joined_findings(plan: BusPlan, results: list[PlanResult] | None, result: Ana
                     th: Thresholds | None = None) -> list[Finding]:
     """Findings where the description and the capture's traffic agree."""
     th = th or Thresholds()
-    if line.unreadable_line(result, th):
-        return []  # the sniffer cannot read the line: nothing placed along it can be trusted
+    if not result.bus.frames or line.unreadable_line(result, th):
+        return []  # no valid frame, or the sniffer cannot read the line: nothing placed along it can be trusted
     results = check_plan(plan) if results is None else results
     # two devices on one address garble its answers wherever it sits: its damage says nothing of the wire
     skip = frozenset(f.station for f in duplicate.duplicate_address(result, th) if f.station is not None)

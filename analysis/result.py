@@ -26,7 +26,7 @@ from buswitness.analysis.figures import (
     response_figures,
 )
 from buswitness.analysis.finding import Finding
-from buswitness.analysis.histogram import FINE, quantile
+from buswitness.analysis.histogram import COARSE, FINE, quantile, quantiles_rows
 from buswitness.analysis.stationmap import StationMap
 from buswitness.analysis.timeout import TimeoutEstimate
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
@@ -151,9 +151,16 @@ class AnalysisResult:
         return np.stack([self.figures.events[1:, kinds].sum(axis=1), self.figures.outcomes.sum(axis=1)], axis=1)
 
     def station(self, address: int) -> StationFigures | None:
+        """The figures of one station; None when the master polled stations, but not ``address``.
+
+        A capture in which no request to any station could be read (the no-traffic, no-valid-frames
+        and unreadable-line findings) says nothing of any address: every station has zero figures
+        there, so a report on one can still be written, and says why it is empty."""
         for s in self.stations:
             if s.address == address:
                 return s
+        if not any(s.requests for s in self.stations):
+            return silent_station(address, self.station_map)
         return None
 
     @property
@@ -210,6 +217,32 @@ class AnalysisResult:
             out["rt_" + key] = padded
         return out
 
+    def response_bands(self, address: int, k: int = 1, bins: int | None = None) -> dict:
+        """p50, p95 and max response time of one station in bins of ``k`` minutes (NaN where it did not answer).
+
+        The bins' histograms are added before the quantiles are read, so a 15-minute p95 is the p95
+        of those 15 minutes, not a mean of per-minute ones."""
+        n = self.minutes()
+        bins = max(1, -(-n // k)) if bins is None else bins
+        out = {key: np.full(bins, np.nan) for key in ("p50", "p95", "max")}
+        counts = self.figures.station_minute_rt.get(address)
+        mx = self.figures.station_minute_max.get(address)
+        if counts is None or mx is None or not len(counts):
+            return out
+        rows = np.zeros((bins * k, counts.shape[1]), counts.dtype)
+        m = min(len(counts), bins * k)
+        rows[:m] = counts[:m]
+        folded = rows.reshape(bins, k, -1).sum(axis=1)
+        out["p50"] = quantiles_rows(folded, 0.5, COARSE)
+        out["p95"] = quantiles_rows(folded, 0.95, COARSE)
+        peak = np.full(bins * k, np.nan)
+        peak[:min(len(mx), bins * k)] = mx[:bins * k, 0]
+        with np.errstate(all="ignore"):
+            grouped = peak.reshape(bins, k)
+            has = ~np.all(np.isnan(grouped), axis=1)
+            out["max"][has] = np.nanmax(grouped[has], axis=1)
+        return out
+
     def bus_series(self) -> dict:
         """Per-minute bus utilisation, frames and events by kind."""
         view = self.figures.bus_minutes
@@ -253,6 +286,19 @@ class AnalysisResult:
             values.append(int(counts[k:k + step].sum()))
         edges.append(round(float(FINE.lower_edge(min(hi, lo + step * len(values)))), 3))
         return edges, values
+
+
+def silent_station(address: int, smap: StationMap) -> StationFigures:
+    """Zero figures for a station of a capture in which nothing could be read."""
+    info = smap.get(address)
+    return StationFigures(
+        address=address, name=smap.name(address), label=smap.label(address),
+        position_m=info.position_m if info else None, notes=info.notes if info else "", requests=0, answered=0,
+        ok=0, timeouts=0, late=0, exceptions=0, exceptions_by_code={}, corrupt=0, ambiguous=0, crc_errors=0,
+        collisions=0, retries=0, response_ms=dict.fromkeys(("min", "p50", "p95", "p99", "max")),
+        response_ms_interval=dict.fromkeys(("p50", "p95", "p99")), timing_halfwidth_ms=None,
+        answers_over_timeout=None, poll_cycle_ms={"p50": None, "p95": None}, waiting_s=0.0, availability=None,
+        events={}, functions={}, device_ids=[], late_listed=0)
 
 
 def _station_figures(acc: Figures, address: int, smap: StationMap, timeout: TimeoutEstimate) -> StationFigures:

@@ -418,7 +418,7 @@ def test_clean_traffic_gives_nothing_above_information():
 
 
 def test_every_wiring_finding_carries_the_caution():
-    wiring = {"unreadable-line", "no-answers", "never-present", "silent-period", "duplicate-address",
+    wiring = {"no-traffic", "no-valid-frames", "unreadable-line", "no-answers", "never-present", "silent-period", "duplicate-address",
               "errors-clustered", "far-station-errors", "station-errors", "errors-bus-wide", "idle-stray-bytes",
               "line-not-held-idle", "missed-polls", "device-count", "cable-length"}
     assert "not a measurement of the wire" in WIRING_CAUTION
@@ -463,8 +463,8 @@ def test_burst_hidden_under_a_duplicate_addresses_damage_is_found_on_the_other_s
     assert found[0].evidence["counted"] == "damaged answers"
 
 
-def test_an_empty_capture_has_no_findings():
-    assert evaluate(analyze_tables(header(), [])) == []
+def test_an_empty_capture_has_only_the_no_traffic_finding():
+    assert rules_of(evaluate(analyze_tables(header(), []))) == ["no-traffic"]
 
 
 def test_answers_at_twice_t35_are_not_suspected_of_a_short_turnaround():
@@ -472,3 +472,33 @@ def test_answers_at_twice_t35_are_not_suspected_of_a_short_turnaround():
     for t in txs:
         t.halfwidth_ms = 4.0
     assert timing.possible_short_turnaround(result_of(txs), TH) == []
+
+
+# -- a capture with nothing to analyse -------------------------------------------------------------------
+
+def test_a_capture_without_one_byte_is_a_critical_no_traffic_finding_not_a_clean_bill():
+    found = evaluate(result_of([]))
+    assert [(f.rule, f.severity) for f in found] == [("no-traffic", "critical")]
+    (f,) = found
+    assert f.statement.startswith("No traffic") and "not a healthy bus" in f.statement
+    causes = " ".join(c.cause + " " + c.check for c in f.causes)
+    assert "not on the bus" in causes and "A and B" in causes and "buswitness detect" in causes
+    assert f.caution == WIRING_CAUTION
+
+
+def test_bytes_that_never_form_a_frame_are_a_critical_no_valid_frames_finding():
+    garbage = [(0.1 + 0.5 * i, "crc_error", 0, b"\x12\x34\x56") for i in range(2)]  # under MIN_EVENTS
+    found = evaluate(result_of([], garbage))
+    assert [(f.rule, f.severity) for f in found] == [("no-valid-frames", "critical")]
+    assert "buswitness detect" in found[0].causes[0].check
+
+
+def test_a_line_full_of_garbage_is_the_unreadable_line_finding_alone_and_it_points_to_detect():
+    garbage = [(0.1 + 0.05 * i, "crc_error", 0, bytes(range(i % 7 + 3))) for i in range(600)]
+    found = evaluate(result_of([], garbage))
+    assert rules_of(found) == ["unreadable-line"] and found[0].severity == "critical"
+    assert any("buswitness detect" in c.check for c in found[0].causes)
+
+
+def test_traffic_with_valid_frames_raises_neither_silence_finding():
+    assert not {"no-traffic", "no-valid-frames"} & set(rules_of(evaluate(result_of(polls(60)))))

@@ -30,3 +30,9 @@ def test_console_script_is_installed():
     exe = shutil.which("buswitness") or str(__import__("pathlib").Path(sys.executable).parent / "buswitness")
     out = subprocess.run([exe, "--version"], capture_output=True, text=True, timeout=60)
     assert out.returncode == 0 and out.stdout.startswith("buswitness")
+
+
+def test_the_vendored_plotly_bundle_and_its_licence_are_installed_with_the_templates():
+    vendor = importlib.resources.files("buswitness.analysis.templates").joinpath("vendor")
+    for name in ("plotly-cartesian.min.js", "plotly-cartesian.LICENSE", "README.md"):
+        assert vendor.joinpath(name).is_file(), name

@@ -79,7 +79,7 @@ def test_plan_page_shows_every_device_and_every_failed_rule(pages):
 
 def test_dashboard_plan_panel_shows_every_device_and_every_failed_rule(pages):
     with OfflinePage(pages / "report.html") as (page, visit):
-        page.wait_for_function("document.querySelectorAll('#chart-rt .main-svg').length > 0", timeout=30_000)
+        page.wait_for_function("() => document.body.dataset.charts === 'drawn'", timeout=30_000)
         _check_drawing(page, "section#plan")
         ARTIFACTS.mkdir(exist_ok=True)
         shot = ARTIFACTS / "dashboard-plan-panel.png"

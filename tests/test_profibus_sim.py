@@ -67,7 +67,7 @@ def test_profibus_figures_and_findings_reach_the_reports(run, tmp_path):
     assert 'id="protocol-slaves"' in html and f"slave {drop}" in html
     text = write_evidence(result, drop, tmp_path / "e.html").read_text()
     assert "drop-outs (Profibus DP)" in text
-    assert f"{result.station(drop).requests}</td>" in text
+    assert f"{result.station(drop).requests:,}</td>" in text  # counts with thousands separators
 
 
 def test_cli_simulate_and_analyze_with_protocol_option(tmp_path):

@@ -88,7 +88,7 @@ def _leftovers(out: Path) -> list[str]:
 def test_renderer_failing_leaves_the_earlier_report_untouched(capture, tmp_path, monkeypatch):
     html, _js = _first_run(capture, tmp_path)
 
-    def broken(result):
+    def broken(result, detail=None):
         raise RuntimeError("renderer fault injected by the test")
 
     monkeypatch.setattr(dashboard, "render_dashboard", broken)

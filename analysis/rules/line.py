@@ -57,7 +57,8 @@ def unreadable_line(result: AnalysisResult, th: Thresholds) -> list[Finding]:
     settings = Cause(f"The sniffer listens with the wrong settings ({serial}); the bus runs at another baud "
                      f"rate, parity or stop bits.",
                      "Take the bus settings from the master's configuration and record again with them "
-                     "(try 19200 8E1, the Modbus default, MSL §3.2 p20, then 9600 8E1).")
+                     "(try 19200 8E1, the Modbus default, MSL §3.2 p20, then 9600 8E1), or run `buswitness detect` on "
+                     "the capture or the port to rank the common settings by the frames they read.")
     noise = Cause("The whole line is so disturbed that no frame survives.",
                   "If the master's own diagnostics also show no valid answers, look for the noise source and "
                   "the cable's condition.")
