@@ -142,6 +142,8 @@ class HexTextSource:
         lengths: list[int] = []
         payload = bytearray()
         last_t = -1
+        t0 = self._t0
+        fromhex = bytes.fromhex
         with self._open() as f:
             lines = _lines(f)
             lineno = 0
@@ -160,13 +162,26 @@ class HexTextSource:
                 if len(line) > MAX_LINE_CHARS:
                     self._bad_line(f"longer than {MAX_LINE_CHARS} characters", lineno, line[:MAX_LINE_CHARS])
                     continue
-                s = line.strip()
-                if not s or s.startswith("#"):
+                parts = line.split(None, 1)
+                if not parts or parts[0][0] == "#":
                     continue
-                parsed = self._parse_line(s, lineno, last_t)
-                if parsed is None:
-                    continue
-                t_ns, data = parsed
+                # The usual line in one go: a number, then hex that bytes.fromhex takes whole. It takes
+                # exactly what the token rules of _parse_line take (pairs of hex digits, ASCII blanks
+                # between pairs), so any line it refuses, or whose time or size is wrong, goes to
+                # _parse_line, which accepts it or names the token at fault.
+                try:
+                    seconds = float(parts[0])
+                    data = fromhex(parts[1])
+                except (ValueError, IndexError):
+                    data = b""
+                fits = bool(data) and abs(seconds - t0) <= MAX_OFFSET_S and len(data) <= 65535
+                if fits:
+                    t_ns = int(round((seconds - t0) * 1e9))
+                if not fits or t_ns < last_t:
+                    parsed = self._parse_line(line.strip(), lineno, last_t)
+                    if parsed is None:
+                        continue
+                    t_ns, data = parsed
                 last_t = t_ns
                 t_list.append(t_ns)
                 lengths.append(len(data))
