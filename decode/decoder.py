@@ -410,8 +410,55 @@ class _Port:
         return t_start, FrameMsg(self.port, raw, lo, hi, span.shape, max(gaps) if gaps else 0.0, wire)
 
 
+@dataclass
+class _Block:
+    """The frames of one bulk run of a one-direction port (four-wire bus), queued whole.
+
+    Element ``k`` (from ``start`` on) sorts as ``(keys[k], seq0 + k)`` among the queue's items,
+    exactly where :meth:`_Port.bulk_items` would have put it as an item of its own.
+    """
+
+    port: int
+    role: str
+    run: BulkRun
+    keys: np.ndarray
+    seq0: int
+    start: int = 0
+
+    def head(self) -> tuple[int, int]:
+        return int(self.keys[self.start]), self.seq0 + self.start
+
+
+@dataclass
+class _Columns:
+    """Column chunks among the objects of a release, in stream order (see :func:`_collect`)."""
+
+    frames: dict | None = None
+    transactions: dict | None = None
+
+
+def _collect(col: Collector, out: list) -> None:
+    """Objects and :class:`_Columns` of a release into ``col``, keeping their order."""
+    start = 0
+    for k, x in enumerate(out):
+        if isinstance(x, _Columns):
+            col.add_objects(out[start:k])
+            start = k + 1
+            if x.transactions is not None:
+                col.add_transaction_columns(x.transactions)
+            if x.frames is not None:
+                col.add_frame_columns(x.frames)
+    col.add_objects(out[start:])
+
+
 class Decoder:
     """Sans-I/O decoder over one capture's records (all ports)."""
+
+    #: Frames of one-direction ports (four-wire bus) meet at pairing as columns; False: one by one
+    #: (the reference the columnar path is tested against, tests/test_fourwire_columns.py).
+    COLUMNAR_PORTS = True
+    #: Frames that go one by one after the columnar pairing of two ports found nothing to take.
+    FRAMEWISE_RUN = 8
 
     def __init__(self, config: DecoderConfig | None = None) -> None:
         self.config = config or DecoderConfig()
@@ -469,8 +516,8 @@ class Decoder:
             for port in ports.tolist():
                 self._port_records(np.flatnonzero(batch.port == port), batch, payload, offsets, plain, None)
             out: list = []
-            self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
-            col.add_objects(out)
+            self._release(int(batch.t_ns[-1]) - self._slack_ns, out, columns=True)
+            _collect(col, out)
             return col.output(self.proto)
         self._port_records(np.arange(count), batch, payload, offsets, plain, col)
         return col.output(self.proto)
@@ -510,7 +557,9 @@ class Decoder:
         if sel[-1] - sel[0] + 1 == sel.size:
             data = payload[int(offsets[sel[0]]):int(offsets[sel[-1]] + lengths[-1])]
         else:
-            data = b"".join(payload[o:o + n] for o, n in zip(offsets[sel].tolist(), lengths.tolist()))
+            picked = np.zeros(len(batch), dtype=bool)
+            picked[sel] = True  # the records of one port among several: their bytes in one gather
+            data = batch.payload[np.repeat(picked, batch.length)].tobytes()
         if p.has_marks():
             p.marks(int(t_ns[0]), data, 0)
         pieces: list = []
@@ -524,6 +573,8 @@ class Decoder:
                     col.add_objects(out)
             elif col is not None:
                 self._bulk_frames(p, piece, col)
+            elif p.role != "both" and self.COLUMNAR_PORTS:
+                self._enqueue_run(p, piece)
             else:
                 self._enqueue(p, p.bulk_items(piece))
 
@@ -588,8 +639,11 @@ class Decoder:
             heapq.heappush(self._queue, (port.last_key, self._seq, item))
             self._seq += 1
 
-    def _release(self, now_ns: int | None, out: list) -> None:
-        """Hand items to pairing in time order, once no port can still produce an earlier one."""
+    def _release(self, now_ns: int | None, out: list, columns: bool = False) -> None:
+        """Hand items to pairing in time order, once no port can still produce an earlier one.
+
+        With ``columns``, frames of queued runs (:class:`_Block`) may go to ``out`` as column chunks
+        (:class:`_Columns`, for :func:`_collect`); without, every frame is an object."""
         if now_ns is None or len(self.ports) == 1:
             limit = None
         else:
@@ -598,6 +652,9 @@ class Decoder:
         q = self._queue
         while q and (limit is None or q[0][0] < limit):
             _key, _seq, item = heapq.heappop(q)
+            if isinstance(item, _Block):
+                self._release_block(item, limit, out, columns)
+                continue
             if isinstance(item, DamageMsg):
                 out.append(self.pairing.on_damage(item.damage))
                 out.extend(self.pairing.collisions(item.damage))
@@ -625,6 +682,108 @@ class Decoder:
         out.extend(events)
         out.extend(txns)
         return frame
+
+
+    # -- four-wire: frames of one-direction ports merged and paired in columns -------------------
+    def _enqueue_run(self, p: _Port, run: BulkRun) -> None:
+        """Queue a bulk run of a one-direction port whole, keyed as :meth:`_enqueue` keys each frame."""
+        base = run.lo if p.role == "master" else run.hi
+        keys = np.maximum.accumulate(np.maximum(base - np.rint(run.lens * p.char_ns).astype(np.int64), p.last_key))
+        p.last_key = int(keys[-1])
+        heapq.heappush(self._queue, (int(keys[0]), self._seq, _Block(p.port, p.role, run, keys, self._seq)))
+        self._seq += len(run)
+
+    def _release_block(self, blk: _Block, limit: int | None, out: list, columns: bool) -> None:
+        """Release the frames of ``blk`` (just popped) that come before every other queued item and ``limit``.
+
+        With ``columns``, a run of the other port queued right behind it is merged in: the
+        frames of both, in queue order, are paired in columns where they are regular.
+        """
+        q = self._queue
+        blocks = [blk]
+        if columns and q and isinstance(q[0][2], _Block) and q[0][2].port != blk.port:
+            blocks.append(heapq.heappop(q)[2])
+        keys = np.concatenate([b.keys[b.start:] for b in blocks])
+        seqs = np.concatenate([np.arange(b.seq0 + b.start, b.seq0 + len(b.run), dtype=np.int64) for b in blocks])
+        which = np.repeat(np.arange(len(blocks)), [len(b.run) - b.start for b in blocks])
+        order = np.lexsort((seqs, keys))
+        keys, seqs = keys[order], seqs[order]
+        take = keys.size
+        if limit is not None:
+            take = int(np.searchsorted(keys, limit, "left"))
+        if q:
+            nk, ns = q[0][0], q[0][1]
+            a, b = np.searchsorted(keys, nk, "left"), np.searchsorted(keys, nk, "right")
+            take = min(take, int(a + np.searchsorted(seqs[a:b], ns, "left")))
+        order, which = order[:take], which[order[:take]]
+        picks = []
+        offset = 0
+        for k, b in enumerate(blocks):
+            mine = order[which == k] - offset + b.start  # element numbers of b, in order
+            offset += len(b.run) - b.start
+            picks.append(mine)
+            b.start += mine.size
+            if b.start < len(b.run):
+                heapq.heappush(q, (*b.head(), b))
+        if take:
+            self._deliver_merged(blocks, which, picks, out, columns)
+
+    def _deliver_merged(self, blocks: list[_Block], which: np.ndarray, picks: list[np.ndarray], out: list,
+                        columns: bool) -> None:
+        """Frames of queued runs into pairing in queue order (``which`` block each comes from)."""
+        m = which.size
+        slot = [np.flatnonzero(which == k) for k in range(len(blocks))]
+
+        def gather(name: str, dtype) -> np.ndarray:
+            col = np.empty(m, dtype=dtype)
+            for b, s, pick in zip(blocks, slot, picks):
+                col[s] = getattr(b.run, name)[pick]
+            return col
+
+        lo, hi, lens = gather("lo", np.int64), gather("hi", np.int64), gather("lens", np.int64)
+        addrs, fcs = gather("addrs", np.uint8), gather("fcs", np.uint8)
+        ports = np.empty(m, dtype=np.uint8)
+        shapes = np.empty(m, dtype=np.int8)
+        raws: list = [None] * m
+        for b, s, pick in zip(blocks, slot, picks):
+            ports[s] = b.port
+            shapes[s] = REQUEST if b.role == "master" else RESPONSE
+            run_raws = b.run.raws
+            for dst, src in zip(s.tolist(), pick.tolist()):
+                raws[dst] = run_raws[src]
+        if not columns:
+            for k in range(m):
+                self._deliver(FrameMsg(int(ports[k]), raws[k], int(lo[k]), int(hi[k]), int(shapes[k])), out)
+            return
+        c = self.char_ns
+        t_end = (lo + hi) // 2
+        t_start = t_end - np.rint(lens * c).astype(np.int64)
+        directions = np.where(shapes == REQUEST, 0, 1).astype(np.int8)
+        run = BulkRun(lo, hi, lens, shapes, addrs, fcs, raws)
+        req_port = next((b.port for b in blocks if b.role == "master"), -1)
+        rsp_port = next((b.port for b in blocks if b.role == "slaves"), -1)
+        is_req = shapes == REQUEST
+        pr = self.pairing
+        i = 0
+        retry_at = 0  # after a columnar attempt that took nothing, a few frames go one by one first
+        while i < m:
+            if req_port >= 0 and rsp_port >= 0 and i >= retry_at:
+                j, cols, events = pr.pair_two_port(RegularRun(rsp_port, run, t_start, t_end, c, i, m, req_port),
+                                                   is_req)
+                if cols is not None:
+                    out.append(_Columns(transactions=cols))
+                out.extend(events)
+                if j > i:
+                    i = j
+                    continue
+                retry_at = i + self.FRAMEWISE_RUN
+            self._deliver(FrameMsg(int(ports[i]), raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
+                          keep_frame=False)
+            i += 1
+        out.append(_Columns(frames={
+            "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi, "port": ports,
+            "address": addrs, "function": fcs, "length": lens, "direction": directions, "raw": raws,
+        }))
 
 
 def decode_source(source, config: DecoderConfig | None = None) -> Iterator[DecodeOutput]:
