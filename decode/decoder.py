@@ -457,8 +457,10 @@ class Decoder:
     #: Frames of one-direction ports (four-wire bus) meet at pairing as columns; False: one by one
     #: (the reference the columnar path is tested against, tests/test_fourwire_columns.py).
     COLUMNAR_PORTS = True
-    #: Frames that go one by one after the columnar pairing of two ports found nothing to take.
+    #: Frames that go one by one after the columnar pairing of two ports found nothing to take
+    #: (doubling while it keeps finding nothing), and the frames its first attempt looks at.
     FRAMEWISE_RUN = 8
+    COLUMN_WINDOW = 256
 
     def __init__(self, config: DecoderConfig | None = None) -> None:
         self.config = config or DecoderConfig()
@@ -765,18 +767,25 @@ class Decoder:
         is_req = shapes == REQUEST
         pr = self.pairing
         i = 0
-        retry_at = 0  # after a columnar attempt that took nothing, a few frames go one by one first
+        retry_at = 0  # after a columnar attempt that took nothing, some frames go one by one first
+        backoff = self.FRAMEWISE_RUN
+        window = self.COLUMN_WINDOW  # frames one attempt looks at: doubles while attempts take them all
         while i < m:
             if req_port >= 0 and rsp_port >= 0 and i >= retry_at:
-                j, cols, events = pr.pair_two_port(RegularRun(rsp_port, run, t_start, t_end, c, i, m, req_port),
+                end = min(m, i + window)
+                j, cols, events = pr.pair_two_port(RegularRun(rsp_port, run, t_start, t_end, c, i, end, req_port),
                                                    is_req)
                 if cols is not None:
                     out.append(_Columns(transactions=cols))
                 out.extend(events)
                 if j > i:
+                    window = window * 2 if j == end else self.COLUMN_WINDOW
+                    backoff = self.FRAMEWISE_RUN
                     i = j
                     continue
-                retry_at = i + self.FRAMEWISE_RUN
+                retry_at = i + backoff
+                backoff = min(2 * backoff, 32 * self.FRAMEWISE_RUN)
+                window = self.COLUMN_WINDOW
             self._deliver(FrameMsg(int(ports[i]), raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
                           keep_frame=False)
             i += 1
