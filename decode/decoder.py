@@ -323,7 +323,8 @@ class _Port:
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size:
                     ends = (starts + lens).tolist()
-                    raws = [buf[a:b] for a, b in zip(starts.tolist(), ends)]
+                    raws = (bulk.frame_bytes(buf, starts, lens) if hasattr(bulk, "frame_bytes")
+                            else [buf[a:b] for a, b in zip(starts.tolist(), ends)])
                     first = starts + self.base
                     lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
                     self._last_end = (int(lo[-1]), int(hi[-1]))
@@ -360,8 +361,9 @@ class _Port:
         lo, hi = run.lo, run.hi
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
         keys = (base - np.rint(run.lens * self.char_ns).astype(np.int64)).tolist()
-        return [(k, FrameMsg(self.port, raw, a, b, sh))
-                for k, raw, a, b, sh in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist())]
+        return [(k, FrameMsg(self.port, raw, a, b, sh, 0.0, _wire(raw, n)))
+                for k, raw, a, b, sh, n in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist(),
+                                               run.lens.tolist())]
 
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
@@ -435,6 +437,18 @@ class _Columns:
 
     frames: dict | None = None
     transactions: dict | None = None
+
+
+def _wire(raw: bytes, chars: int) -> int:
+    """A bulk frame's characters on the wire for FrameMsg: 0 where they are its bytes (RTU), else their count."""
+    return 0 if len(raw) == chars else chars
+
+
+def _raw_lengths(raws: list, lens: np.ndarray) -> np.ndarray:
+    """The frames table's lengths (bytes of ``raw``) of bulk frames whose ``lens`` count wire characters."""
+    if not raws or len(raws[0]) == int(lens[0]) and len(raws[-1]) == int(lens[-1]):
+        return lens
+    return np.fromiter(map(len, raws), dtype=np.int64, count=len(raws))
 
 
 def _collect(col: Collector, out: list) -> None:
@@ -605,15 +619,15 @@ class Decoder:
                     i = j
                     continue
             out: list = []
-            frame = self._deliver(FrameMsg(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
-                                  keep_frame=False)
+            frame = self._deliver(FrameMsg(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0,
+                                           _wire(raws[i], int(lens[i]))), out, keep_frame=False)
             directions[i] = 0 if frame.direction == "request" else 1 if frame.direction == "response" else 2
             col.add_objects(out)
             i += 1
         col.add_frame_columns({
             "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi,
-            "port": np.full(m, p.port, dtype=np.uint8), "address": addrs, "function": fcs, "length": lens,
-            "direction": directions, "raw": raws,
+            "port": np.full(m, p.port, dtype=np.uint8), "address": addrs, "function": fcs,
+            "length": _raw_lengths(raws, lens), "direction": directions, "raw": raws,
         })
 
     def flush(self) -> DecodeOutput:
@@ -755,7 +769,8 @@ class Decoder:
                 raws[dst] = run_raws[src]
         if not columns:
             for k in range(m):
-                self._deliver(FrameMsg(int(ports[k]), raws[k], int(lo[k]), int(hi[k]), int(shapes[k])), out)
+                self._deliver(FrameMsg(int(ports[k]), raws[k], int(lo[k]), int(hi[k]), int(shapes[k]), 0.0,
+                                       _wire(raws[k], int(lens[k]))), out)
             return
         c = self.char_ns
         t_end = (lo + hi) // 2
@@ -786,12 +801,13 @@ class Decoder:
                 retry_at = i + backoff
                 backoff = min(2 * backoff, 32 * self.FRAMEWISE_RUN)
                 window = self.COLUMN_WINDOW
-            self._deliver(FrameMsg(int(ports[i]), raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
-                          keep_frame=False)
+            self._deliver(FrameMsg(int(ports[i]), raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0,
+                                   _wire(raws[i], int(lens[i]))), out, keep_frame=False)
             i += 1
         out.append(_Columns(frames={
             "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi, "port": ports,
-            "address": addrs, "function": fcs, "length": lens, "direction": directions, "raw": raws,
+            "address": addrs, "function": fcs, "length": _raw_lengths(raws, lens), "direction": directions,
+            "raw": raws,
         }))
 
 
