@@ -460,12 +460,12 @@ class Pairing:
     # -- the columnar path of a four-wire bus: requests and answers on two ports ----------------------
     def _fifo_opens(self, req_port: int) -> list[_Open] | None:
         """The open requests, oldest first, when the state is one the two-port columnar path can carry
-        on from (each an undamaged request of its own station, the newest one awaited); else None."""
+        on from (undamaged requests, every one awaiting its answer in order, the newest one the master's); else None."""
         if self._held is not None or self._events:
             return None
         by_slot: dict[int, _Open] = {}
         for st in self.stations.values():
-            if st.pending is not None or len(st.open) > 1:
+            if st.pending is not None:
                 return None
             for o in st.open:
                 by_slot[id(o.slot)] = o
@@ -533,8 +533,20 @@ class Pairing:
             later = (idx + d < nq) & (qpos[j] < ans)  # request i + d came while request i was open
             if not later.any():
                 break
-            bad = later & ((d > span) | (qaddr[j] == qaddr) | (qend[j] - qend > LATE_WINDOW_NS))
+            bad = later & ((d > span) | (qend[j] - qend > LATE_WINDOW_NS))
             fail = np.where(bad, np.minimum(fail, qpos[j]), fail)
+            # Request i + d to the same station, same function, may be a candidate for the answer to
+            # request i (_owner): the oldest still takes it when the timing rules cannot pick the
+            # newest, surely so when the answer began within its own end interval's width after the
+            # oldest ended (both rules need more: a usual time over zero, a slowest answer over 10 ms).
+            rival = later & (ans < m) & (qaddr[j] == qaddr) & (qfc[j] == qfc)
+            if rival.any():
+                r = np.flatnonzero(rival)
+                a_r = ans[r]
+                open_rival = qlo[j[r]] <= hi[a_r]
+                if self.timed:
+                    open_rival &= t_start[a_r] - qend[r] > hi[a_r] - lo[a_r]
+                fail[r] = np.where(open_rival, np.minimum(fail[r], a_r), fail[r])
         e = int(fail.min()) if nq else m
         if na > nq:
             e = min(e, int(A[nq]))
@@ -642,24 +654,35 @@ class Pairing:
                 self.slots.popleft()
                 self.station(o.req.address).open.popleft()
         # -- what is still open where the run stopped, as on_frame leaves it
-        new_requests = r_end - q
-        for o in pre[k:]:
-            o.age += 2 * new_requests
-        for i in range(max(k, q), r_end):
-            x = int(qpos[i])
-            o = _Open(Frame(req_port, raws[x], int(lo[x]), int(hi[x]), c, "request"), _Slot(None, False),
-                      bool(retry_new[i]), age=2 * (r_end - 1 - i))
-            self.slots.append(o.slot)
-            self.station(int(qaddr[i])).open.append(o)
-        for i in range(k, r_end - 1):
-            o = self.station(int(qaddr[i])).open[-1]
-            if not o.moved_on:
+        still: dict[int, _Open] = {}
+        new_pos = qpos[q:r_end]
+        older: dict[int, int] = {}  # station -> its latest request so far (unified index)
+        for i in range(r_end):
+            addr = int(qaddr[i])
+            before = older.get(addr)
+            older[addr] = i
+            if i < k:
+                continue
+            if i < q:
+                o = pre[i]
+            else:
+                x = int(qpos[i])
+                o = _Open(Frame(req_port, raws[x], int(lo[x]), int(hi[x]), c, "request"), _Slot(None, False),
+                          bool(retry_new[i]))
+                self.slots.append(o.slot)
+                self.station(addr).open.append(o)
+            # _age: each later request ages an open request by two while it is its station's oldest, else by one
+            later_new = new_pos[new_pos > qpos[i]]
+            head_from = -1 if before is None else int(ans[before])
+            o.age += int(later_new.size + np.count_nonzero(later_new > head_from))
+            if i < r_end - 1 and not o.moved_on:
                 o.moved_on_hi_ns, o.moved_on_port = int(qhi[i + 1]), req_port
+            still[i] = o
         if r_end > 0:
             last_open = r_end - 1 >= k
-            if new_requests:
+            if r_end > q:
                 x = int(qpos[r_end - 1])
-                self.current = self.station(int(qaddr[r_end - 1])).open[-1] if last_open else None
+                self.current = still[r_end - 1] if last_open else None
                 self.last_request = (self.current.req if self.current is not None
                                      else Frame(req_port, raws[x], int(lo[x]), int(hi[x]), c, "request"))
                 self.last_answered = not last_open
