@@ -760,13 +760,14 @@ class Decoder:
         addrs, fcs = gather("addrs", np.uint8), gather("fcs", np.uint8)
         ports = np.empty(m, dtype=np.uint8)
         shapes = np.empty(m, dtype=np.int8)
-        raws: list = [None] * m
+        merged = np.empty(m, dtype=object)
         for b, s, pick in zip(blocks, slot, picks):
             ports[s] = b.port
             shapes[s] = REQUEST if b.role == "master" else RESPONSE
-            run_raws = b.run.raws
-            for dst, src in zip(s.tolist(), pick.tolist()):
-                raws[dst] = run_raws[src]
+            run_raws = np.empty(len(b.run.raws), dtype=object)
+            run_raws[:] = b.run.raws
+            merged[s] = run_raws[pick]
+        raws: list = merged.tolist()
         if not columns:
             for k in range(m):
                 self._deliver(FrameMsg(int(ports[k]), raws[k], int(lo[k]), int(hi[k]), int(shapes[k]), 0.0,

@@ -570,8 +570,13 @@ class Pairing:
                 answered = self.last_answered
             last = self.last_request
             retry_new[q] = last is not None and not answered and last.raw == raws[int(qpos[q])]
-            for i in np.flatnonzero(moved_by_next[q:r_end - 1]).tolist():
-                retry_new[q + i + 1] = raws[int(qpos[q + i])] == raws[int(qpos[q + i + 1])]
+            # the same request again while the first still awaited its answer: only where address,
+            # function and length agree are the bytes compared
+            prev_, next_ = qpos[q:r_end - 1], qpos[q + 1:r_end]
+            alike = (moved_by_next[q:r_end - 1] & (addrs[prev_] == addrs[next_]) & (fcs[prev_] == fcs[next_])
+                     & (lens[prev_] == lens[next_]))
+            for i in np.flatnonzero(alike).tolist():
+                retry_new[q + i + 1] = raws[int(prev_[i])] == raws[int(next_[i])]
             if self._settling is not None:
                 if not self._settling.moved_on:
                     self._settling.moved_on_hi_ns = int(qhi[q])
@@ -603,9 +608,13 @@ class Pairing:
             moved |= by_next
             late = moved & moved_same_port
             check = np.flatnonzero(moved & ~moved_same_port)
-            if check.size:  # as _is_late, in Python numbers (exact for any clock)
-                lo_a, len_a, hi_m = lo[a[check]].tolist(), lens[a[check]].tolist(), moved_hi[check].tolist()
-                late[check] = [x - n_ * c > h for x, n_, h in zip(lo_a, len_a, hi_m)]
+            if check.size:  # as _is_late; in floats only where they hold every nanosecond exactly
+                lo_a, hi_m = lo[a[check]], moved_hi[check]
+                if max(np.abs(lo_a).max(), np.abs(hi_m).max()) < 1 << 52:
+                    late[check] = lo_a - lens[a[check]] * c > hi_m
+                else:
+                    late[check] = [x - n_ * c > h for x, n_, h in zip(lo_a.tolist(), lens[a[check]].tolist(),
+                                                                   hi_m.tolist())]
             rsp_raws = [raws[x] for x in a.tolist()]
             req_raws = [f.raw for f in pre_req[:k]] + [raws[x] for x in qpos[q:k].tolist()]
             exc = (fcs[a] & 0x80) != 0
@@ -656,13 +665,10 @@ class Pairing:
         # -- what is still open where the run stopped, as on_frame leaves it
         still: dict[int, _Open] = {}
         new_pos = qpos[q:r_end]
-        older: dict[int, int] = {}  # station -> its latest request so far (unified index)
-        for i in range(r_end):
+        for i in range(k, r_end):
             addr = int(qaddr[i])
-            before = older.get(addr)
-            older[addr] = i
-            if i < k:
-                continue
+            same = np.flatnonzero(qaddr[:i] == addr)
+            before = int(same[-1]) if same.size else None  # the station's request before this one
             if i < q:
                 o = pre[i]
             else:
