@@ -149,6 +149,16 @@ def ascii_shapes(data: np.ndarray, first: np.ndarray, n: np.ndarray) -> np.ndarr
     return shapes
 
 
+def _decode_bodies(view: np.ndarray, colons: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The ``n[k]`` bytes in hex after each ``view[colons[k]]``, back to back: where each frame's begin,
+    the bytes, and whether every character was a hex digit."""
+    first = np.cumsum(n) - n
+    hi_at = np.repeat(colons + 1 - 2 * first, n) + 2 * np.arange(int(n.sum()))
+    high, low = _HEX_VALUE[view[hi_at]], _HEX_VALUE[view[hi_at + 1]]
+    valid = np.maximum.reduceat(high | low, first) < 16 if n.size else np.zeros(0, dtype=bool)
+    return first, (high << 4) | (low & 0x0F), valid
+
+
 class AsciiBulk:
     """Runs of back-to-back LRC-valid frames found in columns; the rest is left to :class:`AsciiScanner`."""
 
@@ -174,19 +184,15 @@ class AsciiBulk:
         colons, lf, alone = colons[:keep], lf[:keep], alone[:keep]
         n_wire = lf + 1 - colons
         ok = alone & (n_wire >= 9) & (n_wire <= MAX_ASCII_CHARS) & (view[lf - 1] == 0x0D) & (n_wire % 2 == 1)
-        # every body character a hex digit (a colon inside would already have broken the chain)
-        bad = np.r_[0, np.cumsum(_HEX_VALUE[view] == 255)]
-        ok &= bad[lf - 1] - bad[colons + 1] == 0
         first_bad = int(np.argmin(ok)) if not ok.all() else ok.size
-        colons, lf, n_wire = colons[:first_bad], lf[:first_bad], n_wire[:first_bad]
+        colons, n_wire = colons[:first_bad], n_wire[:first_bad]
         if not colons.size:
             return empty, empty, np.zeros(0, np.uint8), empty
         n = (n_wire - 3) // 2
-        first = np.cumsum(n) - n
-        hi_at = np.repeat(colons + 1 - 2 * first, n) + 2 * np.arange(int(n.sum()))
-        data = (_HEX_VALUE[view[hi_at]] << 4) | _HEX_VALUE[view[hi_at + 1]]
-        lrc_ok = (np.add.reduceat(data.astype(np.int64), first) & 0xFF) == 0
-        stop = int(np.argmin(lrc_ok)) if not lrc_ok.all() else lrc_ok.size
+        first, data, valid = _decode_bodies(view, colons, n)
+        # every body character a hex digit, and the byte sum (LRC included) zero
+        valid &= (np.add.reduceat(data.astype(np.int64), first) & 0xFF) == 0
+        stop = int(np.argmin(valid)) if not valid.all() else valid.size
         if stop < colons.size:
             colons, n_wire, n, first = colons[:stop], n_wire[:stop], n[:stop], first[:stop]
             data = data[:int(n.sum())]
@@ -203,7 +209,10 @@ class AsciiBulk:
     @staticmethod
     def frame_bytes(buf: bytes, starts: np.ndarray, lens: np.ndarray) -> list[bytes]:
         """Each frame's decoded bytes (address, PDU, LRC), as ``unwrap`` gives them."""
-        return [bytes.fromhex(buf[a + 1:a + n - 2].decode("ascii")) for a, n in zip(starts.tolist(), lens.tolist())]
+        n = (lens - 3) // 2
+        first, data, _valid = _decode_bodies(np.frombuffer(buf, np.uint8), starts, n)
+        whole = data.tobytes()
+        return [whole[a:a + k] for a, k in zip(first.tolist(), n.tolist())]
 
     @staticmethod
     def after_run(sc: AsciiScanner, raws: list, shapes: np.ndarray, addrs: np.ndarray) -> None:
