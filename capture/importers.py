@@ -47,7 +47,7 @@ EPOCH_LIMIT_S = 253402300799.0
 MAX_OFFSET_S = MAX_SPAN_NS / 1e9
 #: Largest adapter latency a '# latency_ms:' line may give (the capture header allows the same).
 MAX_LATENCY_MS = 10_000.0
-BATCH_RECORDS = 65536
+BATCH_RECORDS = 16384
 #: Longest line read: 65535 bytes in hex with spaces and a time (a longer one is a bad line, read no further).
 MAX_LINE_CHARS = 256 * 1024
 RAW_RECORD_BYTES = 256
