@@ -13,6 +13,7 @@ import heapq
 from bisect import bisect_left, bisect_right
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from buswitness.decode.arrival import Timeline
@@ -699,14 +700,14 @@ class Decoder:
         out.extend(txns)
         return frame
 
-
     # -- four-wire: frames of one-direction ports merged and paired in columns -------------------
     def _enqueue_run(self, p: _Port, run: BulkRun) -> None:
         """Queue a bulk run of a one-direction port whole, keyed as :meth:`_enqueue` keys each frame."""
         base = run.lo if p.role == "master" else run.hi
         keys = np.maximum.accumulate(np.maximum(base - np.rint(run.lens * p.char_ns).astype(np.int64), p.last_key))
         p.last_key = int(keys[-1])
-        heapq.heappush(self._queue, (int(keys[0]), self._seq, _Block(p.port, p.role, run, keys, self._seq)))
+        blk: Any = _Block(p.port, p.role, run, keys, self._seq)
+        heapq.heappush(self._queue, (int(keys[0]), self._seq, blk))
         self._seq += len(run)
 
     def _release_block(self, blk: _Block, limit: int | None, out: list, columns: bool) -> None:
@@ -716,9 +717,11 @@ class Decoder:
         frames of both, in queue order, are paired in columns where they are regular.
         """
         q = self._queue
-        blocks = [blk]
-        if columns and q and isinstance(q[0][2], _Block) and q[0][2].port != blk.port:
-            blocks.append(heapq.heappop(q)[2])
+        blocks: list[_Block] = [blk]
+        nxt: Any = q[0][2] if q else None
+        if columns and isinstance(nxt, _Block) and nxt.port != blk.port:
+            heapq.heappop(q)
+            blocks.append(nxt)
         keys = np.concatenate([b.keys[b.start:] for b in blocks])
         seqs = np.concatenate([np.arange(b.seq0 + b.start, b.seq0 + len(b.run), dtype=np.int64) for b in blocks])
         which = np.repeat(np.arange(len(blocks)), [len(b.run) - b.start for b in blocks])
@@ -729,18 +732,20 @@ class Decoder:
             take = int(np.searchsorted(keys, limit, "left"))
         if q:
             nk, ns = q[0][0], q[0][1]
-            a, b = np.searchsorted(keys, nk, "left"), np.searchsorted(keys, nk, "right")
-            take = min(take, int(a + np.searchsorted(seqs[a:b], ns, "left")))
+            first, past = np.searchsorted(keys, nk, "left"), np.searchsorted(keys, nk, "right")
+            take = min(take, int(first + np.searchsorted(seqs[first:past], ns, "left")))
         order, which = order[:take], which[order[:take]]
         picks = []
         offset = 0
-        for k, b in enumerate(blocks):
-            mine = order[which == k] - offset + b.start  # element numbers of b, in order
-            offset += len(b.run) - b.start
+        for k, part in enumerate(blocks):
+            mine = order[which == k] - offset + part.start  # element numbers of the part, in order
+            offset += len(part.run) - part.start
             picks.append(mine)
-            b.start += mine.size
-            if b.start < len(b.run):
-                heapq.heappush(q, (*b.head(), b))
+            part.start += mine.size
+            if part.start < len(part.run):
+                key, seq = part.head()
+                rest: Any = part
+                heapq.heappush(q, (key, seq, rest))
         if take:
             self._deliver_merged(blocks, which, picks, out, columns)
 
