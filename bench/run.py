@@ -146,6 +146,228 @@ def child_browser(html: str) -> dict:
 CHILDREN = {"decode": child_decode, "analyze": child_analyze, "framing": child_framing, "browser": child_browser}
 
 
+# -- issue 14 inputs: hex text and raw bytes, four-wire, Modbus ASCII ---------------------------
+TARGET_HEX_ANALYZE_S = 2.5     # 1 h of saturated 115200 hex text: import + decode + figures
+TARGET_IMPORT_MB_S = 10.0      # the hex and raw importers alone
+TARGET_FOUR_WIRE_FPS = 1e6     # four-wire pairing (merge of both ports' frames + transactions)
+
+
+def child_import(path: str, kind: str) -> dict:
+    from buswitness.capture.sources import open_capture
+    from buswitness.serial import SerialFormat
+    serial = SerialFormat.parse("8N1", 115200) if kind == "raw" else None
+    t = time.perf_counter()
+    src = open_capture(path, kind=kind, serial=serial)
+    records = data = 0
+    for batch in src.iter_batches():
+        records += len(batch)
+        data += int(batch.payload.size)
+    return {"seconds": time.perf_counter() - t, "mb": Path(path).stat().st_size / 1e6, "records": records,
+            "data_bytes": data}
+
+
+def child_hex_analyze(path: str) -> dict:
+    from buswitness.analysis.pipeline import AnalysisOptions, analyze
+    from buswitness.capture.sources import open_capture
+    t = time.perf_counter()
+    result = analyze(open_capture(path), AnalysisOptions(progress=False))
+    return {"seconds": time.perf_counter() - t, "frames": int(result.bus.frames),
+            "duration_s": float(result.bus.duration_s), "peak_mb": _peak_mb()}
+
+
+def _timed_release() -> list:
+    """Time spent handing frames to pairing (the merge of ports and the pairing itself)."""
+    from buswitness.decode.decoder import Decoder
+    spent = [0.0]
+    release = Decoder._release
+
+    def timed(self, *args, **kwargs):
+        t = time.perf_counter()
+        try:
+            return release(self, *args, **kwargs)
+        finally:
+            spent[0] += time.perf_counter() - t
+
+    Decoder._release = timed
+    return spent
+
+
+def child_four_wire(path: str, columnar: str) -> dict:
+    from buswitness.capture.sources import open_capture
+    from buswitness.decode import DecoderConfig, decode_source
+    from buswitness.decode.decoder import Decoder
+    Decoder.COLUMNAR_PORTS = columnar == "columns"
+    spent = _timed_release()
+    src = open_capture(path)
+    t = time.perf_counter()
+    frames = transactions = 0
+    for out in decode_source(src, DecoderConfig.from_header(src.header)):
+        frames += len(out.frames)
+        transactions += len(out.transactions)
+    return {"seconds": time.perf_counter() - t, "pairing_s": spent[0], "frames": frames,
+            "transactions": transactions, "peak_mb": _peak_mb()}
+
+
+def child_ascii(path: str, columnar: str) -> dict:
+    from buswitness.capture.sources import open_capture
+    from buswitness.decode import DecoderConfig, decode_source
+    from buswitness.decode.protocols.modbus_ascii import PROTOCOL
+    if columnar != "columns":
+        PROTOCOL.bulk = None  # the record-by-record path
+    src = open_capture(path)
+    t = time.perf_counter()
+    frames = transactions = 0
+    for out in decode_source(src, DecoderConfig.from_header(src.header, protocol="modbus-ascii")):
+        frames += len(out.frames)
+        transactions += len(out.transactions)
+    return {"seconds": time.perf_counter() - t, "frames": frames, "transactions": transactions,
+            "peak_mb": _peak_mb()}
+
+
+CHILDREN.update({"import": child_import, "hex_analyze": child_hex_analyze, "four_wire": child_four_wire,
+                 "ascii": child_ascii})
+
+
+def ensure_hex_text(hours: float) -> tuple[Path, Path]:
+    """The saturated 115200 capture as timestamped hex text (one line a record) and as raw bytes."""
+    import numpy as np
+    from buswitness.capture.sources import open_capture
+    sat, _ = ensure_capture("saturated115200", hours)
+    hex_path, raw_path = CACHE / f"{sat.stem}.hex", CACHE / f"{sat.stem}.bin"
+    if hex_path.exists() and raw_path.exists():
+        return hex_path, raw_path
+    src = open_capture(sat)
+    t0 = src.header.start_monotonic_ns
+    s = src.header.serial
+    hex_tmp, raw_tmp = hex_path.with_name(hex_path.name + ".partial"), raw_path.with_name(raw_path.name + ".partial")
+    with open(hex_tmp, "w") as f, open(raw_tmp, "wb") as r:
+        f.write(f"# baud: {s.baud}\n# format: {s.short_form}\n# latency_ms: {src.header.ports[0].latency_ms or 16:g}\n")
+        for b in src.iter_batches():
+            raw = b.payload.tobytes()
+            r.write(raw)
+            off = np.r_[0, np.cumsum(b.length)].tolist()
+            f.write("".join(f"{(t - t0) / 1e9:.6f} {raw[off[i]:off[i + 1]].hex(' ').upper()}\n"
+                            for i, t in enumerate(b.t_ns.tolist()) if off[i + 1] > off[i]))
+    hex_tmp.rename(hex_path)
+    raw_tmp.rename(raw_path)
+    return hex_path, raw_path
+
+
+def bench_hex_text(runs: int, rows: list, hours: float = 1.0) -> None:
+    """Hex text, saturated, 1 h: the importer alone (and the raw importer), then import + decode + figures."""
+    hex_path, raw_path = ensure_hex_text(hours)
+    name = f"hex text, saturated, {hours:g} h"
+    imp = [run_child("import", hex_path, "hex") for _ in range(runs)]
+    mbs = [r["mb"] / r["seconds"] for r in imp]
+    rows.append((name, f"import ({imp[0]['mb']:.0f} MB text)", med([r["seconds"] for r in imp]), "",
+                 f"{statistics.median(mbs):.1f} MB/s", f"target >= {TARGET_IMPORT_MB_S:g} MB/s"))
+    raw = [run_child("import", raw_path, "raw") for _ in range(runs)]
+    rows.append((f"raw bytes, saturated, {hours:g} h", f"import ({raw[0]['mb']:.0f} MB)",
+                 med([r["seconds"] for r in raw]), "",
+                 f"{statistics.median([r['mb'] / r['seconds'] for r in raw]):.0f} MB/s",
+                 f"target >= {TARGET_IMPORT_MB_S:g} MB/s"))
+    ana = [run_child("hex_analyze", hex_path) for _ in range(runs)]
+    a_s = [r["seconds"] for r in ana]
+    rows.append((name, "analyze (import+decode+figures)", med(a_s),
+                 f"{ana[0]['duration_s'] / statistics.median(a_s):,.0f}x",
+                 f"{ana[0]['frames'] / statistics.median(a_s) / 1e6:.2f} M/s",
+                 f"peak {med([r['peak_mb'] for r in ana])} MB; target <= {TARGET_HEX_ANALYZE_S:g} s"))
+
+
+def ensure_four_wire(minutes: float, latency_ms: float) -> Path:
+    """The saturated 115200 scenario as a four-wire capture (one adapter per pair, simulate/fourwire.py)."""
+    from buswitness.capture.fileformat import CaptureWriter
+    from buswitness.simulate import load_scenario, simulate
+    from buswitness.simulate.fourwire import four_wire_batches, four_wire_header
+    CACHE.mkdir(parents=True, exist_ok=True)
+    path = CACHE / f"fourwire-saturated115200-{minutes:g}min-{latency_ms:g}ms.bwcap"
+    if path.exists():
+        return path
+    sim = simulate(load_scenario("saturated115200"), duration_s=minutes * 60, seed=7)
+    tmp = path.with_name(path.stem + ".partial.bwcap")
+    if tmp.exists():
+        tmp.unlink()
+    with CaptureWriter(tmp, four_wire_header(sim, latency_ms), fsync_interval_s=3600.0, flush_interval_s=3600.0,
+                       max_block_records=16384) as w:
+        for batch in four_wire_batches(sim, latency_ms):
+            w.append_batch(batch)
+    tmp.rename(path)
+    return path
+
+
+def bench_four_wire(runs: int, rows: list, minutes: float = 10.0) -> None:
+    """Four-wire (master port + stations port): frames/s of the pairing, columns against frame by frame."""
+    for latency in (1.0, 16.0):
+        path = ensure_four_wire(minutes, latency)
+        name = f"four-wire, saturated, {minutes:g} min, {latency:g} ms"
+        for mode in ("frames", "columns"):
+            res = [run_child("four_wire", path, mode) for _ in range(runs)]
+            frames = res[0]["frames"]
+            pair = statistics.median([frames / r["pairing_s"] for r in res])
+            rows.append((name, f"pairing ({mode})", med([r["pairing_s"] for r in res]), "",
+                         f"{pair / 1e6:.2f} M/s",
+                         f"decode {med([r['seconds'] for r in res])} s, {frames} frames"
+                         + (f"; target >= {TARGET_FOUR_WIRE_FPS / 1e6:g} M/s" if mode == "columns" else "")))
+
+
+def ensure_ascii(minutes: float) -> Path:
+    """Modbus ASCII traffic at 115200 7E1: the saturated scenario's polls and answers as ASCII frames
+    (':' hex LRC CR LF, MSL V1.02 section 2.5.2), read by a 16 ms adapter."""
+    import numpy as np
+    from buswitness.capture.fileformat import CaptureHeader, CaptureWriter, PortInfo, RecordBatch
+    from buswitness.serial import SerialFormat
+    from buswitness.simulate import load_scenario, simulate
+    CACHE.mkdir(parents=True, exist_ok=True)
+    path = CACHE / f"ascii-saturated115200-{minutes:g}min.bwcap"
+    if path.exists():
+        return path
+    fmt = SerialFormat.parse("7E1", 115200)
+    c = fmt.char_time_s * 1e9
+    frames = simulate(load_scenario("saturated115200"), duration_s=minutes * 60, seed=7).truth.frames
+    wire = [b":" + (r[:-2] + bytes([-sum(r[:-2]) & 0xFF])).hex().upper().encode() + b"\r\n"
+            for r in frames["raw"].tolist()]
+    n = np.array([len(w) for w in wire], dtype=np.int64)
+    starts = 1_000_000_000 + np.cumsum(np.r_[0, n[:-1] * c + 1_000_000]).astype(np.int64)  # 1 ms between frames
+    payload = np.frombuffer(b"".join(wire), dtype=np.uint8)
+    ends = np.repeat(starts, n) + ((np.arange(payload.size) - np.repeat(np.cumsum(n) - n, n) + 1) * c).astype(np.int64)
+    period = 16_000_000
+    t_read = -((-ends) // period) * period + 200_000
+    cut = np.flatnonzero(np.r_[True, t_read[1:] != t_read[:-1]])
+    lengths = np.diff(np.r_[cut, t_read.size])
+    header = CaptureHeader(serial=fmt, ports=[PortInfo(0, "ascii bench", latency_ms=16.0)], source="simulate",
+                           notes="bench: Modbus ASCII, saturated polling", extra={"protocol": "modbus-ascii"})
+    tmp = path.with_name(path.stem + ".partial.bwcap")
+    with CaptureWriter(tmp, header, fsync_interval_s=3600.0, flush_interval_s=3600.0, max_block_records=16384) as w:
+        w.append_batch(RecordBatch(t_read[cut], lengths, np.zeros(cut.size, np.uint8), np.zeros(cut.size, np.uint8),
+                                   payload.copy()))
+    tmp.rename(path)
+    return path
+
+
+def bench_modbus_ascii(runs: int, rows: list, minutes: float = 10.0) -> None:
+    """Modbus ASCII: decode on the columnar path against record by record."""
+    path = ensure_ascii(minutes)
+    name = f"Modbus ASCII, saturated, {minutes:g} min"
+    base = None
+    for mode in ("records", "columns"):
+        res = [run_child("ascii", path, mode) for _ in range(runs)]
+        fps = statistics.median([r["frames"] / r["seconds"] for r in res])
+        base = base or fps
+        rows.append((name, f"decode ({mode})", med([r["seconds"] for r in res]), "", f"{fps / 1e6:.2f} M/s",
+                     f"{res[0]['frames']} frames" + (f"; {fps / base:.1f}x records" if mode == "columns" else "")))
+
+
+def bench_import_inputs(args: argparse.Namespace) -> None:
+    """The issue-14 inputs of this module: hex text, four-wire, Modbus ASCII, each against its target."""
+    rows: list = []
+    bench_hex_text(args.runs, rows)
+    bench_four_wire(args.runs, rows)
+    bench_modbus_ascii(args.runs, rows)
+    widths = [max(len(str(r[i])) for r in rows + [HEAD]) for i in range(len(HEAD))]
+    for r in [HEAD] + rows:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
+
+
 def run_child(stage: str, *args: object) -> dict:
     cmd = [sys.executable, str(Path(__file__).resolve()), "--child", stage, *map(str, args)]
     out = subprocess.run(cmd, capture_output=True, text=True)
@@ -211,6 +433,8 @@ def main() -> None:
     ap.add_argument("--fleet-night-s", type=float, default=300.0, help="simulated seconds per night (default 300)")
     ap.add_argument("--fleet-only", action="store_true", help="run only the fleet stage")
     ap.add_argument("--no-fleet", action="store_true", help="skip the fleet stage")
+    ap.add_argument("--import-inputs-only", action="store_true",
+                    help="run only hex text, four-wire and Modbus ASCII (issue 14 inputs)")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
@@ -219,6 +443,9 @@ def main() -> None:
         return
 
     rows: list = []
+    if args.import_inputs_only:
+        bench_import_inputs(args)
+        return
     if args.fleet_only:
         _print_fleet(args)
         return
@@ -245,6 +472,7 @@ def main() -> None:
     print(f"targets: analyze 24 h <= {TARGET_ANALYZE_S:.0f} s, peak <= {TARGET_PEAK_MB:.0f} MB, framing >= "
           f"{TARGET_FRAMING_RATIO:.0f}x pymodbus, html <= {TARGET_HTML_MB:.0f} MB, chromium <= {TARGET_BROWSER_S:.0f} s")
     print(f"machine: {os.cpu_count()} cores; python {sys.version.split()[0]}")
+    bench_import_inputs(args)
     if not args.no_fleet:
         _print_fleet(args)
 

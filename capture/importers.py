@@ -47,10 +47,14 @@ EPOCH_LIMIT_S = 253402300799.0
 MAX_OFFSET_S = MAX_SPAN_NS / 1e9
 #: Largest adapter latency a '# latency_ms:' line may give (the capture header allows the same).
 MAX_LATENCY_MS = 10_000.0
-BATCH_RECORDS = 65536
+BATCH_RECORDS = 16384
 #: Longest line read: 65535 bytes in hex with spaces and a time (a longer one is a bad line, read no further).
 MAX_LINE_CHARS = 256 * 1024
 RAW_RECORD_BYTES = 256
+#: Characters read at a time from a hex text file: the first read, doubling up to the most (a read
+#: error loses what the failing read had read).
+READ_CHARS = 8192
+READ_CHARS_MOST = 1 << 20
 _SETTING = re.compile(r"^#\s*(baud|format|latency_ms|port|notes)\s*:\s*(.*?)\s*$", re.IGNORECASE)
 _HEX_TOKEN = re.compile(r"^(?:0x)?([0-9A-Fa-f]{2})+$")
 
@@ -143,11 +147,11 @@ class HexTextSource:
         payload = bytearray()
         last_t = -1
         with self._open() as f:
-            lines = _lines(f)
+            blocks = _line_blocks(f)
             lineno = 0
             while True:
                 try:
-                    lineno, line = next(lines)
+                    lines = next(blocks)
                 except StopIteration:
                     break
                 except OSError as exc:  # a failing medium (EIO): keep what was read, say where it stopped
@@ -157,29 +161,80 @@ class HexTextSource:
                         f"{self.path}: read error after line {lineno} ({reason}); "
                         f"the lines read before it are kept, the rest could not be read")
                     break
-                if len(line) > MAX_LINE_CHARS:
-                    self._bad_line(f"longer than {MAX_LINE_CHARS} characters", lineno, line[:MAX_LINE_CHARS])
-                    continue
-                s = line.strip()
-                if not s or s.startswith("#"):
-                    continue
-                parsed = self._parse_line(s, lineno, last_t)
-                if parsed is None:
-                    continue
-                t_ns, data = parsed
-                last_t = t_ns
-                t_list.append(t_ns)
-                lengths.append(len(data))
-                payload += data
-                if len(t_list) >= BATCH_RECORDS:
-                    yield self._batch(t_list, lengths, payload)
-                    t_list, lengths, payload = [], [], bytearray()
+                whole = self._whole_block(lines, last_t)
+                if whole is not None:
+                    stamps, datas = whole
+                    lineno += len(lines)
+                    last_t = stamps[-1]
+                    t_list += stamps
+                    lengths += map(len, datas)
+                    payload += b"".join(datas)
+                else:
+                    for line in lines:
+                        lineno += 1
+                        parsed = self._one_line(line, lineno, last_t)
+                        if parsed is None:
+                            continue
+                        t_ns, data = parsed
+                        last_t = t_ns
+                        t_list.append(t_ns)
+                        lengths.append(len(data))
+                        payload += data
+                while len(t_list) >= BATCH_RECORDS:
+                    size = sum(lengths[:BATCH_RECORDS])
+                    yield self._batch(t_list[:BATCH_RECORDS], lengths[:BATCH_RECORDS], payload[:size])
+                    del t_list[:BATCH_RECORDS], lengths[:BATCH_RECORDS], payload[:size]
         if t_list:
             yield self._batch(t_list, lengths, payload)
         more = self.report.lines_skipped - MAX_LINE_WARNINGS
         if more > 0:
             self.report.warnings.append(f"{self.path}: {more} more malformed line{'s' if more != 1 else ''} "
                                         f"skipped ({self.report.lines_skipped} in all)")
+
+    def _whole_block(self, lines: list[str], last_t: int) -> tuple[list[int], list[bytes]] | None:
+        """Times (ns) and bytes of a block of lines when every one is a usual line, else None.
+
+        A usual line is a number, then hex that bytes.fromhex takes whole, in time order and range.
+        bytes.fromhex takes exactly what the token rules of _parse_line take (pairs of hex digits,
+        ASCII blanks between pairs), so a block with any other line goes line by line, where
+        _parse_line accepts the line or names the token at fault.
+        """
+        if not lines or max(map(len, lines)) > MAX_LINE_CHARS:
+            return None
+        rows = [line.split(None, 1) for line in lines]
+        if min(map(len, rows)) < 2:
+            return None
+        try:
+            seconds = np.array(list(map(float, [r[0] for r in rows])), dtype=np.float64)
+            datas = list(map(bytes.fromhex, [r[1] for r in rows]))
+        except ValueError:
+            return None
+        offset = seconds - self._t0
+        if not (np.abs(offset) <= MAX_OFFSET_S).all() or max(map(len, datas)) > 65535:
+            return None
+        stamps = np.rint(offset * 1e9).astype(np.int64)  # as int(round(...)): nearest, ties to even
+        if stamps[0] < last_t or (stamps[1:] < stamps[:-1]).any():
+            return None
+        return stamps.tolist(), datas
+
+    def _one_line(self, line: str, lineno: int, last_t: int) -> tuple[int, bytes] | None:
+        """One line's time (ns) and bytes; None for a blank, comment or bad line (reported)."""
+        if len(line) > MAX_LINE_CHARS:
+            self._bad_line(f"longer than {MAX_LINE_CHARS} characters", lineno, line[:MAX_LINE_CHARS])
+            return None
+        parts = line.split(None, 1)
+        if not parts or parts[0][0] == "#":
+            return None
+        try:
+            seconds = float(parts[0])
+            data = bytes.fromhex(parts[1])
+        except (ValueError, IndexError):
+            data = b""
+        if data and abs(seconds - self._t0) <= MAX_OFFSET_S and len(data) <= 65535:
+            t_ns = int(round((seconds - self._t0) * 1e9))
+            if t_ns >= last_t:
+                return t_ns, data
+        return self._parse_line(line.strip(), lineno, last_t)
 
     def _parse_line(self, s: str, lineno: int, last_t: int) -> tuple[int, bytes] | None:
         parts = s.split()
@@ -289,20 +344,36 @@ class RawBinarySource:
 
 
 def _lines(f) -> Iterator[tuple[int, str]]:
-    """Numbered lines of a text file, none held longer than MAX_LINE_CHARS + 1 characters (the rest of an
-    overlong line is read and dropped in pieces, so a file with no line breaks never fills memory)."""
+    """Numbered lines of a text file, each as :func:`_line_blocks` gives it."""
     lineno = 0
+    for block in _line_blocks(f):
+        for line in block:
+            lineno += 1
+            yield lineno, line
+
+
+def _line_blocks(f) -> Iterator[list[str]]:
+    """The lines of a text file, a block at a time, each as ``readline(MAX_LINE_CHARS + 1)`` gives it
+    (its line end kept; an overlong line cut to MAX_LINE_CHARS + 1 characters, the rest read and
+    dropped in pieces, so a file with no line breaks never fills memory)."""
+    carry = ""  # the start of a line not ended yet, at most MAX_LINE_CHARS + 1 characters of it
+    limit = MAX_LINE_CHARS + 1
+    size = READ_CHARS
     while True:
-        line = f.readline(MAX_LINE_CHARS + 1)
-        if not line:
+        chunk = f.read(size)
+        size = min(2 * size, READ_CHARS_MOST)
+        if not chunk:
+            if carry:
+                yield [carry]
             return
-        lineno += 1
-        if len(line) > MAX_LINE_CHARS and not line.endswith("\n"):
-            while True:
-                rest = f.readline(MAX_LINE_CHARS)
-                if not rest or rest.endswith("\n"):
-                    break
-        yield lineno, line
+        pieces = chunk.split("\n")
+        pieces[0] = carry + pieces[0]
+        carry = pieces.pop()[:limit]
+        if pieces:
+            lines = [p + "\n" for p in pieces]
+            if max(map(len, lines)) > limit:
+                lines = [line[:limit] for line in lines]
+            yield lines
 
 
 def looks_like_hex_text(path: str | os.PathLike) -> bool:

@@ -13,6 +13,7 @@ import heapq
 from bisect import bisect_left, bisect_right
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from buswitness.decode.arrival import Timeline
@@ -323,7 +324,8 @@ class _Port:
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size:
                     ends = (starts + lens).tolist()
-                    raws = [buf[a:b] for a, b in zip(starts.tolist(), ends)]
+                    raws = (bulk.frame_bytes(buf, starts, lens) if hasattr(bulk, "frame_bytes")
+                            else [buf[a:b] for a, b in zip(starts.tolist(), ends)])
                     first = starts + self.base
                     lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
                     self._last_end = (int(lo[-1]), int(hi[-1]))
@@ -360,8 +362,9 @@ class _Port:
         lo, hi = run.lo, run.hi
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
         keys = (base - np.rint(run.lens * self.char_ns).astype(np.int64)).tolist()
-        return [(k, FrameMsg(self.port, raw, a, b, sh))
-                for k, raw, a, b, sh in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist())]
+        return [(k, FrameMsg(self.port, raw, a, b, sh, 0.0, _wire(raw, n)))
+                for k, raw, a, b, sh, n in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist(),
+                                               run.lens.tolist())]
 
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
@@ -410,8 +413,69 @@ class _Port:
         return t_start, FrameMsg(self.port, raw, lo, hi, span.shape, max(gaps) if gaps else 0.0, wire)
 
 
+@dataclass
+class _Block:
+    """The frames of one bulk run of a one-direction port (four-wire bus), queued whole.
+
+    Element ``k`` (from ``start`` on) sorts as ``(keys[k], seq0 + k)`` among the queue's items,
+    exactly where :meth:`_Port.bulk_items` would have put it as an item of its own.
+    """
+
+    port: int
+    role: str
+    run: BulkRun
+    keys: np.ndarray
+    seq0: int
+    start: int = 0
+
+    def head(self) -> tuple[int, int]:
+        return int(self.keys[self.start]), self.seq0 + self.start
+
+
+@dataclass
+class _Columns:
+    """Column chunks among the objects of a release, in stream order (see :func:`_collect`)."""
+
+    frames: dict | None = None
+    transactions: dict | None = None
+
+
+def _wire(raw: bytes, chars: int) -> int:
+    """A bulk frame's characters on the wire for FrameMsg: 0 where they are its bytes (RTU), else their count."""
+    return 0 if len(raw) == chars else chars
+
+
+def _raw_lengths(raws: list, lens: np.ndarray) -> np.ndarray:
+    """The frames table's lengths (bytes of ``raw``) of bulk frames whose ``lens`` count wire characters."""
+    if not raws or len(raws[0]) == int(lens[0]) and len(raws[-1]) == int(lens[-1]):
+        return lens
+    return np.fromiter(map(len, raws), dtype=np.int64, count=len(raws))
+
+
+def _collect(col: Collector, out: list) -> None:
+    """Objects and :class:`_Columns` of a release into ``col``, keeping their order."""
+    start = 0
+    for k, x in enumerate(out):
+        if isinstance(x, _Columns):
+            col.add_objects(out[start:k])
+            start = k + 1
+            if x.transactions is not None:
+                col.add_transaction_columns(x.transactions)
+            if x.frames is not None:
+                col.add_frame_columns(x.frames)
+    col.add_objects(out[start:])
+
+
 class Decoder:
     """Sans-I/O decoder over one capture's records (all ports)."""
+
+    #: Frames of one-direction ports (four-wire bus) meet at pairing as columns; False: one by one
+    #: (the reference the columnar path is tested against, tests/test_fourwire_columns.py).
+    COLUMNAR_PORTS = True
+    #: Frames that go one by one after the columnar pairing of two ports found nothing to take
+    #: (doubling while it keeps finding nothing), and the frames its first attempt looks at.
+    FRAMEWISE_RUN = 8
+    COLUMN_WINDOW = 256
 
     def __init__(self, config: DecoderConfig | None = None) -> None:
         self.config = config or DecoderConfig()
@@ -469,8 +533,8 @@ class Decoder:
             for port in ports.tolist():
                 self._port_records(np.flatnonzero(batch.port == port), batch, payload, offsets, plain, None)
             out: list = []
-            self._release(int(batch.t_ns[-1]) - self._slack_ns, out)
-            col.add_objects(out)
+            self._release(int(batch.t_ns[-1]) - self._slack_ns, out, columns=True)
+            _collect(col, out)
             return col.output(self.proto)
         self._port_records(np.arange(count), batch, payload, offsets, plain, col)
         return col.output(self.proto)
@@ -510,7 +574,9 @@ class Decoder:
         if sel[-1] - sel[0] + 1 == sel.size:
             data = payload[int(offsets[sel[0]]):int(offsets[sel[-1]] + lengths[-1])]
         else:
-            data = b"".join(payload[o:o + n] for o, n in zip(offsets[sel].tolist(), lengths.tolist()))
+            picked = np.zeros(len(batch), dtype=bool)
+            picked[sel] = True  # the records of one port among several: their bytes in one gather
+            data = batch.payload[np.repeat(picked, batch.length)].tobytes()
         if p.has_marks():
             p.marks(int(t_ns[0]), data, 0)
         pieces: list = []
@@ -524,6 +590,8 @@ class Decoder:
                     col.add_objects(out)
             elif col is not None:
                 self._bulk_frames(p, piece, col)
+            elif p.role != "both" and self.COLUMNAR_PORTS:
+                self._enqueue_run(p, piece)
             else:
                 self._enqueue(p, p.bulk_items(piece))
 
@@ -552,15 +620,15 @@ class Decoder:
                     i = j
                     continue
             out: list = []
-            frame = self._deliver(FrameMsg(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i])), out,
-                                  keep_frame=False)
+            frame = self._deliver(FrameMsg(p.port, raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0,
+                                           _wire(raws[i], int(lens[i]))), out, keep_frame=False)
             directions[i] = 0 if frame.direction == "request" else 1 if frame.direction == "response" else 2
             col.add_objects(out)
             i += 1
         col.add_frame_columns({
             "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi,
-            "port": np.full(m, p.port, dtype=np.uint8), "address": addrs, "function": fcs, "length": lens,
-            "direction": directions, "raw": raws,
+            "port": np.full(m, p.port, dtype=np.uint8), "address": addrs, "function": fcs,
+            "length": _raw_lengths(raws, lens), "direction": directions, "raw": raws,
         })
 
     def flush(self) -> DecodeOutput:
@@ -588,8 +656,11 @@ class Decoder:
             heapq.heappush(self._queue, (port.last_key, self._seq, item))
             self._seq += 1
 
-    def _release(self, now_ns: int | None, out: list) -> None:
-        """Hand items to pairing in time order, once no port can still produce an earlier one."""
+    def _release(self, now_ns: int | None, out: list, columns: bool = False) -> None:
+        """Hand items to pairing in time order, once no port can still produce an earlier one.
+
+        With ``columns``, frames of queued runs (:class:`_Block`) may go to ``out`` as column chunks
+        (:class:`_Columns`, for :func:`_collect`); without, every frame is an object."""
         if now_ns is None or len(self.ports) == 1:
             limit = None
         else:
@@ -598,6 +669,9 @@ class Decoder:
         q = self._queue
         while q and (limit is None or q[0][0] < limit):
             _key, _seq, item = heapq.heappop(q)
+            if isinstance(item, _Block):
+                self._release_block(item, limit, out, columns)
+                continue
             if isinstance(item, DamageMsg):
                 out.append(self.pairing.on_damage(item.damage))
                 out.extend(self.pairing.collisions(item.damage))
@@ -625,6 +699,122 @@ class Decoder:
         out.extend(events)
         out.extend(txns)
         return frame
+
+    # -- four-wire: frames of one-direction ports merged and paired in columns -------------------
+    def _enqueue_run(self, p: _Port, run: BulkRun) -> None:
+        """Queue a bulk run of a one-direction port whole, keyed as :meth:`_enqueue` keys each frame."""
+        base = run.lo if p.role == "master" else run.hi
+        keys = np.maximum.accumulate(np.maximum(base - np.rint(run.lens * p.char_ns).astype(np.int64), p.last_key))
+        p.last_key = int(keys[-1])
+        blk: Any = _Block(p.port, p.role, run, keys, self._seq)
+        heapq.heappush(self._queue, (int(keys[0]), self._seq, blk))
+        self._seq += len(run)
+
+    def _release_block(self, blk: _Block, limit: int | None, out: list, columns: bool) -> None:
+        """Release the frames of ``blk`` (just popped) that come before every other queued item and ``limit``.
+
+        With ``columns``, a run of the other port queued right behind it is merged in: the
+        frames of both, in queue order, are paired in columns where they are regular.
+        """
+        q = self._queue
+        blocks: list[_Block] = [blk]
+        nxt: Any = q[0][2] if q else None
+        if columns and isinstance(nxt, _Block) and nxt.port != blk.port:
+            heapq.heappop(q)
+            blocks.append(nxt)
+        keys = np.concatenate([b.keys[b.start:] for b in blocks])
+        seqs = np.concatenate([np.arange(b.seq0 + b.start, b.seq0 + len(b.run), dtype=np.int64) for b in blocks])
+        which = np.repeat(np.arange(len(blocks)), [len(b.run) - b.start for b in blocks])
+        order = np.lexsort((seqs, keys))
+        keys, seqs = keys[order], seqs[order]
+        take = keys.size
+        if limit is not None:
+            take = int(np.searchsorted(keys, limit, "left"))
+        if q:
+            nk, ns = q[0][0], q[0][1]
+            first, past = np.searchsorted(keys, nk, "left"), np.searchsorted(keys, nk, "right")
+            take = min(take, int(first + np.searchsorted(seqs[first:past], ns, "left")))
+        order, which = order[:take], which[order[:take]]
+        picks = []
+        offset = 0
+        for k, part in enumerate(blocks):
+            mine = order[which == k] - offset + part.start  # element numbers of the part, in order
+            offset += len(part.run) - part.start
+            picks.append(mine)
+            part.start += mine.size
+            if part.start < len(part.run):
+                key, seq = part.head()
+                rest: Any = part
+                heapq.heappush(q, (key, seq, rest))
+        if take:
+            self._deliver_merged(blocks, which, picks, out, columns)
+
+    def _deliver_merged(self, blocks: list[_Block], which: np.ndarray, picks: list[np.ndarray], out: list,
+                        columns: bool) -> None:
+        """Frames of queued runs into pairing in queue order (``which`` block each comes from)."""
+        m = which.size
+        slot = [np.flatnonzero(which == k) for k in range(len(blocks))]
+
+        def gather(name: str, dtype) -> np.ndarray:
+            col = np.empty(m, dtype=dtype)
+            for b, s, pick in zip(blocks, slot, picks):
+                col[s] = getattr(b.run, name)[pick]
+            return col
+
+        lo, hi, lens = gather("lo", np.int64), gather("hi", np.int64), gather("lens", np.int64)
+        addrs, fcs = gather("addrs", np.uint8), gather("fcs", np.uint8)
+        ports = np.empty(m, dtype=np.uint8)
+        shapes = np.empty(m, dtype=np.int8)
+        merged = np.empty(m, dtype=object)
+        for b, s, pick in zip(blocks, slot, picks):
+            ports[s] = b.port
+            shapes[s] = REQUEST if b.role == "master" else RESPONSE
+            run_raws = np.empty(len(b.run.raws), dtype=object)
+            run_raws[:] = b.run.raws
+            merged[s] = run_raws[pick]
+        raws: list = merged.tolist()
+        if not columns:
+            for k in range(m):
+                self._deliver(FrameMsg(int(ports[k]), raws[k], int(lo[k]), int(hi[k]), int(shapes[k]), 0.0,
+                                       _wire(raws[k], int(lens[k]))), out)
+            return
+        c = self.char_ns
+        t_end = (lo + hi) // 2
+        t_start = t_end - np.rint(lens * c).astype(np.int64)
+        directions = np.where(shapes == REQUEST, 0, 1).astype(np.int8)
+        run = BulkRun(lo, hi, lens, shapes, addrs, fcs, raws)
+        req_port = next((b.port for b in blocks if b.role == "master"), -1)
+        rsp_port = next((b.port for b in blocks if b.role == "slaves"), -1)
+        is_req = shapes == REQUEST
+        pr = self.pairing
+        i = 0
+        retry_at = 0  # after a columnar attempt that took nothing, some frames go one by one first
+        backoff = self.FRAMEWISE_RUN
+        window = self.COLUMN_WINDOW  # frames one attempt looks at: doubles while attempts take them all
+        while i < m:
+            if req_port >= 0 and rsp_port >= 0 and i >= retry_at:
+                end = min(m, i + window)
+                j, cols, events = pr.pair_two_port(RegularRun(rsp_port, run, t_start, t_end, c, i, end, req_port),
+                                                   is_req)
+                if cols is not None:
+                    out.append(_Columns(transactions=cols))
+                out.extend(events)
+                if j > i:
+                    window = window * 2 if j == end else self.COLUMN_WINDOW
+                    backoff = self.FRAMEWISE_RUN
+                    i = j
+                    continue
+                retry_at = i + backoff
+                backoff = min(2 * backoff, 32 * self.FRAMEWISE_RUN)
+                window = self.COLUMN_WINDOW
+            self._deliver(FrameMsg(int(ports[i]), raws[i], int(lo[i]), int(hi[i]), int(shapes[i]), 0.0,
+                                   _wire(raws[i], int(lens[i]))), out, keep_frame=False)
+            i += 1
+        out.append(_Columns(frames={
+            "t_start_ns": t_start, "t_end_ns": t_end, "t_end_lo_ns": lo, "t_end_hi_ns": hi, "port": ports,
+            "address": addrs, "function": fcs, "length": _raw_lengths(raws, lens), "direction": directions,
+            "raw": raws,
+        }))
 
 
 def decode_source(source, config: DecoderConfig | None = None) -> Iterator[DecodeOutput]:

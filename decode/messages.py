@@ -80,6 +80,8 @@ class RegularRun:
     char_ns: float
     i: int
     j: int
+    #: The requests' port when it is not ``port`` (a four-wire bus: ``port`` hears the answers).
+    request_port: int = -1
 
 
 __all__ = ["BulkRun", "DamageMsg", "FrameMsg", "RegularRun", "Span"]

@@ -66,6 +66,9 @@ from buswitness.decode.tables import OUTCOME_CODE
 #: answer before it is final: slow stations answer up to seconds late.
 LATE_WINDOW_NS = 5_000_000_000
 LATE_WINDOW = 64
+#: Later requests the two-port columnar path lets come before the answer to an open request
+#: (each ages it by two; at LATE_WINDOW it would close): past this, frame by frame.
+FIFO_SPAN = 16
 
 #: Damage kinds that mean "an answer was on the line but unusable" when they follow a request.
 ANSWER_DAMAGE = frozenset({"crc_error", "truncated", "collision", "stray_bytes", "line_error", "break"})
@@ -449,9 +452,263 @@ class Pairing:
                           f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
                           f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()]
         last = int(q[-1])
-        self.absorb_regular(Frame(port, raws[last], int(lo[last]), int(hi[last]), char_ns, "request"),
+        req_port = port if rr.request_port < 0 else rr.request_port
+        self.absorb_regular(Frame(req_port, raws[last], int(lo[last]), int(hi[last]), char_ns, "request"),
                             addrs[q], mid * 1e6)
         return columns, events
+
+    # -- the columnar path of a four-wire bus: requests and answers on two ports ----------------------
+    def _fifo_opens(self, req_port: int) -> list[_Open] | None:
+        """The open requests, oldest first, when the state is one the two-port columnar path can carry
+        on from (undamaged requests, every one awaiting its answer in order, the newest one the master's); else None."""
+        if self._held is not None or self._events:
+            return None
+        by_slot: dict[int, _Open] = {}
+        for st in self.stations.values():
+            if st.pending is not None:
+                return None
+            for o in st.open:
+                by_slot[id(o.slot)] = o
+        if len(by_slot) != len(self.slots):
+            return None
+        pre = [by_slot.get(id(slot)) for slot in self.slots]
+        if any(o is None or o.slot.final or o.damage is not None or o.collided or o.req.port != req_port
+               for o in pre):
+            return None
+        opens: list[_Open] = pre  # type: ignore[assignment]
+        if opens and (self.current is not opens[-1] or opens[-1].moved_on
+                      or not all(o.moved_on for o in opens[:-1])):
+            return None
+        if not opens and self.current is not None:
+            return None
+        return opens
+
+    def pair_two_port(self, rr: RegularRun, is_req: np.ndarray) -> tuple[int, dict | None, list[Damage]]:
+        """Pair frames ``rr.i`` to ``rr.j`` of a four-wire bus (requests on ``rr.request_port``, answers
+        on ``rr.port``, merged in time order) in columns, as far as :meth:`on_frame` would give the same.
+
+        With coarse timestamps the merged order puts several requests before the answer to the
+        first (an answer sorts by its latest start, a request by its earliest). Each answer still
+        goes to the oldest open request (invariant 3); here that is done for whole runs in which
+        every answer is from the station and function of the oldest open request, each station
+        has one open request at a time, and no open request ages out (:data:`FIFO_SPAN`). Requests
+        still open where the run stops are left as :meth:`on_frame` would have left them, so the
+        frame-by-frame path carries on from there. Returns the index the run stopped at (``rr.i``:
+        nothing done), the transactions in columns (None when none finished) and the events
+        (tests/test_fourwire_columns.py: equal to frame by frame).
+        """
+        run, i0, m, c = rr.run, rr.i, rr.j, rr.char_ns
+        req_port, rsp_port = rr.request_port, rr.port
+        pre = self._fifo_opens(req_port)
+        if pre is None or m <= i0:
+            return i0, None, []
+        lo, hi, lens, addrs, fcs, raws, t_start, t_end = (run.lo, run.hi, run.lens, run.addrs, run.fcs, run.raws,
+                                                          rr.t_start, rr.t_end)
+        q = len(pre)
+        R = i0 + np.flatnonzero(is_req[i0:m])
+        A = i0 + np.flatnonzero(~is_req[i0:m])
+        nq, na = q + R.size, A.size
+        pre_req = [o.req for o in pre]
+        qpos = np.concatenate([np.full(q, -1, np.int64), R])
+        qaddr = np.concatenate([np.array([f.address for f in pre_req], np.int64), addrs[R].astype(np.int64)])
+        qfc = np.concatenate([np.array([f.function for f in pre_req], np.int64), fcs[R].astype(np.int64)])
+        qlo = np.concatenate([np.array([f.t_end_lo_ns for f in pre_req], np.int64), lo[R]])
+        qhi = np.concatenate([np.array([f.t_end_hi_ns for f in pre_req], np.int64), hi[R]])
+        qend = np.concatenate([np.array([f.t_end_ns for f in pre_req], np.int64), t_end[R]])
+        age0 = np.concatenate([np.array([o.age for o in pre], np.int64), np.zeros(R.size, np.int64)])
+        n = min(nq, na)
+        # where each request makes the state one this path cannot follow (m: nowhere)
+        ans = np.full(nq, m, np.int64)
+        ans[:n] = A[:n]
+        fail = np.full(nq, m, np.int64)
+        a = A[:n]
+        ok = ((a > qpos[:n]) & (qaddr[:n] != 0) & (addrs[a] == qaddr[:n]) & ((fcs[a] & 0x7F) == qfc[:n])
+              & (qlo[:n] <= hi[a]))
+        fail[:n] = np.where(ok, m, a)
+        fail = np.where(qaddr == 0, np.minimum(fail, qpos), fail)  # a broadcast: frame by frame
+        span = np.minimum(FIFO_SPAN, (LATE_WINDOW - 4 - age0) // 2)
+        idx = np.arange(nq)
+        for d in range(1, FIFO_SPAN + 2):
+            j = np.minimum(idx + d, nq - 1)
+            later = (idx + d < nq) & (qpos[j] < ans)  # request i + d came while request i was open
+            if not later.any():
+                break
+            bad = later & ((d > span) | (qend[j] - qend > LATE_WINDOW_NS))
+            fail = np.where(bad, np.minimum(fail, qpos[j]), fail)
+            # Request i + d to the same station, same function, may be a candidate for the answer to
+            # request i (_owner): the oldest still takes it when the timing rules cannot pick the
+            # newest, surely so when the answer began within its own end interval's width after the
+            # oldest ended (both rules need more: a usual time over zero, a slowest answer over 10 ms).
+            rival = later & (ans < m) & (qaddr[j] == qaddr) & (qfc[j] == qfc)
+            if rival.any():
+                r = np.flatnonzero(rival)
+                a_r = ans[r]
+                open_rival = qlo[j[r]] <= hi[a_r]
+                if self.timed:
+                    open_rival &= t_start[a_r] - qend[r] > hi[a_r] - lo[a_r]
+                fail[r] = np.where(open_rival, np.minimum(fail[r], a_r), fail[r])
+        e = int(fail.min()) if nq else m
+        if na > nq:
+            e = min(e, int(A[nq]))
+        if e <= i0:
+            return i0, None, []
+        k = int(np.searchsorted(A, e))          # answers before the stop, each to request k of the list
+        r_end = q + int(np.searchsorted(R, e))  # requests before the stop
+        # -- the requests: the master moved on from the one before whenever its answer had not come
+        for addr in dict.fromkeys(qaddr[q:r_end].tolist()):
+            self.station(addr)  # stations become known in request order, as on_frame meets them
+        first_new = q
+        moved_by_next = np.zeros(nq, dtype=bool)  # request i was awaited when request i + 1 came
+        if r_end > 0:
+            nxt = np.arange(max(first_new, 1), r_end)
+            moved_by_next[nxt - 1] = ans[nxt - 1] > qpos[nxt]
+        retry_new = np.zeros(nq, dtype=bool)
+        if r_end > q:
+            if q and ans[q - 1] < qpos[q]:
+                answered = True
+            else:
+                answered = self.last_answered
+            last = self.last_request
+            retry_new[q] = last is not None and not answered and last.raw == raws[int(qpos[q])]
+            # the same request again while the first still awaited its answer: only where address,
+            # function and length agree are the bytes compared
+            prev_, next_ = qpos[q:r_end - 1], qpos[q + 1:r_end]
+            alike = (moved_by_next[q:r_end - 1] & (addrs[prev_] == addrs[next_]) & (fcs[prev_] == fcs[next_])
+                     & (lens[prev_] == lens[next_]))
+            for i in np.flatnonzero(alike).tolist():
+                retry_new[q + i + 1] = raws[int(prev_[i])] == raws[int(next_[i])]
+            if self._settling is not None:
+                if not self._settling.moved_on:
+                    self._settling.moved_on_hi_ns = int(qhi[q])
+                    self._settling.moved_on_port = req_port
+                self._settling = None
+        waits = np.flatnonzero(moved_by_next[:r_end - 1])
+        waits = waits[waits + 1 >= q]
+        if waits.size:
+            gaps = t_start[qpos[waits + 1]] - qend[waits]
+            self._waits.extend(gaps.astype(np.float64).tolist())
+            self._wait_dirty = True
+            for addr, count in zip(*np.unique(qaddr[waits], return_counts=True)):
+                self.station(int(addr)).unanswered += int(count)
+        # -- the answers: each to its request, late when the master surely moved on before it began
+        columns = None
+        events: list[Damage] = []
+        if k:
+            a = A[:k]
+            c_rsp = lens[a] * c
+            moved = np.zeros(k, dtype=bool)
+            moved_hi = np.zeros(k, np.int64)
+            moved_same_port = np.zeros(k, dtype=bool)
+            for i, o in enumerate(pre[:k]):
+                if o.moved_on:
+                    moved[i], moved_hi[i], moved_same_port[i] = True, o.moved_on_hi_ns, o.moved_on_port == rsp_port
+            by_next = ~moved & moved_by_next[:k]
+            moved_hi[by_next] = qhi[np.flatnonzero(by_next) + 1]
+            moved_same_port[by_next] = req_port == rsp_port
+            moved |= by_next
+            late = moved & moved_same_port
+            check = np.flatnonzero(moved & ~moved_same_port)
+            if check.size:  # as _is_late; in floats only where they hold every nanosecond exactly
+                lo_a, hi_m = lo[a[check]], moved_hi[check]
+                if max(np.abs(lo_a).max(), np.abs(hi_m).max()) < 1 << 52:
+                    late[check] = lo_a - lens[a[check]] * c > hi_m
+                else:
+                    late[check] = [x - n_ * c > h for x, n_, h in zip(lo_a.tolist(), lens[a[check]].tolist(),
+                                                                   hi_m.tolist())]
+            rsp_raws = [raws[x] for x in a.tolist()]
+            req_raws = [f.raw for f in pre_req[:k]] + [raws[x] for x in qpos[q:k].tolist()]
+            exc = (fcs[a] & 0x80) != 0
+            codes = np.zeros(k, dtype=np.uint8)
+            if exc.any():
+                codes[exc] = [rsp_raws[x][2] for x in np.flatnonzero(exc).tolist()]
+            is_exc = exc & (codes != 0) & ~late
+            outcome = np.where(late, OUTCOME_CODE["late"],
+                               np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"])).astype(np.int8)
+            conflict = np.zeros(k, dtype=bool)
+            if self.timed:
+                mid = (t_end[a] - c_rsp - qend[:k]) / 1e6
+                low = (lo[a] - c_rsp - qhi[:k]) / 1e6
+                high = (hi[a] - c_rsp - qlo[:k]) / 1e6
+                conflict = high < 0
+                before = -high
+                width = high - low
+                low = np.where(conflict, 0.0, np.maximum(low, 0.0))
+                high = np.where(conflict, width, high)
+                mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
+            else:
+                mid = low = high = np.full(k, np.nan)
+            retry = np.concatenate([np.array([o.retry for o in pre[:k]], dtype=bool), retry_new[q:k]])
+            columns = {
+                "t_request_end_ns": qend[:k], "t_response_start_ns": t_start[a], "station": qaddr[:k].astype(np.uint8),
+                "function": qfc[:k].astype(np.uint8), "outcome": outcome,
+                "exception_code": np.where(is_exc, codes, 0).astype(np.uint8), "retry": retry,
+                "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
+                "request_raw": req_raws, "response_raw": rsp_raws,
+            }
+            short = ~conflict & ~late & (high * 1e6 < self.t35_ns)
+            for x in np.flatnonzero(conflict | short).tolist():
+                raw = rsp_raws[x]
+                if conflict[x]:
+                    events.append(Damage("timing_conflict", rsp_port, int(t_start[a[x]]), raw, raw[0],
+                                         f"station {raw[0]}'s answer would have begun {before[x]:.3f} ms or more "
+                                         f"before its request ended: the character format or the adapter's latency "
+                                         f"is not what the capture states (response time widened to "
+                                         f"[0, {high[x]:.3f}] ms)"))
+                else:
+                    events.append(Damage("turnaround_short", rsp_port, int(t_start[a[x]]), raw, raw[0],
+                                         f"station {raw[0]} began its answer less than t3.5 after the request "
+                                         f"ended (at most {high[x]:.3f} ms)"))
+            self._absorb_answers(qaddr[:k], np.where(late, np.nan, mid * 1e6))
+            for o in pre[:k]:
+                self.slots.popleft()
+                self.station(o.req.address).open.popleft()
+        # -- what is still open where the run stopped, as on_frame leaves it
+        still: dict[int, _Open] = {}
+        new_pos = qpos[q:r_end]
+        for i in range(k, r_end):
+            addr = int(qaddr[i])
+            same = np.flatnonzero(qaddr[:i] == addr)
+            before = int(same[-1]) if same.size else None  # the station's request before this one
+            if i < q:
+                o = pre[i]
+            else:
+                x = int(qpos[i])
+                o = _Open(Frame(req_port, raws[x], int(lo[x]), int(hi[x]), c, "request"), _Slot(None, False),
+                          bool(retry_new[i]))
+                self.slots.append(o.slot)
+                self.station(addr).open.append(o)
+            # _age: each later request ages an open request by two while it is its station's oldest, else by one
+            later_new = new_pos[new_pos > qpos[i]]
+            head_from = -1 if before is None else int(ans[before])
+            o.age += int(later_new.size + np.count_nonzero(later_new > head_from))
+            if i < r_end - 1 and not o.moved_on:
+                o.moved_on_hi_ns, o.moved_on_port = int(qhi[i + 1]), req_port
+            still[i] = o
+        if r_end > 0:
+            last_open = r_end - 1 >= k
+            if r_end > q:
+                x = int(qpos[r_end - 1])
+                self.current = still[r_end - 1] if last_open else None
+                self.last_request = (self.current.req if self.current is not None
+                                     else Frame(req_port, raws[x], int(lo[x]), int(hi[x]), c, "request"))
+                self.last_answered = not last_open
+            elif not last_open:
+                self.current = None
+                self.last_answered = True
+        return e, columns, events
+
+    def _absorb_answers(self, stations: np.ndarray, response_ns: np.ndarray) -> None:
+        """Answer counts, slowest answers and recent answer times of credited answers (NaN: late or untimed)."""
+        self.answers += int(stations.size)
+        uniq, inverse = np.unique(stations, return_inverse=True)
+        for k, addr in enumerate(uniq.tolist()):
+            st = self.station(int(addr))
+            mine = response_ns[inverse == k]
+            st.answers += int(mine.size)
+            timely = mine[np.isfinite(mine)]
+            if timely.size:
+                st.slowest_ns = max(st.slowest_ns, float(timely.max()))
+                st.recent.extend(timely[-RECENT_ANSWERS:].tolist())
 
     # -- internals ----------------------------------------------------------------------------------
     def _on_request(self, req: Frame) -> None:

@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 from buswitness.capture.fileformat import FLAG_UNTIMED
+from buswitness.capture.importers import MAX_LINE_WARNINGS
 from buswitness.capture.sources import open_capture
 from buswitness.decode.crc import crc_ok
 from buswitness.decode.timing import SerialFormat
@@ -98,3 +99,47 @@ def test_bad_setting_line_stops_or_is_ignored_as_chosen(tmp_path):
     src = open_capture(p, kind="hex", on_bad_line="skip")
     assert src.header.serial.baud == 19200
     assert "bad setting ignored" in src.report.warnings[0]
+
+
+def _token_by_token(src, path) -> tuple[list, list]:
+    """What the token rules alone (HexTextSource._parse_line, the importer's diagnosis) make of the file."""
+    recs, last_t = [], -1
+    with open(path, encoding="utf-8", newline=None) as f:  # lines end at \n, \r or \r\n only, as the importer's
+        lines = list(f)
+    for lineno, line in enumerate(lines, 1):
+        s = line.strip()
+        if not s or s.startswith("#"):
+            continue
+        parsed = src._parse_line(s, lineno, last_t)
+        if parsed is not None:
+            last_t = parsed[0]
+            recs.append(parsed)
+    return recs, list(src.report.warnings)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_line_at_a_time_reading_equals_the_token_rules(tmp_path, seed):
+    # Lines of every shape the token rules judge (issue 14: one bytes.fromhex per line, the token
+    # rules only on lines it refuses): the records and every skipped line's message are the same.
+    import random
+    rng = random.Random(seed)
+    seps = [" ", " ", "  ", "\t", "\x0b", "\x1c", "\u00a0", "\u2003"]
+    lines, t = [], 0.0
+    for _ in range(400):
+        t += rng.choice([0.001, 0.02, 0.5, -0.3 if rng.random() < 0.05 else 0.01])
+        toks = [bytes(rng.randrange(256) for _ in range(rng.randrange(1, 4))).hex() for _ in range(rng.randrange(0, 5))]
+        toks = [rng.choice([tok, tok.upper(), "0x" + tok, "0X" + tok, tok[:-1], tok + "g", "zz"])
+                if rng.random() < 0.15 else tok for tok in toks]
+        stamp = rng.choice([f"{t:.6f}"] * 30 + ["nan", "inf", "-inf", "x", "1e300", "1_0", f"{t:.3e}"])
+        sep = rng.choice(seps) if rng.random() < 0.2 else " "
+        lines.append(rng.choice(["", "  ", "# a comment"]) if rng.random() < 0.03 else sep.join([stamp, *toks]))
+    text = "\n".join(lines) + "\n"
+    p = tmp_path / "mixed.hex"
+    p.write_text(text, encoding="utf-8")
+    src = open_capture(p, kind="hex", on_bad_line="skip")
+    got = [(r.t_ns, r.data) for b in src.iter_batches() for r in b.records()]
+    ref = open_capture(p, kind="hex", on_bad_line="skip")
+    want, warnings = _token_by_token(ref, p)
+    assert got == want
+    assert src.report.warnings[:len(warnings)] == warnings[:MAX_LINE_WARNINGS]
+    assert src.report.lines_skipped == ref.report.lines_skipped and src.report.bytes_skipped == ref.report.bytes_skipped

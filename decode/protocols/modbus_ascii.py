@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from buswitness.decode.ascii import AsciiScanner, decode_ascii_frame
+from buswitness.decode.ascii import AsciiBulk, AsciiScanner, decode_ascii_frame
 from buswitness.decode.pairing import Pairing
 from buswitness.decode.protocols.base import DamageText, LineTiming, NoMarks
 from buswitness.decode.protocols.modbus_rtu import (
@@ -17,7 +17,7 @@ from buswitness.serial import SerialFormat
 
 class _Scanner(NoMarks, AsciiScanner):
     def scan(self, buf, end, final, out, frames=None) -> None:  # noqa: ANN001
-        AsciiScanner.scan(self, buf, end, final, out)
+        AsciiScanner.scan(self, buf, end, final, out, frames)
 
 
 class ModbusAscii:
@@ -25,7 +25,7 @@ class ModbusAscii:
     label = "Modbus ASCII"
     marks_bytes = False
     station_label = "station"
-    bulk = None
+    bulk = AsciiBulk()  # columns over runs of back-to-back valid frames (raws decoded, lengths on the wire)
 
     @staticmethod
     def timing(fmt: SerialFormat) -> LineTiming:
