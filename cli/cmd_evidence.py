@@ -40,6 +40,11 @@ def run(args: argparse.Namespace) -> int:
 
     path = write_evidence(result, args.station, output)
     s = result.station(args.station)
+    if s is None:  # nothing was heard of this station (a silent capture): the report says why
+        print(visible(f"station {args.station}: not one request or answer in this capture; "
+                      "see the report's findings"))
+        print(visible(f"wrote: {Path(path).resolve()}"))
+        return 0
     print(visible(f"{s.label}: {s.requests} requests, {s.timeouts} timeouts, {s.late} late answers, "
                   f"p95 {s.response_ms['p95']} ms; master timeout {result.timeout.explanation}"))
     print(visible(f"wrote: {Path(path).resolve()}"))
