@@ -51,6 +51,30 @@ def utc_clock(utc: str | None) -> str:
     return f"{date} {time[:12]}".strip()
 
 
+def local_span(start_utc: str | None, end_utc: str | None = None) -> str:
+    """The same moments in this computer's time zone (the site's, where the analysis runs on site), with the
+    offset, as the terminal and ``record --until`` give them: ``23:00:00 to 07:00:00 UTC+01:00``.
+    Empty where that zone is UTC itself or the times are unknown: the report's UTC already says it."""
+    from datetime import datetime, timezone
+
+    def local(text: str | None) -> datetime | None:
+        try:
+            dt = datetime.fromisoformat(str(text).replace("Z", "+00:00"))
+        except (TypeError, ValueError):
+            return None
+        return (dt if dt.tzinfo else dt.replace(tzinfo=timezone.utc)).astimezone()
+
+    a, b = local(start_utc), local(end_utc)
+    if a is None or not a.utcoffset():
+        return ""
+    zone = a.strftime("%z")
+    label = f"UTC{zone[:3]}:{zone[3:]}"
+    if b is None:
+        return f"{a:%Y-%m-%d %H:%M:%S} {label}"
+    same_day = a.date() == b.date()
+    return f"{a:%Y-%m-%d %H:%M:%S} to {b:%H:%M:%S}" + ("" if same_day else f" on {b:%Y-%m-%d}") + f" {label}"
+
+
 def fmt_value(value: object) -> str:
     """A finding's evidence value as plain text: numbers rounded, mappings and lists spelled out."""
     if isinstance(value, bool) or value is None:
@@ -194,7 +218,7 @@ def environment() -> jinja2.Environment:
     env.filters.update(ms=fmt_ms, interval=fmt_interval, fname=function_name, exname=exception_name,
                        evidence=evidence_items, value=fmt_value, sentence=evidence_sentence,
                        exceptions=exceptions_sentence, count=fmt_count, share=fmt_share, hexwrap=hex_tokens,
-                       clock=utc_clock)
+                       clock=utc_clock, localspan=local_span)
     return env
 
 

@@ -74,6 +74,23 @@ def test_times_are_the_sites_local_time_with_its_offset_and_files_keep_utc(analy
     assert f"when: {local:%Y-%m-%d %H:%M:%S} UTC+05:30 to " in out
 
 
+def test_the_dashboard_names_the_same_local_start_as_the_terminal(analysed):
+    out, page, summary = analysed
+    start_utc = datetime.fromisoformat(summary["capture"]["start_utc"])
+    local = start_utc.astimezone(timezone(timedelta(hours=5, minutes=30)))
+    assert f"{local:%Y-%m-%d %H:%M:%S} UTC+05:30 local" in html.unescape(page)
+
+
+def test_the_evidence_report_gives_its_span_in_local_time_too(tmp_path):
+    env = dict(os.environ, TZ=TZ_PLUS_0530)
+    out = tmp_path / "ev.html"
+    proc = subprocess.run([sys.executable, "-m", "buswitness.cli.main", "evidence", str(CAPTURE), "--station", "7",
+                           "-o", str(out), "--no-progress"], capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    page = html.unescape(out.read_text())
+    assert " UTC (" in page and "UTC+05:30</span>, local time where it was analysed)" in page
+
+
 def test_until_and_the_printed_times_use_the_same_zone():
     code = ("from datetime import datetime, timezone\n"
             "from buswitness.cli.cmd_record import until_instant, seconds_until\n"
