@@ -297,6 +297,8 @@ class _Port:
         # The bulk path never runs a frame across a certain silence or a silence over t1.5:
         # those frames need the sequential framer's judgement and events.
         stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
+        make_walker = getattr(bulk, "walker", None)
+        walker = make_walker(buf, arr, end, self.one_way) if make_walker is not None else None
         while True:
             progressed = False
             run = 2  # frames the sequential framer takes before the bulk walk tries again
@@ -304,8 +306,11 @@ class _Port:
             if held:
                 pieces.append(held)
             if sc.junk_start is None:
-                starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end, self.expect_response,
-                                                                      self.one_way)
+                if walker is not None:
+                    starts, lens, shapes, expect, addrs, fcs = walker.spans(sc.pos, self.expect_response)
+                else:
+                    starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end,
+                                                                          self.expect_response, self.one_way)
                 if starts.size and self._held:
                     # stop before the first frame that comes after a held event's bytes
                     keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
