@@ -229,9 +229,16 @@ def _protocol(header: CaptureHeader, options: AnalysisOptions):
 
 def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
     from buswitness.decode import Decoder
+    from buswitness.decode.decoder import joined_batches
     decoder = Decoder(cfg)
-    for batch in source.iter_batches():
-        on_batch(int(batch.payload.nbytes) + 12 * len(batch))
+
+    def read() -> Iterator:
+        for batch in source.iter_batches():
+            on_batch(int(batch.payload.nbytes) + 12 * len(batch))
+            yield batch
+
+    # a second's block of records is too little for one decoder call: join blocks (same tables)
+    for batch in joined_batches(read()):
         yield decoder.feed_batch(batch)
     yield decoder.flush()
     if contradictions is not None:
