@@ -94,6 +94,10 @@ class Timeline:
         """Earliest end of each held record's bytes (ns)."""
         return self._floors[self._lo:self._n]
 
+    def last_start(self) -> int:
+        """Absolute position of the last record's first byte (the stream's end when none is held)."""
+        return int(self._ints[self._n - 1, 0]) if self._n > self._lo else self._next_pos
+
     def __len__(self) -> int:
         return self._n - self._lo
 
@@ -152,6 +156,35 @@ class Timeline:
     def drop_before(self, pos: int) -> None:
         """Forget records whose bytes all lie before absolute position ``pos``."""
         self._lo += int(np.searchsorted(self.lasts, pos - 1, "right"))
+
+    def held_up(self, pos: np.ndarray) -> np.ndarray:
+        """For records starting at absolute ``pos``: where the next record starts if this read was held up.
+
+        A read held up in the host (its delay far over the usual) shows a silence before it
+        that was never on the wire. It gives itself away when the next read comes back less
+        than a latency period after it with a timer packet: that packet left the adapter at
+        least ``L`` after this read's packet (the timer restarts after every packet), so this
+        read waited at least ``L`` minus the interval between the two returns — over
+        ``min(d, L/2)`` here, far over the usual delay (TIMING.md). Returns the next
+        record's start for such reads, ``-1`` for the others (and where no next record is
+        held yet).
+        """
+        pos = np.asarray(pos, dtype=np.int64)
+        starts = self.starts
+        k = np.searchsorted(starts, pos)
+        nxt = k + 1
+        has = (k < starts.shape[0]) & (nxt < starts.shape[0])
+        out = np.full(pos.shape[0], -1, dtype=np.int64)
+        if not has.any():
+            return out
+        k, nxt = k[has], nxt[has]
+        lasts, times = self.lasts, self.times
+        limit = self.latency_ns - min(self.host_delay_ns, self.latency_ns / 2)
+        timer = lasts[nxt] - starts[nxt] + 1 < self.packet_bytes
+        quick = (times[nxt] - times[k]) < limit
+        sel = (starts[k] == pos[has]) & timer & quick
+        out[np.flatnonzero(has)[sel]] = starts[nxt][sel]
+        return out
 
     # -- bounds -----------------------------------------------------------------------------------
     def end_bounds(self, first: int, last: int) -> tuple[int, int]:
