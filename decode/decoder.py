@@ -677,8 +677,8 @@ class Decoder:
 
 #: Reader batches are joined up to about this many records (or JOIN_BYTES bytes) before decoding:
 #: a recording flushes a block a second, and the decoder's cost per call outweighs a second's records.
-JOIN_RECORDS = 1 << 16
-JOIN_BYTES = 4 << 20
+JOIN_RECORDS = 1 << 14
+JOIN_BYTES = 1 << 20
 
 
 def joined_batches(batches: Iterable[RecordBatch], records: int = JOIN_RECORDS,
