@@ -42,6 +42,16 @@ TARGET_BROWSER_S = 10.0
 
 
 def _peak_mb() -> float:
+    """This process's peak resident memory. VmHWM first: ru_maxrss keeps the parent's peak across
+    fork and exec (Linux getrusage(2)), so a child of a parent that simulated a long capture
+    would report the parent's memory."""
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
