@@ -23,6 +23,7 @@ from buswitness.analysis.sinks import SinkContext
 from buswitness.analysis.stationmap import StationMap
 from buswitness.analysis.timeout import TimeoutEstimate, given_timeout, infer_timeout
 from buswitness.capture.fileformat import CaptureHeader, ReadReport
+from buswitness.decode.tables import DecodeOutput
 
 #: Rows gathered before a block is processed: large enough that per-block overhead is small.
 BLOCK_ROWS = 200_000
@@ -144,9 +145,13 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
 
     def process() -> None:
         nonlocal acc, pending, rows
-        frames = pd.concat([p.frames for p in pending] or [empty[0]], ignore_index=True)
-        tx = pd.concat([p.transactions for p in pending] or [empty[1]], ignore_index=True)
-        events = pd.concat([p.events for p in pending] or [empty[2]], ignore_index=True)
+        if pending and all(isinstance(p, DecodeOutput) for p in pending):
+            # the decoder's columns joined first: one DataFrame per table and block
+            frames, tx, events = DecodeOutput.concat(pending).to_frames()
+        else:
+            frames = pd.concat([p.frames for p in pending] or [empty[0]], ignore_index=True)
+            tx = pd.concat([p.transactions for p in pending] or [empty[1]], ignore_index=True)
+            events = pd.concat([p.events for p in pending] or [empty[2]], ignore_index=True)
         pending, rows = [], 0
         if acc is None:
             first = _first_time(frames, tx, events)
@@ -164,7 +169,7 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     try:
         for out in outputs:
             pending.append(out)
-            rows += len(out.frames) + len(out.transactions) + len(out.events)
+            rows += out.rows if isinstance(out, DecodeOutput) else len(out.frames) + len(out.transactions) + len(out.events)
             if rows >= options.block_rows:
                 process()
         process()
@@ -224,9 +229,16 @@ def _protocol(header: CaptureHeader, options: AnalysisOptions):
 
 def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list | None = None) -> Iterator:
     from buswitness.decode import Decoder
+    from buswitness.decode.decoder import joined_batches
     decoder = Decoder(cfg)
-    for batch in source.iter_batches():
-        on_batch(int(batch.payload.nbytes) + 12 * len(batch))
+
+    def read() -> Iterator:
+        for batch in source.iter_batches():
+            on_batch(int(batch.payload.nbytes) + 12 * len(batch))
+            yield batch
+
+    # a second's block of records is too little for one decoder call: join blocks (same tables)
+    for batch in joined_batches(read()):
         yield decoder.feed_batch(batch)
     yield decoder.flush()
     if contradictions is not None:

@@ -85,6 +85,16 @@ class RecordBatch:
         )
 
     @classmethod
+    def concat(cls, batches: list[RecordBatch]) -> RecordBatch:
+        """The records of ``batches``, in order, as one batch."""
+        if len(batches) == 1:
+            return batches[0]
+        if not batches:
+            return cls.empty()
+        return cls(*(np.concatenate([getattr(b, name) for b in batches])
+                     for name in ("t_ns", "length", "port", "flags", "payload")))
+
+    @classmethod
     def empty(cls) -> RecordBatch:
         return cls(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.uint8), np.zeros(0, np.uint8),
                    np.zeros(0, np.uint8))

@@ -23,10 +23,11 @@ counted in :attr:`Timeline.contradictions` for the report.
 
 from __future__ import annotations
 
-from bisect import bisect_right
 from dataclasses import dataclass, field
 
 import numpy as np
+
+_INF = float("inf")
 
 
 @dataclass
@@ -34,7 +35,10 @@ class Timeline:
     """Byte positions of one port's stream mapped to the records that carried them.
 
     Positions are absolute (counted from the start of the port's stream); records no longer
-    needed are dropped with :meth:`drop_before`.
+    needed are dropped with :meth:`drop_before`. The records are kept as numpy columns that
+    grow in place (room doubles when full, dropped records are moved out when they take
+    half of it), so adding a run of records and bounding a run of frames cost work in
+    proportion to that run, not to the records still held.
     """
 
     char_ns: float
@@ -42,15 +46,62 @@ class Timeline:
     host_delay_ns: float
     packet_bytes: int = 62
     untimed: bool = False
-    starts: list[int] = field(default_factory=list)
-    lasts: list[int] = field(default_factory=list)
-    times: list[int] = field(default_factory=list)
-    floors: list[float] = field(default_factory=list)
     #: frames whose carried bounds crossed, so their interval fell back to one record's own bounds
     contradictions: int = 0
     _last_t: int | None = None
     _next_pos: int = 0
+    _lo: int = 0  # first record still held
+    _n: int = 0   # records stored (held ones are _lo.._n)
+    _ints: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), dtype=np.int64), repr=False)
+    _floors: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.float64), repr=False)
 
+    # -- storage ----------------------------------------------------------------------------------
+    def _room(self, more: int) -> None:
+        """Make room for ``more`` records at the end (moving the held ones to the front, or growing)."""
+        cap = self._floors.shape[0]
+        if self._n + more <= cap:
+            return
+        held = self._n - self._lo
+        if held + more <= cap // 2:
+            self._ints[:held] = self._ints[self._lo:self._n]
+            self._floors[:held] = self._floors[self._lo:self._n]
+        else:
+            size = max(64, 2 * (held + more))
+            ints = np.zeros((size, 3), dtype=np.int64)
+            floors = np.zeros(size, dtype=np.float64)
+            ints[:held] = self._ints[self._lo:self._n]
+            floors[:held] = self._floors[self._lo:self._n]
+            self._ints, self._floors = ints, floors
+        self._lo, self._n = 0, held
+
+    @property
+    def starts(self) -> np.ndarray:
+        """Absolute position of each held record's first byte."""
+        return self._ints[self._lo:self._n, 0]
+
+    @property
+    def lasts(self) -> np.ndarray:
+        """Absolute position of each held record's last byte."""
+        return self._ints[self._lo:self._n, 1]
+
+    @property
+    def times(self) -> np.ndarray:
+        """Read-return time of each held record (ns)."""
+        return self._ints[self._lo:self._n, 2]
+
+    @property
+    def floors(self) -> np.ndarray:
+        """Earliest end of each held record's bytes (ns)."""
+        return self._floors[self._lo:self._n]
+
+    def last_start(self) -> int:
+        """Absolute position of the last record's first byte (the stream's end when none is held)."""
+        return int(self._ints[self._n - 1, 0]) if self._n > self._lo else self._next_pos
+
+    def __len__(self) -> int:
+        return self._n - self._lo
+
+    # -- records in -------------------------------------------------------------------------------
     def add(self, t_ns: int, n: int) -> float:
         """Register a record of ``n`` bytes read at ``t_ns``; return the least silence before it (ns).
 
@@ -63,45 +114,15 @@ class Timeline:
         floor = t_ns - self.latency_ns - self.host_delay_ns
         if prev is not None and n <= self.packet_bytes:
             floor = max(floor, prev - self.host_delay_ns)
-        self.starts.append(start)
-        self.lasts.append(start + n - 1)
-        self.times.append(t_ns)
-        self.floors.append(floor)
+        self._room(1)
+        k = self._n
+        self._ints[k] = (start, start + n - 1, t_ns)
+        self._floors[k] = floor
+        self._n = k + 1
         if prev is None or self.untimed:
             return float("-inf")
         # TIMING.md: silence >= T_{i+1} - L - d - n·c - T_i
         return t_ns - self.latency_ns - self.host_delay_ns - n * self.char_ns - prev
-
-    def end_bounds(self, first: int, last: int) -> tuple[int, int]:
-        """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``."""
-        c = self.char_ns
-        i = max(0, bisect_right(self.starts, first) - 1)
-        lo = float("-inf")
-        hi = float("inf")
-        own = (float("-inf"), float("inf"))
-        while i < len(self.starts) and self.starts[i] <= last:
-            k0 = max(first, self.starts[i], self.lasts[i] - self.packet_bytes + 1)
-            if k0 <= last:
-                lo = max(lo, self.floors[i] + (last - k0) * c)
-                own = (self.floors[i], float(self.times[i]))
-            else:
-                lo = max(lo, self.floors[i] - (k0 - last) * c)
-                own = (self.floors[i] - (k0 - last) * c, float(self.times[i]))
-            hi = min(hi, self.times[i] + (last - self.lasts[i]) * c)
-            i += 1
-        if self.untimed or lo == float("-inf"):
-            lo = hi
-        elif lo > hi:
-            # the carried bounds crossed: widen to the byte's own record, never to a point
-            self.contradictions += 1
-            lo, hi = min(own[0], hi), own[1]
-        return round(lo), round(hi)
-
-    def drop_before(self, pos: int) -> None:
-        """Forget records whose bytes all lie before absolute position ``pos``."""
-        keep = bisect_right(self.lasts, pos - 1)
-        if keep:
-            del self.starts[:keep], self.lasts[:keep], self.times[:keep], self.floors[:keep]
 
     def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> np.ndarray:
         """:meth:`add` for many records at once (all with bytes); returns the least silence before each."""
@@ -121,20 +142,93 @@ class Timeline:
         silence[np.isnan(prev)] = -np.inf
         if self.untimed:
             silence[:] = -np.inf
-        self.starts.extend(starts.tolist())
-        self.lasts.extend((ends - 1).tolist())
-        self.times.extend(t_ns.tolist())
-        self.floors.extend(floor.tolist())
+        self._room(count)
+        k = self._n
+        self._ints[k:k + count, 0] = starts
+        self._ints[k:k + count, 1] = ends - 1
+        self._ints[k:k + count, 2] = t_ns
+        self._floors[k:k + count] = floor
+        self._n = k + count
         self._next_pos = int(ends[-1])
         self._last_t = int(t_ns[-1])
         return silence
 
+    def drop_before(self, pos: int) -> None:
+        """Forget records whose bytes all lie before absolute position ``pos``."""
+        self._lo += int(np.searchsorted(self.lasts, pos - 1, "right"))
+
+    def held_up(self, pos: np.ndarray) -> np.ndarray:
+        """For records starting at absolute ``pos``: where the next record starts if this read was held up.
+
+        A read held up in the host (its delay far over the usual) shows a silence before it
+        that was never on the wire. It gives itself away when the next read comes back less
+        than a latency period after it with a timer packet: that packet left the adapter at
+        least ``L`` after this read's packet (the timer restarts after every packet), so this
+        read waited at least ``L`` minus the interval between the two returns — over
+        ``min(d, L/2)`` here, far over the usual delay (TIMING.md). Returns the next
+        record's start for such reads, ``-1`` for the others (and where no next record is
+        held yet).
+        """
+        pos = np.asarray(pos, dtype=np.int64)
+        starts = self.starts
+        k = np.searchsorted(starts, pos)
+        nxt = k + 1
+        has = (k < starts.shape[0]) & (nxt < starts.shape[0])
+        out = np.full(pos.shape[0], -1, dtype=np.int64)
+        if not has.any():
+            return out
+        k, nxt = k[has], nxt[has]
+        lasts, times = self.lasts, self.times
+        limit = self.latency_ns - min(self.host_delay_ns, self.latency_ns / 2)
+        timer = lasts[nxt] - starts[nxt] + 1 < self.packet_bytes
+        quick = (times[nxt] - times[k]) < limit
+        sel = (starts[k] == pos[has]) & timer & quick
+        out[np.flatnonzero(has)[sel]] = starts[nxt][sel]
+        return out
+
+    # -- bounds -----------------------------------------------------------------------------------
+    def end_bounds(self, first: int, last: int) -> tuple[int, int]:
+        """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``."""
+        c = self.char_ns
+        all_starts = self.starts
+        i = max(0, int(np.searchsorted(all_starts, first, "right")) - 1)
+        j = int(np.searchsorted(all_starts, last, "right"))
+        lo = float("-inf")
+        hi = _INF
+        own = (float("-inf"), _INF)
+        p = self.packet_bytes
+        if j > i:
+            rows = self._ints[self._lo + i:self._lo + j].tolist()
+            floors = self._floors[self._lo + i:self._lo + j].tolist()
+            for (start, end, t), floor in zip(rows, floors):
+                k0 = max(first, start, end - p + 1)
+                if k0 <= last:
+                    lo = max(lo, floor + (last - k0) * c)
+                    own = (floor, float(t))
+                else:
+                    lo = max(lo, floor - (k0 - last) * c)
+                    own = (floor - (k0 - last) * c, float(t))
+                hi = min(hi, t + (last - end) * c)
+        if self.untimed or lo == float("-inf"):
+            lo = hi
+        elif lo > hi:
+            # the carried bounds crossed: widen to the byte's own record, never to a point
+            self.contradictions += 1
+            lo, hi = min(own[0], hi), own[1]
+        return round(lo), round(hi)
+
     def end_bounds_many(self, first: np.ndarray, last: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`end_bounds` for many frames (absolute positions, in stream order)."""
-        starts = np.asarray(self.starts, dtype=np.int64)
-        lasts = np.asarray(self.lasts, dtype=np.int64)
-        times = np.asarray(self.times, dtype=np.float64)
-        floors = np.asarray(self.floors, dtype=np.float64)
+        """:meth:`end_bounds` for many frames (absolute positions, in stream order).
+
+        Only the records the frames span are read, so the cost follows the frames.
+        """
+        all_starts = self.starts
+        a = max(0, int(np.searchsorted(all_starts, first[0], "right")) - 1)
+        b = int(np.searchsorted(all_starts, last[-1], "right"))
+        starts = all_starts[a:b]
+        lasts = self.lasts[a:b]
+        times = self.times[a:b].astype(np.float64)
+        floors = self.floors[a:b]
         c = self.char_ns
         ra = np.maximum(np.searchsorted(starts, first, "right") - 1, 0)
         rb = np.searchsorted(starts, last, "right") - 1

@@ -229,7 +229,13 @@ def crc_of_rows(rows: np.ndarray) -> np.ndarray:
 
 
 def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarray) -> int:
-    """How many leading candidates are sure frames: CRC good, and no longer split equally possible.
+    """How many leading candidates are sure frames (see :func:`unsure`)."""
+    first = np.flatnonzero(unsure(arr, starts, lens, alts))
+    return int(first[0]) if first.size else int(starts.shape[0])
+
+
+def unsure(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarray) -> np.ndarray:
+    """Which candidates are not sure frames: CRC bad, or another split equally possible.
 
     A frame followed by 0x00 stays CRC-valid when that byte is added (the CRC of 0x00 from a
     zero state is zero); where the other direction's rule allows exactly one byte more, or one
@@ -238,9 +244,9 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
     framer, which weighs the context.
     """
     n = starts.shape[0]
-    if n == 0:
-        return 0
     bad = np.zeros(n, dtype=bool)
+    if n == 0:
+        return bad
     limit = arr.shape[0]
     for length in np.unique(lens).tolist():
         sel = np.flatnonzero(lens == length)
@@ -257,8 +263,7 @@ def verify(arr: np.ndarray, starts: np.ndarray, lens: np.ndarray, alts: np.ndarr
     shorter = (alts == lens - 1)
     if shorter.any():
         bad |= shorter & (arr[ends - 1] == 0)
-    first = np.flatnonzero(bad)
-    return int(first[0]) if first.size else n
+    return bad
 
 
 def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: bool, one_way: int = 0
@@ -285,6 +290,61 @@ def bulk_spans(buf: bytes, arr: np.ndarray, p: int, end: int, expect_response: b
     shapes = np.where(is_req, REQUEST, RESPONSE)
     sh = np.where(a[:n_ok] == n[:n_ok], EITHER, shapes[:n_ok]).astype(np.int8)
     return s[:n_ok], n[:n_ok], sh, expect_response
+
+
+class BulkWalk:
+    """:func:`bulk_spans` over one buffer, called again and again as the sequential framer hands back.
+
+    The walk from a position depends only on the bytes from there and the direction it
+    expects, so one walk to the end of the buffer serves every later call that starts on a
+    frame of it with the same expectation: the call costs a look-up and a slice, not a new
+    walk, length table and CRC pass over the rest of the buffer. A call anywhere else walks
+    afresh from there (and keeps that walk for the calls after it).
+    """
+
+    def __init__(self, buf: bytes, arr: np.ndarray, end: int, one_way: int = 0) -> None:
+        self.buf, self.arr, self.end, self.one_way = buf, arr, end, one_way
+        self._walk: tuple | None = None  # (first expectation, starts, request flags, lengths, alternatives, unsure)
+
+    def _new_walk(self, p: int, expect_response: bool) -> tuple:
+        buf, arr, end = self.buf, self.arr, self.end
+        if self.one_way:
+            starts, flags, stop = walk_one_way(buf, p, end, self.one_way == REQUEST)
+            s, is_req = np.asarray(starts, dtype=np.int64), np.asarray(flags, dtype=bool)
+        else:
+            s, is_req, stop = walk_fast(buf, arr, p, end, expect_response)
+        n = np.diff(np.append(s, stop))
+        if s.size:
+            req_len, rsp_len = vector_lengths(arr, s)
+            a = np.where(is_req, rsp_len, req_len)
+        else:
+            a = np.zeros(0, dtype=np.int64)
+        return expect_response, s, is_req, n, a, np.flatnonzero(unsure(arr, s, n, a))
+
+    def spans(self, p: int, expect_response: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+        """What ``bulk_spans(buf, arr, p, end, expect_response, one_way)`` returns."""
+        w = self._walk
+        m = -1
+        if w is not None and w[1].size:
+            k = int(np.searchsorted(w[1], p))
+            if k < w[1].size and int(w[1][k]) == p:
+                before = w[0] if k == 0 else bool(w[2][k - 1])
+                if self.one_way or before == expect_response:
+                    m = k
+        if m < 0:
+            w = self._walk = self._new_walk(p, expect_response)
+            m = 0
+        _e0, s, is_req, n, a, bad = w
+        if m >= s.size:
+            return np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int8), expect_response
+        b = int(np.searchsorted(bad, m))
+        stop = int(bad[b]) if b < bad.size else int(s.size)
+        n_ok = stop - m
+        if n_ok:
+            expect_response = bool(is_req[stop - 1])
+        s, is_req, n, a = s[m:stop], is_req[m:stop], n[m:stop], a[m:stop]
+        sh = np.where(a == n, EITHER, np.where(is_req, REQUEST, RESPONSE)).astype(np.int8)
+        return s, n, sh, expect_response
 
 
 class SpanTable(Sequence[Span]):

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import heapq
 from bisect import bisect_left, bisect_right
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -290,14 +290,30 @@ class _Port:
         self._scan_bulk(pieces)
 
     def _scan_bulk(self, pieces: list) -> None:
+        end = self._scan_end()
+        self._scan_bulk_to(end, pieces)
+        if end < len(self.buf) and self.scanner.pos >= end:
+            self._scan_bulk_to(len(self.buf), pieces)  # as in _scan: nothing runs across that silence
+        self._trim()
+
+    def _scan_bulk_to(self, end: int, pieces: list) -> None:
         sc = self.scanner
         bulk = self.proto.bulk
-        buf = bytes(self.buf)
+        buf = bytes(self.buf[:end]) if end < len(self.buf) else bytes(self.buf)
         arr = np.frombuffer(buf, dtype=np.uint8)
-        end = len(buf)
         # The bulk path never runs a frame across a certain silence or a silence over t1.5:
         # those frames need the sequential framer's judgement and events.
         stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
+        # A silence stop the read after it explains as a held-up read (Timeline.held_up) does not
+        # stop a frame (that read is always known: _scan_end); a scanner boundary always does.
+        forgiven = np.full(stops.shape[0], -1, dtype=np.int64)
+        if stops.size and not self.untimed:
+            soft = ~np.isin(stops, np.asarray(sc.boundaries, dtype=np.int64))
+            if soft.any():
+                forgiven[soft] = self.timeline.held_up(stops[soft] + self.base) - self.base
+                forgiven[soft & (forgiven < 0)] = -1
+        make_walker = getattr(bulk, "walker", None)
+        walker = make_walker(buf, arr, end, self.one_way) if make_walker is not None else None
         while True:
             progressed = False
             run = 2  # frames the sequential framer takes before the bulk walk tries again
@@ -305,8 +321,11 @@ class _Port:
             if held:
                 pieces.append(held)
             if sc.junk_start is None:
-                starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end, self.expect_response,
-                                                                      self.one_way)
+                if walker is not None:
+                    starts, lens, shapes, expect, addrs, fcs = walker.spans(sc.pos, self.expect_response)
+                else:
+                    starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end,
+                                                                          self.expect_response, self.one_way)
                 if starts.size and self._held:
                     # stop before the first frame that comes after a held event's bytes
                     keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
@@ -315,10 +334,15 @@ class _Port:
                                                             fcs[:keep])
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size and stops.size:
-                    j = np.searchsorted(stops, starts, "right")
-                    inside = (j < stops.size) & (stops[np.minimum(j, stops.size - 1)] < starts + lens)
+                    # the first frame with a stop inside it that its own reads do not explain away
+                    f = np.searchsorted(starts, stops, "right") - 1
+                    valid = f >= 0
+                    fv = np.maximum(f, 0)
+                    ends_f = starts[fv] + lens[fv]
+                    inside = valid & (stops > starts[fv]) & (stops < ends_f)
+                    inside &= forgiven < 0
                     if inside.any():
-                        keep = int(np.argmax(inside))
+                        keep = int(f[inside].min())
                         starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
                                                             fcs[:keep])
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
@@ -355,7 +379,6 @@ class _Port:
                 progressed = True
             if not progressed:
                 break
-        self._trim()
 
     def bulk_items(self, run: BulkRun) -> list:
         """A bulk run as queue items, for pairing in time order with other ports."""
@@ -366,9 +389,28 @@ class _Port:
                 for k, raw, a, b, sh, n in zip(keys, run.raws, lo.tolist(), hi.tolist(), run.shapes.tolist(),
                                                run.lens.tolist())]
 
+    def _scan_end(self) -> int:
+        """Where the framer stops first: the whole buffer, or the start of a last record with a
+        silence over t1.5 before it.
+
+        Whether that silence was on the wire or only a read the host held up, the next read
+        tells (Timeline.held_up); so a frame running across it is settled only once that read
+        is known, however the records are cut into calls. When the framer gets to that start
+        with nothing open, no frame runs across it and the rest is framed at once.
+        """
+        n = len(self.buf)
+        if not self.silence_at or not self.cuts or self.untimed:
+            return n
+        last = self.timeline.last_start()
+        return last - self.base if self.silence_at[-1] == last else n
+
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
-        self.scanner.scan(self.buf, len(self.buf), final, spans)
+        end = len(self.buf) if final else self._scan_end()
+        self.scanner.scan(self.buf, end, final, spans)
+        if end < len(self.buf) and self.scanner.pos >= end:
+            # nothing runs across the silence before the last record: no need to wait for the next
+            self.scanner.scan(self.buf, len(self.buf), final, spans)
         for span in spans:
             out.extend(self._span_items(span))
         out.extend(self._held_before(None if final else self.base + self.scanner.settled, settled=True))
@@ -402,7 +444,13 @@ class _Port:
                 text = self.proto.describe_damage(raw, span.at_boundary)
             return t, DamageMsg(Damage(text.kind, self.port, t, raw, text.station, text.detail))
         self._last_end = (lo, hi)
-        gaps = self.silence_ns[bisect_right(self.silence_at, a):bisect_left(self.silence_at, b)]
+        first, stop = bisect_right(self.silence_at, a), bisect_left(self.silence_at, b)
+        gaps = self.silence_ns[first:stop]
+        if gaps and not self.untimed:
+            # a silence shown only by a read the host held up is no silence on the wire, when
+            # the read after it gives the hold-up away (Timeline.held_up; known here: _scan_end)
+            nxt = self.timeline.held_up(np.asarray(self.silence_at[first:stop]))
+            gaps = [g for g, n in zip(gaps, nxt.tolist()) if n < 0]
         # Sort key among ports: a master's frame by its earliest start, a station's by its latest,
         # so an answer never sorts before the request it answers, however coarse the timestamps.
         base = lo if self.role == "master" else hi if self.role == "slaves" else (lo + hi) // 2
@@ -817,11 +865,39 @@ class Decoder:
         }))
 
 
+#: Reader batches are joined up to about this many records (or JOIN_BYTES bytes) before decoding:
+#: a recording flushes a block a second, and the decoder's cost per call outweighs a second's records.
+JOIN_RECORDS = 1 << 14
+JOIN_BYTES = 1 << 20
+
+
+def joined_batches(batches: Iterable[RecordBatch], records: int = JOIN_RECORDS,
+                   nbytes: int = JOIN_BYTES) -> Iterator[RecordBatch]:
+    """Consecutive batches joined into larger ones (same records, same order).
+
+    The decoder's tables do not depend on where its input is cut (tests/test_decode_scenarios_equal.py),
+    so a file read block by block decodes the same, in fewer and larger steps.
+    """
+    pending: list[RecordBatch] = []
+    count = size = 0
+    for batch in batches:
+        if not len(batch):
+            continue
+        pending.append(batch)
+        count += len(batch)
+        size += int(batch.payload.shape[0])
+        if count >= records or size >= nbytes:
+            yield RecordBatch.concat(pending)
+            pending, count, size = [], 0, 0
+    if pending:
+        yield RecordBatch.concat(pending)
+
+
 def decode_source(source, config: DecoderConfig | None = None) -> Iterator[DecodeOutput]:
-    """Decode every batch of a capture source, then the flush; one DecodeOutput per step."""
+    """Decode every batch of a capture source (joined into larger steps), then the flush."""
     cfg = config or DecoderConfig.from_header(source.header)
     dec = Decoder(cfg)
-    for batch in source.iter_batches():
+    for batch in joined_batches(source.iter_batches()):
         yield dec.feed_batch(batch)
     yield dec.flush()
 

@@ -440,17 +440,19 @@ class Pairing:
             "response_ms": mid, "response_ms_low": low, "response_ms_high": high,
             "request_raw": req_raws, "response_raw": rsp_raws,
         }
-        events: list[Damage] = []
+        found: list[tuple[int, Damage]] = []
         for k in np.flatnonzero(conflict).tolist():
-            events.append(Damage("timing_conflict", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+            found.append((k, Damage("timing_conflict", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
                                  f"station {rsp_raws[k][0]}'s answer would have begun {before[k]:.3f} "
                                  f"ms or more before its request ended: the character format or the adapter's "
                                  f"latency is not what the capture states (response time widened to "
-                                 f"[0, {high[k]:.3f}] ms)"))
+                                 f"[0, {high[k]:.3f}] ms)")))
         short = np.flatnonzero(~conflict & (high * 1e6 < self.t35_ns))
-        events += [Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
-                          f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
-                          f"ended (at most {high[k]:.3f} ms)") for k in short.tolist()]
+        found += [(k, Damage("turnaround_short", port, int(t_start[r[k]]), rsp_raws[k], rsp_raws[k][0],
+                             f"station {rsp_raws[k][0]} began its answer less than t3.5 after the request "
+                             f"ended (at most {high[k]:.3f} ms)")) for k in short.tolist()]
+        # in answer order, as on_frame gives them frame by frame (a pair has at most one of the two)
+        events = [d for _k, d in sorted(found, key=lambda x: x[0])]
         last = int(q[-1])
         req_port = port if rr.request_port < 0 else rr.request_port
         self.absorb_regular(Frame(req_port, raws[last], int(lo[last]), int(hi[last]), char_ns, "request"),

@@ -7,8 +7,6 @@ batch costs a handful of array concatenations, not one DataFrame row per frame.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 import pandas as pd
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
@@ -36,6 +34,19 @@ _TXN_TYPES = {"t_request_end_ns": np.int64, "t_response_start_ns": np.int64, "st
               "function": np.uint8, "outcome": np.int8, "exception_code": np.uint8, "retry": bool,
               "response_ms": np.float64, "response_ms_low": np.float64, "response_ms_high": np.float64}
 DIRECTION_CODE = {d: i for i, d in enumerate(DIRECTIONS)}
+EVENT_CODE = {k: i for i, k in enumerate(EVENT_KINDS)}
+# Built once: pandas checks a category list each time a dtype is made from one.
+_DIRECTION_DTYPE = pd.CategoricalDtype(list(DIRECTIONS))
+_OUTCOME_DTYPE = pd.CategoricalDtype(list(OUTCOMES))
+_EVENT_DTYPE = pd.CategoricalDtype(list(EVENT_KINDS))
+_PROTOCOL_DTYPES: dict[str, pd.CategoricalDtype] = {}
+
+
+def _protocol_dtype(name: str) -> pd.CategoricalDtype:
+    dtype = _PROTOCOL_DTYPES.get(name)
+    if dtype is None:
+        dtype = _PROTOCOL_DTYPES[name] = pd.CategoricalDtype([name])
+    return dtype
 OUTCOME_CODE = {o: i for i, o in enumerate(OUTCOMES)}
 
 
@@ -71,7 +82,7 @@ def _objects(chunks: list[dict], name: str) -> pd.Series:
 
 def _neutral(data: dict, n: int, proto, hook_name: str) -> list[str]:
     """Add the protocol-neutral columns to ``data`` (built in one DataFrame with the rest); their names."""
-    data["protocol"] = pd.Categorical.from_codes(np.zeros(n, np.int8), dtype=pd.CategoricalDtype([proto.name]),
+    data["protocol"] = pd.Categorical.from_codes(np.zeros(n, np.int8), dtype=_protocol_dtype(proto.name),
                                                  validate=False)
     hook = getattr(proto, hook_name, None) if hook_name else None
     if hook is not None:
@@ -81,7 +92,7 @@ def _neutral(data: dict, n: int, proto, hook_name: str) -> list[str]:
 
 def frames_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
     data = {name: _concat(chunks, name, _FRAME_TYPES[name]) for name in FRAME_COLUMNS if name != "raw"}
-    data["direction"] = pd.Categorical.from_codes(data["direction"], categories=list(DIRECTIONS))
+    data["direction"] = pd.Categorical.from_codes(data["direction"], dtype=_DIRECTION_DTYPE)
     data["raw"] = _objects(chunks, "raw")
     extra = [] if proto is None else _neutral(data, len(data["raw"]), proto, "frame_fields_columns")
     return pd.DataFrame(data, columns=list(FRAME_COLUMNS) + extra)
@@ -90,7 +101,7 @@ def frames_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
 def transactions_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
     data = {name: _concat(chunks, name, _TXN_TYPES[name]) for name in TRANSACTION_COLUMNS
             if name not in ("request_raw", "response_raw")}
-    data["outcome"] = pd.Categorical.from_codes(data["outcome"], categories=list(OUTCOMES))
+    data["outcome"] = pd.Categorical.from_codes(data["outcome"], dtype=_OUTCOME_DTYPE)
     data["request_raw"] = _objects(chunks, "request_raw")
     data["response_raw"] = _objects(chunks, "response_raw")
     extra = [] if proto is None else _neutral(data, len(data["request_raw"]), proto, "transaction_fields_columns")
@@ -100,7 +111,8 @@ def transactions_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
 def events_frame(events: list[Damage], proto=None) -> pd.DataFrame:
     data = {
         "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
-        "kind": pd.Categorical([e.kind for e in events], categories=list(EVENT_KINDS)),
+        "kind": pd.Categorical.from_codes(np.array([EVENT_CODE.get(e.kind, -1) for e in events], dtype=np.int8),
+                                          dtype=_EVENT_DTYPE),
         "station": np.array([e.station for e in events], dtype=np.int16),
         "port": np.array([e.port for e in events], dtype=np.uint8),
         "raw": pd.Series([e.raw for e in events], dtype=object),
@@ -125,13 +137,29 @@ def events_table(events: list[Damage]) -> pd.DataFrame:
     return events_frame(events)
 
 
-@dataclass
 class DecodeOutput:
-    """The three tables one call produced (any may be empty)."""
+    """The three tables one call produced (any may be empty).
 
-    frames: pd.DataFrame
-    transactions: pd.DataFrame
-    events: pd.DataFrame
+    The decoder hands over columns; each table is built the first time it is read, so a
+    reader batch costs no DataFrame until someone looks, and :meth:`concat` joins many
+    outputs' columns into one table each (one DataFrame per analysis block, not three per
+    batch). ``DecodeOutput(frames, transactions, events)`` still wraps ready DataFrames.
+    """
+
+    __slots__ = ("_tables", "_parts")
+
+    def __init__(self, frames: pd.DataFrame | None = None, transactions: pd.DataFrame | None = None,
+                 events: pd.DataFrame | None = None) -> None:
+        self._tables = [frames, transactions, events]
+        self._parts: tuple | None = None
+
+    @classmethod
+    def from_columns(cls, frame_chunks: list[dict], txn_chunks: list[dict], events: list[Damage],
+                     proto=None) -> DecodeOutput:
+        """An output over column chunks and event objects; its tables are built when first read."""
+        out = cls()
+        out._parts = (frame_chunks, txn_chunks, events, proto)
+        return out
 
     @classmethod
     def from_objects(cls, items: list, proto=None) -> DecodeOutput:
@@ -139,6 +167,103 @@ class DecodeOutput:
         col = Collector()
         col.add_objects(items)
         return col.output(proto)
+
+    @classmethod
+    def from_frames(cls, frames: pd.DataFrame, transactions: pd.DataFrame, events: pd.DataFrame) -> DecodeOutput:
+        """An output of ready tables (the inverse of :meth:`to_frames`)."""
+        return cls(frames, transactions, events)
+
+    def to_frames(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+        """The three tables as DataFrames: frames, transactions, events."""
+        return self.frames, self.transactions, self.events
+
+    def _table(self, k: int) -> pd.DataFrame:
+        table = self._tables[k]
+        if table is None:
+            if self._parts is None:
+                raise ValueError("a DecodeOutput needs its three tables or its columns")
+            frame_chunks, txn_chunks, events, proto = self._parts
+            table = (frames_frame(frame_chunks, proto) if k == 0 else transactions_frame(txn_chunks, proto) if k == 1
+                     else events_frame(events, proto))
+            self._tables[k] = table
+            if all(t is not None for t in self._tables):
+                self._parts = None
+        return table
+
+    @property
+    def frames(self) -> pd.DataFrame:
+        return self._table(0)
+
+    @frames.setter
+    def frames(self, value: pd.DataFrame) -> None:
+        self._tables[0] = value
+
+    @property
+    def transactions(self) -> pd.DataFrame:
+        return self._table(1)
+
+    @transactions.setter
+    def transactions(self, value: pd.DataFrame) -> None:
+        self._tables[1] = value
+
+    @property
+    def events(self) -> pd.DataFrame:
+        return self._table(2)
+
+    @events.setter
+    def events(self, value: pd.DataFrame) -> None:
+        self._tables[2] = value
+
+    def counts(self) -> tuple[int, int, int]:
+        """Rows of the frames, transactions and events tables, without building them."""
+        parts = self._parts
+        got = []
+        for k in range(3):
+            table = self._tables[k]
+            if table is not None:
+                got.append(len(table))
+            elif k == 2:
+                got.append(len(parts[2]))
+            else:
+                got.append(sum(_rows(c) for c in parts[k]))
+        return got[0], got[1], got[2]
+
+    @property
+    def rows(self) -> int:
+        """Rows of all three tables together."""
+        return sum(self.counts())
+
+    @classmethod
+    def concat(cls, outputs: list[DecodeOutput], proto=None) -> DecodeOutput:
+        """Many outputs as one, in order: their columns joined, each table built once.
+
+        The tables equal ``pd.concat`` of the outputs' own tables (``ignore_index``).
+        """
+        if outputs and all(o._parts is not None and not any(t is not None for t in o._tables) for o in outputs):
+            protos = {id(o._parts[3]) for o in outputs}
+            if len(protos) == 1:
+                frames: list = []
+                txns: list = []
+                events: list = []
+                for o in outputs:
+                    frames += o._parts[0]
+                    txns += o._parts[1]
+                    events += o._parts[2]
+                return cls.from_columns(frames, txns, events, outputs[0]._parts[3])
+        if not outputs:
+            return cls.from_columns([], [], [], proto)
+        return cls(*(pd.concat([getattr(o, t) for o in outputs], ignore_index=True)
+                     for t in ("frames", "transactions", "events")))
+
+    def __repr__(self) -> str:
+        f, t, e = self.counts()
+        return f"DecodeOutput(frames={f} rows, transactions={t} rows, events={e} rows)"
+
+
+def _rows(chunk: dict) -> int:
+    for v in chunk.values():
+        return len(v)
+    return 0
 
 
 class Collector:
@@ -182,8 +307,7 @@ class Collector:
         """The tables; with ``proto`` (decode/protocols/), the protocol-neutral columns too (schema version 2)."""
         self._close_frames()
         self._close_txns()
-        return DecodeOutput(frames_frame(self.frame_chunks, proto), transactions_frame(self.txn_chunks, proto),
-                            events_frame(self.events, proto))
+        return DecodeOutput.from_columns(self.frame_chunks, self.txn_chunks, self.events, proto)
 
 
 def add_neutral_columns(out: DecodeOutput, proto) -> DecodeOutput:

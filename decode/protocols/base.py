@@ -50,7 +50,7 @@ class FieldProtocol(Protocol):
     name: str            # registry name, e.g. "modbus-rtu"
     label: str           # for people, e.g. "Modbus RTU"
     marks_bytes: bool    # the scanner takes UART marks and breaks (add_mark, add_break, after_frame)
-    bulk: Any            # a bulk path (``spans``, ``after_run``) or None
+    bulk: Any            # a bulk path (``spans``, ``after_run``, optionally ``walker``) or None
     station_label: str   # what a station is called ("station", "slave")
 
     def timing(self, fmt: SerialFormat) -> LineTiming: ...

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from buswitness.decode.bulk import bulk_spans
+from buswitness.decode.bulk import BulkWalk, bulk_spans
 from buswitness.decode.framer import RegionScanner, explained_fraction, split_frames
 from buswitness.decode.functions import function_name
 from buswitness.decode.lengths import EITHER, MIN_FRAME, PUBLIC_CODES, candidate_lengths
@@ -61,6 +61,11 @@ class RtuBulk:
             arr[starts + 1] if starts.size else arr[:0]
 
     @staticmethod
+    def walker(buf: bytes, arr: np.ndarray, end: int, one_way: int):
+        """One buffer's bulk walk, kept for the calls after the first (see BulkWalk)."""
+        return _RtuWalk(buf, arr, end, one_way)
+
+    @staticmethod
     def after_run(sc: RegionScanner, raws: list, shapes: np.ndarray, addrs: np.ndarray) -> None:
         """The scanner picks up where the walk stopped, knowing what the walk knew."""
         sc.anchored = True
@@ -72,6 +77,15 @@ class RtuBulk:
         for i in range(k, len(raws)):
             sc.note_frame(raws[i], int(shapes[i]))
         sc.known_addresses.update(np.unique(addrs).tolist())
+
+
+class _RtuWalk(BulkWalk):
+    def spans(self, pos: int, expect_response: bool):  # type: ignore[override]
+        """What :meth:`RtuBulk.spans` returns, from the kept walk where it can."""
+        starts, lens, shapes, expect = super().spans(pos, expect_response)
+        arr = self.arr
+        return starts, lens, shapes, expect, arr[starts] if starts.size else arr[:0], \
+            arr[starts + 1] if starts.size else arr[:0]
 
 
 _SERVICE = pd.CategoricalDtype([function_name(c) for c in range(256)])
