@@ -341,6 +341,13 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     delivery = assess_delivery(source, protocol=options.protocol)
     header, decoding = delivery_headers(source.header, delivery)
     cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)
+    result = _decode_in_segments(source, options, header, cfg, paths, sinks, delivery)
+    if result is not None:
+        if progress is not None:
+            progress(total or 0, total)
+        if cache is not None:
+            cache.keep(result)
+        return _finish(result, cache)
     done = 0
     crossed: list = []
 
@@ -358,6 +365,24 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     if cache is not None:
         cache.keep(result)
     return _finish(result, cache)
+
+
+def _decode_in_segments(source, options: AnalysisOptions, header: CaptureHeader, cfg, paths: list,
+                        sinks: Sequence, delivery: list) -> AnalysisResult | None:
+    """The result from segments decoded on several cores (analysis/segments.py); None: decode in one pass."""
+    from buswitness.analysis import segments
+    jobs = segments.jobs_for(options, source, _protocol(header, options),
+                             needs_tables(_option_sinks(options) + list(sinks)))
+    if jobs <= 1:
+        return None
+    done = segments.decode_parallel(source, header, cfg, jobs, options.notice or (lambda text: None))
+    if done is None:
+        return None
+    result = _result_of_figures(header, done.figures, options, paths, done.report, None, sinks)
+    result.delivery = [d.to_dict() for d in delivery]
+    for entry in result.delivery:
+        entry["timing_contradictions"] = done.contradictions.get(entry["port"], 0)
+    return result
 
 
 def _finish(result: AnalysisResult, cache) -> AnalysisResult:
@@ -423,20 +448,26 @@ def _from_cache(source, options: AnalysisOptions, cache: _Cache, paths: list, si
     ports = [replace(p, latency_ms=stated[p.id][0], latency_source=stated[p.id][1]) if p.id in stated else p
              for p in source.header.ports]
     header = replace(source.header, ports=ports)
+    damage = decodecache.damage_report(hit.damage)
+    if damage is not None and getattr(source, "report", None) is not None:
+        source.report = damage
+    result = _result_of_figures(header, hit.figures, options, paths, damage, hit.protocol_figures or None, sinks)
+    result.delivery = hit.delivery
+    return result
+
+
+def _result_of_figures(header: CaptureHeader, figures, options: AnalysisOptions, paths: list,
+                       damage: ReadReport | None, protocol_figures: dict | None, sinks: Sequence) -> AnalysisResult:
+    """The result of figures made elsewhere (the decoded cache, segments decoded at once), sinks opened."""
     proto = _protocol(header, options)
     sinks = _option_sinks(options) + list(sinks)
-    figures = hit.figures
     context = SinkContext(header=header, t0_ns=figures.t0_ns, utc0_ns=figures.utc0_ns,
                           paths=tuple(str(p) for p in paths))
     try:
         for sink in sinks:
             sink.open(context)
-        damage = decodecache.damage_report(hit.damage)
-        if damage is not None and getattr(source, "report", None) is not None:
-            source.report = damage
-        result = judged_result(header, figures, options, paths, damage, proto, hit.protocol_figures or None)
+        result = judged_result(header, figures, options, paths, damage, proto, protocol_figures)
         result.sinks = sinks
-        result.delivery = hit.delivery
     except BaseException:
         abort(sinks)
         raise
