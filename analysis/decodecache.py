@@ -269,7 +269,8 @@ def load(path: Path, key: str, notice: Notice) -> Cached | None:
     if not path.exists():
         return None
     try:
-        table = pq.read_table(path)
+        with pq.ParquetFile(path) as pf:
+            table = pf.read()
         info = table.schema.metadata or {}
         if info.get(b"buswitness.layout") != str(LAYOUT).encode() or info.get(b"buswitness.key") != key.encode():
             return None  # another capture content, other settings or another version: stale, not damaged

@@ -72,6 +72,91 @@ def output_digest(out, contradictions: tuple = ()) -> str:
     return h.hexdigest()
 
 
+def _walk(x, rel: int, seen: set) -> object:
+    """A plain, comparable form of decoder state; ``rel`` is subtracted from stream positions."""
+    if x is None or isinstance(x, (bool, int, float, str, bytes)):
+        return x
+    if isinstance(x, (bytearray, memoryview)):
+        return bytes(x)
+    if isinstance(x, np.ndarray):
+        return (str(x.dtype), x.shape, x.tobytes())
+    if isinstance(x, np.generic):
+        return x.item()
+    if isinstance(x, (list, tuple)) or type(x).__name__ == "deque":
+        return (type(x).__name__, tuple(_walk(v, rel, seen) for v in x))
+    if isinstance(x, (set, frozenset)):
+        return ("set", tuple(sorted(repr(_walk(v, rel, seen)) for v in x)))
+    if isinstance(x, dict):
+        return ("dict", tuple(sorted((repr(k), _walk(v, rel, seen)) for k, v in x.items())))
+    if id(x) in seen:
+        return ("seen", type(x).__name__)
+    seen.add(id(x))
+    attrs = getattr(x, "__dict__", None)
+    if attrs is None:
+        slots = [n for c in type(x).__mro__ for n in getattr(c, "__slots__", ())]
+        attrs = {n: getattr(x, n) for n in slots if hasattr(x, n)}
+    return (type(x).__qualname__, tuple(sorted((k, _walk(v, rel, seen)) for k, v in attrs.items())))
+
+
+def _station_state(st) -> object:
+    """A station's record as pairing decides by it (decode/pairing.py): counts only as far as a rule
+    reads them (at least STATION_MIN_ANSWERS, none; at least DEAD_AFTER). Its slowest answer (a
+    maximum over the whole capture, which a decoder started later cannot know) is compared apart
+    (:func:`slowest_answers`)."""
+    from buswitness.decode import pairing as pr
+    rest = {k: v for k, v in vars(st).items() if k not in ("answers", "unanswered", "slowest_ns")}
+    return (min(st.answers, pr.STATION_MIN_ANSWERS), min(st.unanswered, pr.DEAD_AFTER), _walk(rest, 0, set()))
+
+
+def slowest_answers(decoder) -> dict[int, float]:
+    """Each station's slowest answer as pairing reads it (``Pairing._slowest_ns`` floors it)."""
+    from buswitness.decode import pairing as pr
+    floor = pr.ECHO_FLOOR_NS / pr.ECHO_SLACK
+    return {a: max(st.slowest_ns, floor) for a, st in decoder.pairing.stations.items()}
+
+
+def _watch_slowest(decoder, consulted: set, step: list) -> None:
+    """Note every step in which pairing reads a slowest answer (all its reads go through ``_slowest_ns``)."""
+    pairing = decoder.pairing
+    read = pairing._slowest_ns
+
+    def watched(st):
+        consulted.add(step[0])
+        return read(st)
+
+    pairing._slowest_ns = watched
+
+
+def decoder_state(decoder) -> str | None:
+    """A digest of everything in ``decoder`` that decides its later output, stream positions taken
+    relative to each port's unsettled bytes and counters as far as a rule reads them; None where
+    the decoder is not the one this knows (a seam is then never joined)."""
+    from buswitness.decode.pairing import Pairing
+    pairing = decoder.pairing
+    if type(pairing) is not Pairing:
+        return None
+    h = hashlib.blake2b(digest_size=20)
+    p_state = {k: v for k, v in vars(pairing).items() if k not in ("stations", "answers", "_slowest_ns")}
+    h.update(repr(_walk(p_state, 0, set())).encode())
+    for addr in sorted(pairing.stations):
+        h.update(repr((addr, _station_state(pairing.stations[addr]))).encode())
+    # the queue between framing and pairing: keys and items, without the running sequence numbers
+    h.update(repr([(key, _walk(item, 0, set())) for key, _seq, item in sorted(decoder._queue)]).encode())
+    for port_id in sorted(decoder.ports):
+        port = decoder.ports[port_id]
+        base = port.base
+        tl = port.timeline
+        timeline = {k: v for k, v in vars(tl).items() if k not in ("starts", "lasts", "_next_pos", "contradictions")}
+        marks = {k: [v[0], v[1], bytes(v[2]), v[3] - base] for k, v in port._marks.items()}
+        held = [(pos - base, t, _walk(msg, 0, set())) for pos, t, msg in port._held]
+        rest = {k: v for k, v in vars(port).items()
+                if k not in ("base", "timeline", "silence_at", "_marks", "_held", "proto", "timing")}
+        h.update(repr((port_id, _walk(rest, 0, set()), [x - base for x in tl.starts], [x - base for x in tl.lasts],
+                       tl._next_pos - base, _walk(timeline, 0, set()), [x - base for x in port.silence_at],
+                       marks, held)).encode())
+    return h.hexdigest()
+
+
 def steps(reader) -> Iterator[tuple[int, int, RecordBatch]]:
     """(step index, place in the file before it, records) over the whole capture, the same in every process."""
     i = pos = 0
@@ -117,6 +202,13 @@ class SegmentResult:
     contradictions: dict = field(default_factory=dict)
     report: object = None
     tables: list | None = None                  #: the owned decoder outputs themselves (keep_tables)
+    head_state: str | None = None               #: decoder state where this segment's own rows begin
+    tail_state: str | None = None               #: decoder state where the next segment's own rows begin
+    head_slowest: dict = field(default_factory=dict)  #: slowest answers where its own rows begin
+    tail_slowest: dict = field(default_factory=dict)  #: the same where the next segment's own rows begin
+    rises: list = field(default_factory=list)   #: (step, {station: slowest answer}) whenever one rose
+    consulted: set = field(default_factory=set)  #: steps in which pairing read a slowest answer
+    handover: int = -1                          #: the last step before this segment's own rows
 
 
 def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool = False) -> SegmentResult:
@@ -131,7 +223,10 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
     decoder = Decoder(cfg)
     last = k == plan.jobs - 1
     out = SegmentResult(k)
-    state = {"cut": None, "next_cut": None, "next_warm": None, "owned": k == 0, "contra": {}}
+    state = {"cut": None}
+    step = [0]
+    if k:
+        _watch_slowest(decoder, out.consulted, step)
 
     def counts() -> dict:
         return {p: port.timeline.contradictions for p, port in decoder.ports.items()}
@@ -151,8 +246,14 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
             if not last and next_cut_step is None and pos >= plan.cut(k + 1):
                 next_cut_step = i
             before = counts()
+            step[0] = i
+            seen_slowest = slowest_answers(decoder) if k else None
             result = decoder.feed_batch(batch)
             after = counts()
+            if k and state["cut"] is not None and i >= state["cut"] + OVER_STEPS:
+                now = slowest_answers(decoder)
+                if now != seen_slowest:
+                    out.rises.append((i, now))
             step_contra = tuple(sorted((p, n - before.get(p, 0)) for p, n in after.items() if n != before.get(p, 0)))
             in_head = k and (state["cut"] is None or i < state["cut"] + OVER_STEPS)
             in_tail = not last and pos >= plan.warm(k + 1)
@@ -162,6 +263,10 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
                     out.head[i] = digest
                 if in_tail:
                     out.tail[i] = digest
+            if k and state["cut"] is not None and i == state["cut"] + OVER_STEPS - 1:
+                out.head_state, out.head_slowest, out.handover = decoder_state(decoder), slowest_answers(decoder), i
+            if next_cut_step is not None and i == next_cut_step + OVER_STEPS - 1:
+                out.tail_state, out.tail_slowest = decoder_state(decoder), slowest_answers(decoder)
             owned = not in_head
             if owned:
                 for p, n in step_contra:
@@ -185,12 +290,41 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
     return out
 
 
+def _slowest_settled(prev: SegmentResult, seg: SegmentResult) -> bool:
+    """True when the slowest answers ``seg``'s decoder did not know never decided anything.
+
+    At the handover the decoder from the start knows each station's slowest answer over the whole
+    capture so far; the later one only since its warm start, so it may know a smaller one. Both
+    become the same at the first answer slower than the true one. Until then, pairing must not
+    have read a slowest answer at all (it reads them in one place, ``Pairing._slowest_ns``).
+    """
+    true = prev.tail_slowest
+    if set(true) != set(seg.head_slowest):
+        return False
+    late = [a for a in true if seg.head_slowest[a] != true[a]]
+    if not late:
+        return True
+    settled = seg.handover
+    for a in late:
+        step = next((i for i, now in seg.rises if now.get(a, 0.0) >= true[a]), None)
+        settled = max(settled, step if step is not None else 1 << 62)  # None: never, to the segment's end
+    return not any(seg.handover < i <= settled for i in seg.consulted)
+
+
 def seams_agree(parts: list[SegmentResult]) -> list[int]:
-    """The seams (k: between segment k-1 and k) whose overlap decodes were not the same."""
+    """The seams (k: between segment k-1 and k) that did not join.
+
+    A seam joins when the two decodes of its overlap gave the same tables for every step from
+    half-way through the warm-up, and at the handover the later decoder is in the state of the
+    earlier one (:func:`decoder_state`): from there on both give the same output for the same
+    input, so the later segment's rows are those of one pass.
+    """
     bad = []
     for prev, seg in zip(parts, parts[1:]):
         needed = [i for i in seg.head if i >= seg.agree_from]
-        if seg.agree_from < 0 or not needed or any(prev.tail.get(i) != seg.head[i] for i in needed):
+        if (seg.agree_from < 0 or not needed or any(prev.tail.get(i) != seg.head[i] for i in needed)
+                or seg.head_state is None or seg.head_state != prev.tail_state
+                or not _slowest_settled(prev, seg)):
             bad.append(seg.k)
     return bad
 

@@ -69,8 +69,8 @@ def test_segments_give_the_tables_of_one_pass_on_every_scenario(tmp_path, small_
     if path.stat().st_size < 8 * segments.WARM_BYTES:
         pytest.skip("too little traffic to cut")
     serial, joined = _joined(path, 3)
-    if joined is None:  # a seam that never agreed: analyze decodes in one pass (checked below)
-        pytest.xfail(f"{scenario}: the overlap decodes did not agree; one pass is used")
+    if joined is None:  # a seam that never joined: analyze decodes in one pass (checked below)
+        pytest.xfail(f"{scenario}: the later decoder did not reach the earlier one's state; one pass is used")
     _assert_same_tables(serial, joined)
 
 
@@ -112,9 +112,11 @@ def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path
 
 
 @pytest.mark.slow
-def test_an_oracle_stack_capture_joins_like_one_pass(tmp_path, small_segments, monkeypatch):
+def test_an_oracle_stack_capture_joins_like_one_pass_or_not_at_all(tmp_path, small_segments, monkeypatch):
     """pymodbus's own client and servers on the emulated line (tests/oraclebus.py), tapped at 1 ms and
-    16 ms and written as a capture file: joined segments give the tables of one pass."""
+    16 ms and written as a capture file. Its stations are all history (a dead one, a slow one, retries),
+    so a decoder started late may stay in another state: then the seam must be refused, and the
+    analysis is that of one pass either way."""
     pytest.importorskip("pymodbus")
     import oraclebus as ob
     run = ob.run_bus(19200, "8E1", ob.default_plan(seed=12, cycles=12), workdir=tmp_path / "bus")
@@ -126,7 +128,10 @@ def test_an_oracle_stack_capture_joins_like_one_pass(tmp_path, small_segments, m
         with CaptureWriter(path, header) as w:
             for t, data in records:
                 w.append(0, t, data)
-        monkeypatch.setattr(segments, "WARM_BYTES", max(2000, path.stat().st_size // 10))
+        monkeypatch.setattr(segments, "WARM_BYTES", max(2000, path.stat().st_size // 4))
         serial, joined = _joined(path, 2)
-        assert joined is not None, "the oracle capture's seam never agreed"
-        _assert_same_tables(serial, joined)
+        if joined is not None:
+            _assert_same_tables(serial, joined)
+        one = analyze(CaptureReader(path), AnalysisOptions(jobs=1))
+        two = analyze(CaptureReader(path), AnalysisOptions(jobs=2))
+        assert _summary(two) == _summary(one)
