@@ -345,6 +345,8 @@ def jobs_for(options, source, proto, sinks_need_tables: bool) -> int:
     wanted = options.jobs if options.jobs is not None else (os.cpu_count() or 1)
     if wanted <= 1 or sinks_need_tables or not isinstance(source, CaptureReader) or hasattr(proto, "new_figures"):
         return 1
+    if not source.header.capture_id:
+        return 1  # Figures.merge joins the parts of one capture by its id: without one, no exact join
     size = sum(os.path.getsize(p) for p in source.paths if os.path.exists(p))
     if size < PARALLEL_MIN_BYTES:
         return 1

@@ -114,7 +114,7 @@ def test_a_seam_whose_decodes_never_agree_falls_back_to_one_pass(tmp_path, small
     assert _summary(result) == _summary(analyze(CaptureReader(path), AnalysisOptions(jobs=1)))
 
 
-def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path):
+def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path, monkeypatch):
     path = tmp_path / "short.bwcap"
     simulate(load_scenario("clean"), duration_s=30.0, seed=1).write(path)
     reader = CaptureReader(path)
@@ -122,6 +122,12 @@ def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path
     proto = get("modbus-rtu")
     assert segments.jobs_for(AnalysisOptions(jobs=4), reader, proto, False) == 1  # too short
     assert segments.jobs_for(AnalysisOptions(jobs=1), reader, proto, False) == 1
+    monkeypatch.setattr(segments, "PARALLEL_MIN_BYTES", 0)
+    monkeypatch.setattr(segments, "WARM_BYTES", 1000)
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, False) == 2
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, True) == 1  # --csv and the like
+    reader.header.capture_id = ""  # segments merge by the capture's id
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, False) == 1
 
 
 @pytest.mark.slow
