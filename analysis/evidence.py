@@ -56,6 +56,14 @@ def file_identity(paths: list) -> list[PartIdentity]:
     return out
 
 
+def _identity(result: AnalysisResult) -> list[PartIdentity]:
+    """The capture parts' identity: the digests this run already read (decoded cache), else read now."""
+    known = {d.path: d for d in result.part_digests}
+    if result.paths and all(str(p) in known for p in result.paths):
+        return [PartIdentity(Path(p).name, str(p), known[str(p)].size, known[str(p)].sha256) for p in result.paths]
+    return file_identity(result.paths)
+
+
 def _histogram_svg(result: AnalysisResult, address: int, width: int = 760, height: int = 220) -> dict:
     """Bars of the response-time histogram on a log axis, with the timeout marked: SVG geometry."""
     edges, counts = result.response_histogram(address)
@@ -183,7 +191,7 @@ def evidence_data(result: AnalysisResult, address: int, identity: list[PartIdent
         "caution": next((f.caution for f in findings if f.caution), ""), "silent": bool(silence),
         "cards": headline_cards(result, s, findings),
         "exceptions": _exceptions_text(result, s), "modbus": result.protocol.startswith("modbus"),
-        "identity": identity if identity is not None else file_identity(result.paths),
+        "identity": identity if identity is not None else _identity(result),
         "header": result.header, "latency": latency, "latency_ms": latency_ms,
         "pitch_notices": [d["notice"] for d in result.delivery if d.get("notice")],
         "late": result.late_answers(address), "hist": _histogram_svg(result, address), "tail": _tail(result, s),

@@ -44,6 +44,11 @@ class AnalysisOptions:
     block_rows: int = BLOCK_ROWS
     port_roles: dict[int, str] | None = None  #: what each port hears; None: as the capture header says
     protocol: str | None = None  #: field protocol (buswitness.protocols); None: as the capture header says
+    #: keep and use the decoded cache next to the capture (analysis/decodecache.py)
+    cache: bool = False
+    #: processes decoding segments of a long capture at once (analysis/segments.py); None: every core
+    jobs: int | None = None
+    notice: Callable[[str], None] | None = None  #: one-line notices (cache skipped, seams decoded serially)
 
 
 def _empty_tables() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -125,7 +130,6 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     ``analyze`` closes them itself. Any failure aborts every sink: nothing half written stays.
     """
     options = options or AnalysisOptions()
-    smap = options.station_map or StationMap()
     char_ns = header.serial.char_time_s * 1e9
     proto = _protocol(header, options)
     extra = proto.new_figures(header.serial) if hasattr(proto, "new_figures") else None
@@ -175,18 +179,8 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
         process()
         if acc is None:
             acc = start(int(header.start_monotonic_ns or 0), 0)
-        if options.timeout_ms:
-            timeout = given_timeout(options.timeout_ms)
-        elif getattr(proto, "answers_judged_on_the_wire", False):
-            timeout = TimeoutEstimate(None, "not used", explanation=(
-                f"{proto.label}: only the token holder asks and it waits for its answer, so every answer on the "
-                f"wire is one the master accepted (an unanswered request shows as a retry or the next request)"))
-        else:
-            timeout = infer_timeout(acc.move_on, acc.in_time)
-        result = build_result(header, paths or [], damage, acc.figures(copy=False), smap, timeout)
-        result.protocol = proto.name
-        if extra is not None:
-            result.protocol_figures = {**extra.result(), "findings": extra.findings()}
+        protocol_figures = None if extra is None else {**extra.result(), "findings": extra.findings()}
+        result = judged_result(header, acc.figures(copy=False), options, paths, damage, proto, protocol_figures)
         result.sinks = sinks
         if close_sinks and sinks:
             result.findings = evaluate_findings(result)
@@ -194,6 +188,25 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     except BaseException:
         abort(sinks)
         raise
+    return result
+
+
+def judged_result(header: CaptureHeader, figures, options: AnalysisOptions, paths: list | None,
+                  damage: ReadReport | None, proto, protocol_figures: dict | None) -> AnalysisResult:
+    """The result of unjudged ``figures``: the timeout given or inferred, then judged against it once."""
+    smap = options.station_map or StationMap()
+    if options.timeout_ms:
+        timeout = given_timeout(options.timeout_ms)
+    elif getattr(proto, "answers_judged_on_the_wire", False):
+        timeout = TimeoutEstimate(None, "not used", explanation=(
+            f"{proto.label}: only the token holder asks and it waits for its answer, so every answer on the "
+            f"wire is one the master accepted (an unanswered request shows as a retry or the next request)"))
+    else:
+        timeout = infer_timeout(figures.move_on, figures.in_time)
+    result = build_result(header, paths or [], damage, figures, smap, timeout)
+    result.protocol = proto.name
+    if protocol_figures is not None:
+        result.protocol_figures = protocol_figures
     return result
 
 
@@ -325,14 +338,28 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     Each of ``sinks`` (``buswitness.analysis.sinks``) gets the tables as they stream and the
     finished result. ``progress(done, total)`` is called as the input is read (bytes; total
     None when unknown): the analysis draws nothing itself, the command line draws the bar.
+    With ``options.cache`` the decoded cache next to the capture (analysis/decodecache.py) is
+    used when it matches, and left for the next run when it does not.
     """
     from buswitness.decode import DecoderConfig
     options = options or AnalysisOptions()
+    paths = list(getattr(source, "paths", []))
+    total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None
+    cache = _open_cache(source, options, paths)
+    if cache is not None and cache.hit is not None and not needs_tables(_option_sinks(options) + list(sinks)):
+        if progress is not None:
+            progress(total or 0, total)
+        return _finish(_from_cache(source, options, cache, paths, sinks), cache)
     delivery = assess_delivery(source, protocol=options.protocol)
     header, decoding = delivery_headers(source.header, delivery)
     cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)
-    paths = list(getattr(source, "paths", []))
-    total = sum(Path(p).stat().st_size for p in paths if Path(p).exists()) or None
+    result = _decode_in_segments(source, options, header, cfg, paths, sinks, delivery)
+    if result is not None:
+        if progress is not None:
+            progress(total or 0, total)
+        if cache is not None:
+            cache.keep(result)
+        return _finish(result, cache)
     done = 0
     crossed: list = []
 
@@ -347,11 +374,114 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
     result.delivery = [d.to_dict() for d in delivery]
     for entry in result.delivery:
         entry["timing_contradictions"] = dict(crossed).get(entry["port"], 0)
+    if cache is not None:
+        cache.keep(result)
+    return _finish(result, cache)
+
+
+def _decode_in_segments(source, options: AnalysisOptions, header: CaptureHeader, cfg, paths: list,
+                        sinks: Sequence, delivery: list) -> AnalysisResult | None:
+    """The result from segments decoded on several cores (analysis/segments.py); None: decode in one pass."""
+    from buswitness.analysis import segments
+    jobs = segments.jobs_for(options, source, _protocol(header, options),
+                             needs_tables(_option_sinks(options) + list(sinks)))
+    if jobs <= 1:
+        return None
+    done = segments.decode_parallel(source, header, cfg, jobs, options.notice or (lambda text: None))
+    if done is None:
+        return None
+    result = _result_of_figures(header, done.figures, options, paths, done.report, None, sinks)
+    result.delivery = [d.to_dict() for d in delivery]
+    for entry in result.delivery:
+        entry["timing_contradictions"] = done.contradictions.get(entry["port"], 0)
+    return result
+
+
+def _finish(result: AnalysisResult, cache) -> AnalysisResult:
+    if cache is not None:
+        result.part_digests = cache.digests
     try:
         result.findings = evaluate_findings(result)
         close(result)
     except BaseException:
         abort(result.sinks)
+        raise
+    return result
+
+
+def needs_tables(sinks: Sequence) -> bool:
+    """True when a sink reads the decoded rows themselves (CSV, Parquet, the fleet dataset)."""
+    from buswitness.analysis.sinks import Sink
+    return any(type(s).write is not Sink.write for s in sinks)
+
+
+class _Cache:
+    """The decoded cache of one run: its key, what it held, and how to keep this run's figures."""
+
+    def __init__(self, path: Path, key: str, digests: list, hit, notice: Callable[[str], None]) -> None:
+        self.path, self.key, self.digests, self.hit, self.notice = path, key, digests, hit, notice
+
+    def keep(self, result: AnalysisResult) -> None:
+        from buswitness.analysis import decodecache
+        if result.unjudged is None:
+            return
+        if not decodecache.writable(self.path):
+            self.notice(f"decoded cache not written: {self.path.parent} is not writable (the next run decodes again)")
+            return
+        decodecache.store(self.path, self.key, result, self.notice)
+
+
+def _open_cache(source, options: AnalysisOptions, paths: list) -> _Cache | None:
+    """The run's cache (None when off or impossible here), with the sidecar's content when it matches."""
+    if not options.cache or not paths:
+        return None
+    from buswitness.analysis import decodecache
+    from buswitness.protocols import DEFAULT, canonical
+    notice = options.notice or (lambda text: None)
+    if not decodecache.have_pyarrow():
+        notice("decoded cache off: pyarrow is not installed (pip install 'buswitness[parquet]')")
+        return None
+    try:
+        digests = decodecache.part_digests(paths)
+    except OSError as exc:
+        notice(f"decoded cache off: a capture file cannot be read whole ({exc.strerror})")
+        return None
+    protocol = canonical(options.protocol or str(source.header.extra.get("protocol", DEFAULT)))
+    key = decodecache.cache_key(source, digests, protocol, options.port_roles)
+    path = decodecache.sidecar_path(paths)
+    return _Cache(path, key, digests, decodecache.load(path, key, notice), notice)
+
+
+def _from_cache(source, options: AnalysisOptions, cache: _Cache, paths: list, sinks: Sequence) -> AnalysisResult:
+    """The result from the cached figures: judged against this run's timeout, with this run's station map."""
+    from buswitness.analysis import decodecache
+    hit = cache.hit
+    stated = {int(pid): (lat, src) for pid, lat, src in hit.latencies}
+    ports = [replace(p, latency_ms=stated[p.id][0], latency_source=stated[p.id][1]) if p.id in stated else p
+             for p in source.header.ports]
+    header = replace(source.header, ports=ports)
+    damage = decodecache.damage_report(hit.damage)
+    if damage is not None and getattr(source, "report", None) is not None:
+        source.report = damage
+    result = _result_of_figures(header, hit.figures, options, paths, damage, hit.protocol_figures or None, sinks)
+    result.delivery = hit.delivery
+    return result
+
+
+def _result_of_figures(header: CaptureHeader, figures, options: AnalysisOptions, paths: list,
+                       damage: ReadReport | None, protocol_figures: dict | None, sinks: Sequence) -> AnalysisResult:
+    """The result of figures made elsewhere (the decoded cache, segments decoded at once), sinks opened."""
+    proto = _protocol(header, options)
+    sinks = _option_sinks(options) + list(sinks)
+    context = SinkContext(header=header, t0_ns=figures.t0_ns, utc0_ns=figures.utc0_ns,
+                          paths=tuple(str(p) for p in paths))
+    try:
+        for sink in sinks:
+            sink.open(context)
+        result = judged_result(header, figures, options, paths, damage, proto, protocol_figures)
+        result.sinks = sinks
+    except BaseException:
+        abort(sinks)
         raise
     return result
 

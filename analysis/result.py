@@ -120,6 +120,8 @@ class AnalysisResult:
     protocol: str = "modbus-rtu"
     protocol_figures: dict = field(default_factory=dict)
     unjudged: Figures | None = None  #: the same before judging: what ``merge_results`` adds together
+    #: size and SHA-256 of each capture file when this run read them whole (analysis/decodecache.py)
+    part_digests: list = field(default_factory=list)
     headers: list = field(default_factory=list)  #: every capture's header, when merged from several
     sinks: list = field(default_factory=list, repr=False)  #: the outputs analyze fed (analysis/sinks)
     written: list = field(default_factory=list)  #: files the sinks wrote

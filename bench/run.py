@@ -11,6 +11,9 @@ Stages, each timed separately (medians of ``--runs``, with min-max):
   report     dashboard HTML + summary.json from the analysis result; file size
   browser    opening the dashboard in headless Chromium: to the load event (text and tables shown, the
              charts then draw one per task), and until every chart has drawn
+  cache      ``evidence`` after one ``analyze`` (the decoded cache), against ``--no-cache``
+  segments   ``analyze`` in segments on every core against one pass: same summary, the speed-up
+             (``--cache-only`` runs just these two)
   fleet      ``dataset add`` throughput (serial and on a Dask LocalCluster) and ``trend`` latency over
              30 nights x 10 buses (bench/fleet.py; ``--fleet-only`` runs just this stage)
 
@@ -40,6 +43,8 @@ TARGET_PEAK_MB = 2048.0
 TARGET_FRAMING_RATIO = 10.0    # ours / pymodbus framing throughput
 TARGET_HTML_MB = 15.0
 TARGET_BROWSER_S = 10.0
+TARGET_EVIDENCE_CACHED_S = 3.0  # issue 14: `evidence` on a 24-hour night after one `analyze`
+TARGET_SEGMENTS_SPEEDUP = 1.5   # ours: segments on 2 cores against one pass (issue 14 item 2)
 
 
 def _peak_mb() -> float:
@@ -155,7 +160,28 @@ def child_browser(html: str) -> dict:
     return {"opened_s": opened, "seconds": seconds, "charts": charts}
 
 
-CHILDREN = {"decode": child_decode, "analyze": child_analyze, "framing": child_framing, "browser": child_browser}
+def child_analyze_jobs(path: str, jobs: int) -> dict:
+    import hashlib
+
+    from buswitness.analysis.pipeline import AnalysisOptions, analyze
+    from buswitness.analysis.summary import summary_dict
+    from buswitness.capture.sources import open_capture
+    notes: list = []
+    t = time.perf_counter()
+    result = analyze(open_capture(path), AnalysisOptions(jobs=jobs, notice=notes.append))
+    seconds = time.perf_counter() - t
+    summary = summary_dict(result)
+    summary.pop("analysed_utc", None)
+    digest = hashlib.sha256(json.dumps(summary, sort_keys=True, default=str).encode()).hexdigest()
+    cpu = sum(r.ru_utime + r.ru_stime for r in (resource.getrusage(resource.RUSAGE_SELF),
+                                                 resource.getrusage(resource.RUSAGE_CHILDREN)))
+    workers_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
+    return {"seconds": seconds, "summary": digest, "notes": notes, "peak_mb": _peak_mb(), "cpu_s": cpu,
+            "workers_peak_mb": workers_mb}
+
+
+CHILDREN = {"decode": child_decode, "analyze": child_analyze, "framing": child_framing, "browser": child_browser,
+            "analyze_jobs": child_analyze_jobs}
 
 
 # -- issue 14 inputs: hex text and raw bytes, four-wire, Modbus ASCII ---------------------------
@@ -531,6 +557,56 @@ def bench_capture(name: str, path: Path, runs: int, rows: list, browser: bool) -
         rows.append((name, "charts drawn", med([r["seconds"] for r in b]), "", f"{b[0]['charts']} charts", ""))
 
 
+def _cli_seconds(*argv: str) -> float:
+    """Wall time of one ``buswitness`` command in a fresh process (imports included, as a user waits)."""
+    env = dict(os.environ)
+    env.pop("BUSWITNESS_DECODED_CACHE", None)
+    t = time.perf_counter()
+    out = subprocess.run([sys.executable, "-m", "buswitness.cli.main", *argv], capture_output=True, text=True, env=env)
+    seconds = time.perf_counter() - t
+    if out.returncode != 0:
+        raise SystemExit(f"bench: buswitness {' '.join(argv)} failed:\n{out.stderr[-3000:]}")
+    return seconds
+
+
+def bench_cache_and_segments(name: str, path: Path, runs: int, rows: list, station: int = 1) -> None:
+    """Issue 14 items 2 and 4: `evidence` after one `analyze` (decoded cache), and segments on every core
+    against one pass (same summary, faster)."""
+    work = OUT / "cache-bench"
+    work.mkdir(parents=True, exist_ok=True)
+    link = work / path.name
+    for old in work.iterdir():
+        old.unlink()
+    link.symlink_to(path.resolve())
+    first = _cli_seconds("analyze", str(link), "--json", str(work / "a.json"), "--no-progress")
+    cached = [_cli_seconds("evidence", str(link), "--station", str(station), "-o", str(work / "e.html"),
+                           "--no-progress") for _ in range(runs)]
+    uncached = _cli_seconds("evidence", str(link), "--station", str(station), "-o", str(work / "f.html"),
+                            "--no-progress", "--no-cache")
+    sidecar = link.with_name(link.name + ".bwdecoded.parquet")
+    rows.append((name, "analyze, leaving the decoded cache", f"{first:.2f}", "", "",
+                 f"sidecar {sidecar.stat().st_size / 1e6:.1f} MB"))
+    rows.append((name, "evidence after analyze (cache)", med(cached), "", "",
+                 f"target <= {TARGET_EVIDENCE_CACHED_S:.0f} s: "
+                 + ("met" if statistics.median(cached) <= TARGET_EVIDENCE_CACHED_S else "MISSED")))
+    rows.append((name, "evidence --no-cache", f"{uncached:.2f}", "", "", f"{uncached / statistics.median(cached):.0f}x"))
+    one = [run_child("analyze_jobs", path, 1) for _ in range(runs)]
+    many = [run_child("analyze_jobs", path, os.cpu_count() or 1) for _ in range(runs)]
+    speedup = statistics.median([r["seconds"] for r in one]) / statistics.median([r["seconds"] for r in many])
+    equal = all(r["summary"] == one[0]["summary"] for r in one + many)
+    notes = sorted({n for r in many for n in r["notes"]})
+    rows.append((name, "analyze, one pass (--jobs 1)", med([r["seconds"] for r in one]), "", "",
+                 f"{med([r['peak_mb'] for r in one])} MB; cpu {med([r['cpu_s'] for r in one])} s"))
+    rows.append((name, f"analyze, segments (--jobs {os.cpu_count()})", med([r["seconds"] for r in many]), "",
+                 f"{speedup:.2f}x", f"same summary: {'yes' if equal else 'NO'}; target >= {TARGET_SEGMENTS_SPEEDUP}x: "
+                 + ("met" if speedup >= TARGET_SEGMENTS_SPEEDUP and equal else "MISSED")
+                 + (f"; {notes[0]}" if notes else "")))
+    # on a machine other work keeps busy, wall time says little: the CPU time says what the cores did
+    rows.append((name, "  segments: peak MB, cpu", "", "", "",
+                 f"parent {med([r['peak_mb'] for r in many])} MB, each worker <= "
+                 f"{med([r['workers_peak_mb'] for r in many])} MB; cpu {med([r['cpu_s'] for r in many])} s in all"))
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--hours", type=float, default=24.0, help="length of the saturated capture (default 24)")
@@ -546,6 +622,9 @@ def main() -> None:
                     help="run only hex text, four-wire and Modbus ASCII (issue 14 inputs)")
     ap.add_argument("--adapter-only", action="store_true",
                     help="run only the 1 ms adapter inputs (one-second blocks, larger frames) and the 16 ms case")
+    ap.add_argument("--no-cache-bench", action="store_true", help="skip evidence-after-analyze and segments")
+    ap.add_argument("--cache-only", action="store_true",
+                    help="run only evidence-after-analyze and segments against one pass (issue 14 items 2, 4)")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
@@ -563,6 +642,11 @@ def main() -> None:
     if args.adapter_only:
         _print_adapter(args)
         return
+    if args.cache_only:
+        sat, _ = ensure_capture("saturated115200", args.hours)
+        bench_cache_and_segments(f"saturated-{args.hours:g}h", sat, args.runs, rows)
+        _print_rows(rows)
+        return
     sat, sim_s = ensure_capture("saturated115200", args.hours)
     noisy, noisy_s = ensure_capture("noisy", 1.0)
     print(f"bench load: {sat.name} ({sat.stat().st_size / 1e6:.0f} MB"
@@ -579,6 +663,8 @@ def main() -> None:
                  "", f"{statistics.median(peer) / 1e6:.2f} M/s", f"ratio {ratio:.1f}x"))
     bench_capture(f"saturated-{args.hours:g}h", sat, args.runs, rows, not args.no_browser)
     bench_capture("noisy-1h", noisy, args.runs, rows, False)
+    if not args.no_cache_bench:
+        bench_cache_and_segments(f"saturated-{args.hours:g}h", sat, args.runs, rows)
 
     widths = [max(len(str(r[i])) for r in rows + [HEAD]) for i in range(len(HEAD))]
     for r in [HEAD] + rows:
@@ -613,6 +699,12 @@ def _print_fleet(args: argparse.Namespace) -> None:
     sys.path.insert(0, str(HERE))
     from fleet import bench_fleet
     rows = bench_fleet(args.fleet_nights, args.fleet_buses, args.fleet_night_s, args.runs)
+    widths = [max(len(str(r[i])) for r in rows + [HEAD]) for i in range(len(HEAD))]
+    for r in [HEAD] + rows:
+        print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
+
+
+def _print_rows(rows: list) -> None:
     widths = [max(len(str(r[i])) for r in rows + [HEAD]) for i in range(len(HEAD))]
     for r in [HEAD] + rows:
         print("  ".join(str(c).ljust(w) for c, w in zip(r, widths)))

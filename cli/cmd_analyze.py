@@ -30,6 +30,24 @@ def timeout_arg(text: str) -> float:
     return value
 
 
+def jobs_arg(text: str) -> int:
+    if not (text.strip().isascii() and text.strip().isdigit()) or not 1 <= int(text) <= 64:
+        raise argparse.ArgumentTypeError(f"{text!r}: the number of decoding processes is a whole number, 1 to 64")
+    return int(text)
+
+
+def cache_wanted(args: argparse.Namespace) -> bool:
+    """The decoded cache is used unless ``--no-cache`` or BUSWITNESS_DECODED_CACHE=off says otherwise."""
+    import os
+    return not getattr(args, "no_cache", False) and os.environ.get("BUSWITNESS_DECODED_CACHE", "") != "off"
+
+
+def notice(text: str) -> None:
+    """A one-line notice on standard error (the cache skipped, a seam decoded in one pass)."""
+    import sys
+    print(visible(f"note: {text}"), file=sys.stderr)
+
+
 def add_analysis_options(p: argparse.ArgumentParser) -> None:
     """Options shared by ``analyze`` and ``evidence``: the input and how to judge it."""
     p.add_argument("capture", help="capture file (or first part of a rotated set), hex text or raw bytes")
@@ -42,6 +60,11 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--roles", type=roles_arg, default=None, metavar="ROLE[,ROLE]",
                    help="what each port of the capture hears, in port order (master, slaves or both), when "
                         "the recording did not say; e.g. master,slaves for a four-wire bus")
+    p.add_argument("--no-cache", action="store_true",
+                   help="neither use nor leave the decoded cache next to the capture (CAPTURE.bwdecoded.parquet)")
+    p.add_argument("--jobs", type=jobs_arg, default=None, metavar="N",
+                   help="processes decoding a long capture in segments at once (default: one per core; 1: one "
+                        "pass)")
     add_input_options(p)
     add_protocol_option(p)
 
@@ -79,7 +102,9 @@ def run_analysis(args: argparse.Namespace, csv_dir: str | None = None, parquet_d
 
     roles = dict(enumerate(args.roles)) if args.roles else None
     options = AnalysisOptions(timeout_ms=args.timeout, station_map=smap, csv_dir=csv_dir, parquet_dir=parquet_dir,
-                              port_roles=roles, protocol=getattr(args, "protocol", None))
+                              port_roles=roles, protocol=getattr(args, "protocol", None),
+                              cache=cache_wanted(args), jobs=getattr(args, "jobs", None),
+                              notice=notice)
     result = analyze_with_bar(source, options, sinks, show=False if args.no_progress else None)
     damage = result.damage
     if result.bus.frames == 0 and damage is not None and not damage.clean:

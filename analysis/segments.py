@@ -1,0 +1,406 @@
+"""Decoding a long capture on every core: time segments decoded at once, joined where they agree.
+
+The capture's records are cut into steps (at most ``STEP_RECORDS`` records of one block), the
+same steps in every process, and the steps into ``jobs`` segments of about equal size by their
+place in the file. Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of
+records (or a sixteenth of the capture) before the segment's cut with a fresh decoder: by the
+cut, that decoder has usually seen the open requests, the master's waits and the stations'
+usual answers the decode from the start of the capture has seen (decoder state that crosses
+the seam). The process before it decodes on ``OVER_STEPS`` steps past the cut.
+
+The join is checked, never assumed. Over the overlap the two processes' tables (frames,
+transactions, events, and the timing contradictions counted) must be the same, step by step,
+from half-way through the warm-up to the end of the overlap; and at the handover the later
+decoder must be in the earlier one's state (:func:`decoder_state`: pairing, the queue to it,
+framing and byte times; positions relative, counters as far as a rule reads them). The one
+thing a later decoder cannot know, a station's slowest answer since the capture began, must not
+have been read by pairing before both agree on it (:func:`_slowest_settled`). Then the later
+decoder's tables after the overlap are the ones a single pass gives, for the same records. Each segment's rows from the end of its own
+overlap to the end of the next overlap go into its figures, and the figures of the segments
+merge into those of the whole capture (analysis/figures.py ``Figures.merge`` joins contiguous
+parts of one capture exactly). A seam whose two decodes never agree makes the whole capture
+decode in one pass, with a notice.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field, fields
+
+import numpy as np
+import pandas as pd
+from buswitness.records import RecordBatch
+
+#: Records per step: the unit in which two decodes of an overlap are compared.
+STEP_RECORDS = 4096
+#: Bytes of records a segment's decoder sees before its cut (its warm-up).
+WARM_BYTES = 2 << 20
+#: ... or this share of the capture when that is more (1/16: about 3 % more decoding on two cores).
+WARM_SHARE = 16
+#: Steps the previous segment decodes past the cut.
+OVER_STEPS = 4
+#: A capture smaller than this is decoded in one pass (starting processes costs more than it saves).
+PARALLEL_MIN_BYTES = 12 << 20
+#: At most this many segments, whatever the core count.
+MAX_JOBS = 8
+_RECORD_BYTES = 12  # one record's entry in a block's index (capture/fileformat.py INDEX_DTYPE)
+
+
+def tables_of(out) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """The three tables of a decoder output (decode/tables.py ``DecodeOutput``): the one adaptor to its form."""
+    if hasattr(out, "to_frames"):
+        frames = out.to_frames()
+        return frames.frames, frames.transactions, frames.events
+    return out.frames, out.transactions, out.events
+
+
+def output_digest(out, contradictions: tuple = ()) -> str:
+    """A digest of every value of the three tables, in order (and the step's timing contradictions)."""
+    h = hashlib.blake2b(repr(contradictions).encode(), digest_size=16)
+    for table in tables_of(out):
+        h.update(f"|{len(table)}|".encode())
+        for name in table.columns:
+            col = table[name]
+            h.update(f"{name}:{col.dtype}".encode())
+            if isinstance(col.dtype, pd.CategoricalDtype):
+                h.update(repr(list(col.cat.categories)).encode())
+                h.update(np.ascontiguousarray(col.cat.codes.to_numpy()).tobytes())
+            elif col.dtype == object:
+                for v in col.tolist():
+                    b = v if isinstance(v, (bytes, bytearray)) else repr(v).encode()
+                    h.update(len(b).to_bytes(4, "little"))
+                    h.update(b)
+            else:
+                h.update(np.ascontiguousarray(col.to_numpy()).tobytes())
+    return h.hexdigest()
+
+
+def _walk(x, rel: int, seen: set) -> object:
+    """A plain, comparable form of decoder state; ``rel`` is subtracted from stream positions."""
+    if x is None or isinstance(x, (bool, int, float, str, bytes)):
+        return x
+    if isinstance(x, (bytearray, memoryview)):
+        return bytes(x)
+    if isinstance(x, np.ndarray):
+        return (str(x.dtype), x.shape, x.tobytes())
+    if isinstance(x, np.generic):
+        return x.item()
+    if isinstance(x, (list, tuple)) or type(x).__name__ == "deque":
+        return (type(x).__name__, tuple(_walk(v, rel, seen) for v in x))
+    if isinstance(x, (set, frozenset)):
+        return ("set", tuple(sorted(repr(_walk(v, rel, seen)) for v in x)))
+    if isinstance(x, dict):
+        return ("dict", tuple(sorted((repr(k), _walk(v, rel, seen)) for k, v in x.items())))
+    if id(x) in seen:
+        return ("seen", type(x).__name__)
+    seen.add(id(x))
+    attrs = getattr(x, "__dict__", None)
+    if attrs is None:
+        slots = [n for c in type(x).__mro__ for n in getattr(c, "__slots__", ())]
+        attrs = {n: getattr(x, n) for n in slots if hasattr(x, n)}
+    return (type(x).__qualname__, tuple(sorted((k, _walk(v, rel, seen)) for k, v in attrs.items())))
+
+
+def _station_state(st) -> object:
+    """A station's record as pairing decides by it (decode/pairing.py): counts only as far as a rule
+    reads them (at least STATION_MIN_ANSWERS, none; at least DEAD_AFTER). Its slowest answer (a
+    maximum over the whole capture, which a decoder started later cannot know) is compared apart
+    (:func:`slowest_answers`)."""
+    from buswitness.decode import pairing as pr
+    rest = {k: v for k, v in vars(st).items() if k not in ("answers", "unanswered", "slowest_ns")}
+    return (min(st.answers, pr.STATION_MIN_ANSWERS), min(st.unanswered, pr.DEAD_AFTER), _walk(rest, 0, set()))
+
+
+def slowest_answers(decoder) -> dict[int, float]:
+    """Each station's slowest answer as pairing reads it (``Pairing._slowest_ns`` floors it)."""
+    from buswitness.decode import pairing as pr
+    floor = pr.ECHO_FLOOR_NS / pr.ECHO_SLACK
+    return {a: max(st.slowest_ns, floor) for a, st in decoder.pairing.stations.items()}
+
+
+def _watch_slowest(decoder, consulted: set, step: list) -> None:
+    """Note every step in which pairing reads a slowest answer (all its reads go through ``_slowest_ns``)."""
+    pairing = decoder.pairing
+    read = pairing._slowest_ns
+
+    def watched(st):
+        consulted.add(step[0])
+        return read(st)
+
+    pairing._slowest_ns = watched
+
+
+def decoder_state(decoder) -> str | None:
+    """A digest of everything in ``decoder`` that decides its later output, stream positions taken
+    relative to each port's unsettled bytes and counters as far as a rule reads them; None where
+    the decoder is not the one this knows (a seam is then never joined)."""
+    from buswitness.decode.pairing import Pairing
+    pairing = decoder.pairing
+    if type(pairing) is not Pairing:
+        return None
+    h = hashlib.blake2b(digest_size=20)
+    p_state = {k: v for k, v in vars(pairing).items() if k not in ("stations", "answers", "_slowest_ns")}
+    h.update(repr(_walk(p_state, 0, set())).encode())
+    for addr in sorted(pairing.stations):
+        h.update(repr((addr, _station_state(pairing.stations[addr]))).encode())
+    # the queue between framing and pairing: keys and items, without the running sequence numbers
+    h.update(repr([(key, _walk(item, 0, set())) for key, _seq, item in sorted(decoder._queue)]).encode())
+    for port_id in sorted(decoder.ports):
+        port = decoder.ports[port_id]
+        base = port.base
+        tl = port.timeline
+        timeline = {k: v for k, v in vars(tl).items() if k not in ("starts", "lasts", "_next_pos", "contradictions")}
+        marks = {k: [v[0], v[1], bytes(v[2]), v[3] - base] for k, v in port._marks.items()}
+        held = [(pos - base, t, _walk(msg, 0, set())) for pos, t, msg in port._held]
+        rest = {k: v for k, v in vars(port).items()
+                if k not in ("base", "timeline", "silence_at", "_marks", "_held", "proto", "timing")}
+        h.update(repr((port_id, _walk(rest, 0, set()), [x - base for x in tl.starts], [x - base for x in tl.lasts],
+                       tl._next_pos - base, _walk(timeline, 0, set()), [x - base for x in port.silence_at],
+                       marks, held)).encode())
+    return h.hexdigest()
+
+
+def steps(reader) -> Iterator[tuple[int, int, RecordBatch]]:
+    """(step index, place in the file before it, records) over the whole capture, the same in every process."""
+    i = pos = 0
+    for batch in reader.iter_batches():
+        n = len(batch)
+        if not n:
+            continue
+        ends = np.cumsum(batch.length)
+        for a in range(0, n, STEP_RECORDS):
+            b = min(a + STEP_RECORDS, n)
+            p0 = int(ends[a - 1]) if a else 0
+            p1 = int(ends[b - 1])
+            yield i, pos, RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b], batch.flags[a:b],
+                                      batch.payload[p0:p1])
+            pos += (b - a) * _RECORD_BYTES + (p1 - p0)
+            i += 1
+
+
+@dataclass
+class Plan:
+    """Where segment ``k`` starts and ends, by place in the file (bytes of records before a step)."""
+
+    total: int
+    jobs: int
+
+    def cut(self, k: int) -> int:
+        return self.total * k // self.jobs
+
+    @property
+    def warm_bytes(self) -> int:
+        """The warm-up: WARM_BYTES, or a sixteenth of the capture when that is more (a longer history)."""
+        return max(WARM_BYTES, self.total // WARM_SHARE)
+
+    def warm(self, k: int) -> int:
+        return max(0, self.cut(k) - self.warm_bytes)
+
+    def agree_from(self, k: int) -> int:
+        return max(0, self.cut(k) - self.warm_bytes // 2)
+
+
+@dataclass
+class SegmentResult:
+    k: int
+    figures: object = None
+    head: dict = field(default_factory=dict)   #: step -> digest, from the warm start to the end of the overlap
+    tail: dict = field(default_factory=dict)   #: the same for the next segment's overlap
+    agree_from: int = -1                        #: first step the head must agree from
+    contradictions: dict = field(default_factory=dict)
+    report: object = None
+    tables: list | None = None                  #: the owned decoder outputs themselves (keep_tables)
+    head_state: str | None = None               #: decoder state where this segment's own rows begin
+    tail_state: str | None = None               #: decoder state where the next segment's own rows begin
+    head_slowest: dict = field(default_factory=dict)  #: slowest answers where its own rows begin
+    tail_slowest: dict = field(default_factory=dict)  #: the same where the next segment's own rows begin
+    rises: list = field(default_factory=list)   #: (step, {station: slowest answer}) whenever one rose
+    consulted: set = field(default_factory=set)  #: steps in which pairing read a slowest answer
+    handover: int = -1                          #: the last step before this segment's own rows
+
+
+def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool = False) -> SegmentResult:
+    """Decode segment ``k`` (in a worker process): its figures and the digests of its overlaps.
+
+    With ``keep_tables`` the decoder outputs the segment owns are kept instead of counted.
+    """
+    from buswitness.analysis.pipeline import AnalysisOptions, analyze_tables
+    from buswitness.capture.fileformat import CaptureReader
+    from buswitness.decode import Decoder
+    reader = CaptureReader([str(p) for p in paths])
+    decoder = Decoder(cfg)
+    last = k == plan.jobs - 1
+    out = SegmentResult(k)
+    state = {"cut": None}
+    step = [0]
+    if k:
+        _watch_slowest(decoder, out.consulted, step)
+
+    def counts() -> dict:
+        return {p: port.timeline.contradictions for p, port in decoder.ports.items()}
+
+    def owned_outputs():
+        started = False
+        next_cut_step = None
+        for i, pos, batch in steps(reader):
+            if not started:
+                if k and pos < plan.warm(k):
+                    continue
+                started = True
+            if k and state["cut"] is None and pos >= plan.cut(k):
+                state["cut"] = i
+            if out.agree_from < 0 and k and pos >= plan.agree_from(k):
+                out.agree_from = i
+            if not last and next_cut_step is None and pos >= plan.cut(k + 1):
+                next_cut_step = i
+            before = counts()
+            step[0] = i
+            seen_slowest = slowest_answers(decoder) if k else None
+            result = decoder.feed_batch(batch)
+            after = counts()
+            if k and state["cut"] is not None and i >= state["cut"] + OVER_STEPS:
+                now = slowest_answers(decoder)
+                if now != seen_slowest:
+                    out.rises.append((i, now))
+            step_contra = tuple(sorted((p, n - before.get(p, 0)) for p, n in after.items() if n != before.get(p, 0)))
+            in_head = k and (state["cut"] is None or i < state["cut"] + OVER_STEPS)
+            in_tail = not last and pos >= plan.warm(k + 1)
+            if in_head or in_tail:
+                digest = output_digest(result, step_contra)
+                if in_head:
+                    out.head[i] = digest
+                if in_tail:
+                    out.tail[i] = digest
+            if k and state["cut"] is not None and i == state["cut"] + OVER_STEPS - 1:
+                out.head_state, out.head_slowest, out.handover = decoder_state(decoder), slowest_answers(decoder), i
+            if next_cut_step is not None and i == next_cut_step + OVER_STEPS - 1:
+                out.tail_state, out.tail_slowest = decoder_state(decoder), slowest_answers(decoder)
+            owned = not in_head
+            if owned:
+                for p, n in step_contra:
+                    out.contradictions[p] = out.contradictions.get(p, 0) + n
+                yield result
+            if next_cut_step is not None and i >= next_cut_step + OVER_STEPS - 1:
+                return
+        if last:
+            before = counts()
+            result = decoder.flush()
+            for p, n in counts().items():
+                out.contradictions[p] = out.contradictions.get(p, 0) + n - before.get(p, 0)
+            yield result
+
+    if keep_tables:
+        out.tables = list(owned_outputs())
+    else:
+        out.figures = analyze_tables(header, owned_outputs(), AnalysisOptions()).unjudged
+    if last:
+        out.report = reader.report
+    return out
+
+
+def _slowest_settled(prev: SegmentResult, seg: SegmentResult) -> bool:
+    """True when the slowest answers ``seg``'s decoder did not know never decided anything.
+
+    At the handover the decoder from the start knows each station's slowest answer over the whole
+    capture so far; the later one only since its warm start, so it may know a smaller one. Both
+    become the same at the first answer slower than the true one. Until then, pairing must not
+    have read a slowest answer at all (it reads them in one place, ``Pairing._slowest_ns``).
+    """
+    true = prev.tail_slowest
+    if set(true) != set(seg.head_slowest):
+        return False
+    late = [a for a in true if seg.head_slowest[a] != true[a]]
+    if not late:
+        return True
+    settled = seg.handover
+    for a in late:
+        step = next((i for i, now in seg.rises if now.get(a, 0.0) >= true[a]), None)
+        settled = max(settled, step if step is not None else 1 << 62)  # None: never, to the segment's end
+    return not any(seg.handover < i <= settled for i in seg.consulted)
+
+
+def seams_agree(parts: list[SegmentResult]) -> list[int]:
+    """The seams (k: between segment k-1 and k) that did not join.
+
+    A seam joins when the two decodes of its overlap gave the same tables for every step from
+    half-way through the warm-up, and at the handover the later decoder is in the state of the
+    earlier one (:func:`decoder_state`): from there on both give the same output for the same
+    input, so the later segment's rows are those of one pass.
+    """
+    bad = []
+    for prev, seg in zip(parts, parts[1:]):
+        needed = [i for i in seg.head if i >= seg.agree_from]
+        if (seg.agree_from < 0 or not needed or any(prev.tail.get(i) != seg.head[i] for i in needed)
+                or seg.head_state is None or seg.head_state != prev.tail_state
+                or not _slowest_settled(prev, seg)):
+            bad.append(seg.k)
+    return bad
+
+
+def jobs_for(options, source, proto, sinks_need_tables: bool) -> int:
+    """Segments to decode at once for this run: 1 for one pass."""
+    from buswitness.capture.fileformat import CaptureReader
+    wanted = options.jobs if options.jobs is not None else (os.cpu_count() or 1)
+    if wanted <= 1 or sinks_need_tables or not isinstance(source, CaptureReader) or hasattr(proto, "new_figures"):
+        return 1
+    if not source.header.capture_id:
+        return 1  # Figures.merge joins the parts of one capture by its id: without one, no exact join
+    size = sum(os.path.getsize(p) for p in source.paths if os.path.exists(p))
+    if size < PARALLEL_MIN_BYTES:
+        return 1
+    return min(wanted, MAX_JOBS, max(1, size // (4 * WARM_BYTES)))
+
+
+def segmented_outputs(paths: list, header, cfg, jobs: int) -> list | None:
+    """The decoder outputs of ``jobs`` segments joined, in one process (for checking the joins against
+    one pass); None when a seam did not join."""
+    plan = Plan(sum(os.path.getsize(p) for p in paths), jobs)
+    parts = [run_segment(paths, header, cfg, plan, k, keep_tables=True) for k in range(jobs)]
+    if seams_agree(parts):
+        return None
+    return [o for p in parts for o in p.tables]
+
+
+@dataclass
+class Parallel:
+    figures: object
+    contradictions: dict
+    report: object
+
+
+def decode_parallel(source, header, cfg, jobs: int, notice: Callable[[str], None]) -> Parallel | None:
+    """Figures of the whole capture from ``jobs`` segments decoded at once; None when a seam did not join."""
+    import concurrent.futures
+    import multiprocessing
+
+    from buswitness.analysis.figures import Figures
+    paths = [str(p) for p in source.paths]
+    total = sum(os.path.getsize(p) for p in paths)
+    plan = Plan(total, jobs)
+    # fork where there is one: the workers start at once with the modules already loaded, and a
+    # caller's script needs no ``if __name__ == "__main__"`` guard (spawn would run it again)
+    ctx = multiprocessing.get_context("fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=jobs - 1, mp_context=ctx) as pool:
+        futures = [pool.submit(run_segment, paths, header, cfg, plan, k) for k in range(1, jobs)]
+        parts = [run_segment(paths, header, cfg, plan, 0)] + [f.result() for f in futures]
+    bad = seams_agree(parts)
+    if bad:
+        notice(f"the decodes of {len(bad)} of {jobs - 1} segment seam(s) did not agree over their overlap: "
+               f"decoded in one pass instead")
+        return None
+    figures = Figures.merge([p.figures for p in parts])
+    contradictions: dict = {}
+    for p in parts:
+        for port, n in p.contradictions.items():
+            contradictions[port] = contradictions.get(port, 0) + n
+    report = getattr(source, "report", None)
+    last = parts[-1].report
+    if report is not None and last is not None:
+        keep = {"files", "missing_parts", "warnings"}
+        for f in fields(last):
+            if f.name not in keep:
+                setattr(report, f.name, getattr(last, f.name))
+        report.warnings = list(report.warnings) + [w for w in last.warnings if w not in report.warnings]
+    return Parallel(figures, contradictions, report)

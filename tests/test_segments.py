@@ -1,0 +1,156 @@
+"""Decoding in segments on several cores gives exactly what one pass gives.
+
+The oracle is the decoder's own single pass over the same capture (itself checked against the
+simulator's truth and, in test_oracle_stack.py, against pymodbus's own client and servers):
+joined segments must not change a single row. Source: every check compares with what the test
+itself made; no check value comes from outside the project.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from buswitness.analysis import segments
+from buswitness.analysis.pipeline import AnalysisOptions, analyze, assess_delivery, delivery_headers
+from buswitness.analysis.summary import summary_dict
+from buswitness.capture.fileformat import CaptureHeader, CaptureReader, CaptureWriter, PortInfo
+from buswitness.decode import Decoder, DecoderConfig
+from buswitness.serial import SerialFormat
+from buswitness.simulate import load_scenario, simulate
+
+SCENARIOS = sorted(p.stem for p in (Path(segments.__file__).parent.parent / "simulate" / "scenarios").glob("*.json"))
+
+
+@pytest.fixture
+def small_segments(monkeypatch):
+    """Segments small enough for a test capture: a few kB of warm-up, steps of a few records."""
+    monkeypatch.setattr(segments, "STEP_RECORDS", 16)
+    monkeypatch.setattr(segments, "WARM_BYTES", 6000)
+    monkeypatch.setattr(segments, "PARALLEL_MIN_BYTES", 0)
+
+
+def _one_pass(path: Path):
+    reader = CaptureReader(path)
+    _reported, decoding = delivery_headers(reader.header, assess_delivery(reader))
+    cfg = DecoderConfig.from_header(decoding)
+    decoder = Decoder(cfg)
+    outs = [decoder.feed_batch(b) for b in reader.iter_batches()] + [decoder.flush()]
+    return reader, cfg, outs
+
+
+def _tables(outs) -> list[pd.DataFrame]:
+    return [pd.concat([segments.tables_of(o)[i] for o in outs], ignore_index=True) for i in range(3)]
+
+
+def _assert_same_tables(a, b) -> None:
+    for x, y, name in zip(_tables(a), _tables(b), ("frames", "transactions", "events")):
+        pd.testing.assert_frame_equal(x, y, check_exact=True, obj=name)
+
+
+def _summary(result) -> str:
+    d = summary_dict(result)
+    d.pop("analysed_utc", None)
+    return json.dumps(d, default=str, sort_keys=True)
+
+
+def _joined(path: Path, jobs: int):
+    reader, cfg, serial = _one_pass(path)
+    joined = segments.segmented_outputs([str(path)], reader.header, cfg, jobs)
+    return serial, joined
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("scenario", SCENARIOS)
+def test_segments_give_the_tables_of_one_pass_on_every_scenario(tmp_path, small_segments, monkeypatch, scenario):
+    """Where a seam joins, the joined tables are those of one pass, row for row. Where the later decoder
+    cannot reach the earlier one's state (a short capture's history: the master's last 64 waits, a
+    station's last 256 answers), the seam is refused and analyze decodes in one pass."""
+    path = tmp_path / f"{scenario}.bwcap"
+    simulate(load_scenario(scenario), duration_s=150.0, seed=11).write(path)
+    if path.stat().st_size < 8 * segments.WARM_BYTES:
+        pytest.skip("too little traffic to cut")
+    monkeypatch.setattr(segments, "WARM_BYTES", path.stat().st_size * 2 // 5)  # a long history before the cut
+    serial, joined = _joined(path, 2)
+    if joined is not None:
+        _assert_same_tables(serial, joined)
+
+
+def test_a_long_regular_capture_joins_and_gives_the_tables_of_one_pass(tmp_path, small_segments, monkeypatch):
+    path = tmp_path / "saturated.bwcap"
+    simulate(load_scenario("saturated115200"), duration_s=90.0, seed=4).write(path)
+    monkeypatch.setattr(segments, "WARM_BYTES", path.stat().st_size // 8)
+    serial, joined = _joined(path, 2)
+    assert joined is not None, "the seam of a regular capture did not join"
+    _assert_same_tables(serial, joined)
+
+
+@pytest.mark.parametrize("scenario", ["fault-late", "noisy", "fault-exceptions", "fault-gap", "pumpstation"])
+def test_analysis_on_several_cores_equals_one_pass(tmp_path, small_segments, scenario):
+    path = tmp_path / f"{scenario}.bwcap"
+    simulate(load_scenario(scenario), duration_s=240.0, seed=11).write(path)
+    notes: list = []
+    one = analyze(CaptureReader(path), AnalysisOptions(jobs=1))
+    two = analyze(CaptureReader(path), AnalysisOptions(jobs=2, notice=notes.append))
+    three = analyze(CaptureReader(path), AnalysisOptions(jobs=3, notice=notes.append))
+    assert _summary(two) == _summary(one)
+    assert _summary(three) == _summary(one)
+    assert two.delivery == one.delivery
+    assert two.damage == one.damage
+    for s in one.stations:
+        assert two.late_answers(s.address) == one.late_answers(s.address)
+    assert two.worst_transactions() == one.worst_transactions()
+
+
+def test_a_seam_whose_decodes_never_agree_falls_back_to_one_pass(tmp_path, small_segments, monkeypatch):
+    path = tmp_path / "late.bwcap"
+    simulate(load_scenario("fault-late"), duration_s=120.0, seed=2).write(path)
+    monkeypatch.setattr(segments, "output_digest", lambda out, c=(): str(id(out)))  # no two steps agree
+    notes: list = []
+    result = analyze(CaptureReader(path), AnalysisOptions(jobs=2, notice=notes.append))
+    assert any("one pass" in n for n in notes)
+    assert _summary(result) == _summary(analyze(CaptureReader(path), AnalysisOptions(jobs=1)))
+
+
+def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path, monkeypatch):
+    path = tmp_path / "short.bwcap"
+    simulate(load_scenario("clean"), duration_s=30.0, seed=1).write(path)
+    reader = CaptureReader(path)
+    from buswitness.decode.protocols import get
+    proto = get("modbus-rtu")
+    assert segments.jobs_for(AnalysisOptions(jobs=4), reader, proto, False) == 1  # too short
+    assert segments.jobs_for(AnalysisOptions(jobs=1), reader, proto, False) == 1
+    monkeypatch.setattr(segments, "PARALLEL_MIN_BYTES", 0)
+    monkeypatch.setattr(segments, "WARM_BYTES", 1000)
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, False) == 2
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, True) == 1  # --csv and the like
+    reader.header.capture_id = ""  # segments merge by the capture's id
+    assert segments.jobs_for(AnalysisOptions(jobs=2), reader, proto, False) == 1
+
+
+@pytest.mark.slow
+def test_an_oracle_stack_capture_joins_like_one_pass_or_not_at_all(tmp_path, small_segments, monkeypatch):
+    """pymodbus's own client and servers on the emulated line (tests/oraclebus.py), tapped at 1 ms and
+    16 ms and written as a capture file. Its stations are all history (a dead one, a slow one, retries),
+    so a decoder started late may stay in another state: then the seam must be refused, and the
+    analysis is that of one pass either way."""
+    pytest.importorskip("pymodbus")
+    import oraclebus as ob
+    run = ob.run_bus(19200, "8E1", ob.default_plan(seed=12, cycles=12), workdir=tmp_path / "bus")
+    for latency in (1.0, 16.0):
+        records = ob.tap_records(run.bursts, latency, seed=3)
+        header = CaptureHeader(serial=SerialFormat(19200, 8, "E", 1), ports=[PortInfo(0, "tap")],
+                               capture_id=f"oracle{latency:g}")
+        path = tmp_path / f"oracle-{latency:g}.bwcap"
+        with CaptureWriter(path, header) as w:
+            for t, data in records:
+                w.append(0, t, data)
+        monkeypatch.setattr(segments, "WARM_BYTES", max(2000, path.stat().st_size // 4))
+        serial, joined = _joined(path, 2)
+        if joined is not None:
+            _assert_same_tables(serial, joined)
+        one = analyze(CaptureReader(path), AnalysisOptions(jobs=1))
+        two = analyze(CaptureReader(path), AnalysisOptions(jobs=2))
+        assert _summary(two) == _summary(one)
