@@ -50,10 +50,7 @@ _RECORD_BYTES = 12  # one record's entry in a block's index (capture/fileformat.
 
 def tables_of(out) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """The three tables of a decoder output (decode/tables.py ``DecodeOutput``): the one adaptor to its form."""
-    if hasattr(out, "to_frames"):
-        frames = out.to_frames()
-        return frames.frames, frames.transactions, frames.events
-    return out.frames, out.transactions, out.events
+    return out.to_frames()
 
 
 def output_digest(out, contradictions: tuple = ()) -> str:
@@ -151,12 +148,16 @@ def decoder_state(decoder) -> str | None:
         port = decoder.ports[port_id]
         base = port.base
         tl = port.timeline
-        timeline = {k: v for k, v in vars(tl).items() if k not in ("starts", "lasts", "_next_pos", "contradictions")}
+        # the held records (relative positions below, their times and floors as they are); the storage
+        # layout (_ints/_floors capacity, _lo/_n) depends on history and decides nothing
+        timeline = {k: v for k, v in vars(tl).items()
+                    if k not in ("starts", "lasts", "_next_pos", "contradictions", "_ints", "_floors", "_lo", "_n")}
+        timeline["held"] = (tl.times.tolist(), tl.floors.tolist())
         marks = {k: [v[0], v[1], bytes(v[2]), v[3] - base] for k, v in port._marks.items()}
         held = [(pos - base, t, _walk(msg, 0, set())) for pos, t, msg in port._held]
         rest = {k: v for k, v in vars(port).items()
                 if k not in ("base", "timeline", "silence_at", "_marks", "_held", "proto", "timing")}
-        h.update(repr((port_id, _walk(rest, 0, set()), [x - base for x in tl.starts], [x - base for x in tl.lasts],
+        h.update(repr((port_id, _walk(rest, 0, set()), (tl.starts - base).tolist(), (tl.lasts - base).tolist(),
                        tl._next_pos - base, _walk(timeline, 0, set()), [x - base for x in port.silence_at],
                        marks, held)).encode())
     return h.hexdigest()
