@@ -68,8 +68,19 @@ def install(path, fail_at: int) -> None:
                                 kwargs.get("newline"))
         return _real_open(file, mode, *args, **kwargs)
 
-    builtins.open = patched
-    io.open = patched
+    # a callable object, not a function: Python 3.10's pathlib keeps ``io.open`` as a class attribute
+    # when imported after this, and a plain function there would be bound as a method
+    hook = _Hook(patched)
+    builtins.open = hook
+    io.open = hook
+
+
+class _Hook:
+    def __init__(self, fn) -> None:
+        self.fn = fn
+
+    def __call__(self, *args, **kwargs):
+        return self.fn(*args, **kwargs)
 
 
 def uninstall() -> None:
