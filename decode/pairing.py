@@ -153,6 +153,27 @@ class _Station:
         return float(lo), float(hi)
 
 
+
+def _response_columns(timed: bool, a_mid, a_lo, a_hi, q_mid, q_lo, q_hi) -> tuple:
+    """Response times in columns (ms): midpoint, interval, contradiction and by how much, from each answer's
+    start (midpoint and bounds, ns) and its request's end. As ``_times`` does one by one: a contradiction (the
+    answer would have begun before its request ended) widens to [0, width] and never collapses to a point."""
+    n = len(q_mid)
+    if not timed:
+        nan = np.full(n, np.nan)
+        return nan, nan, nan, np.zeros(n, dtype=bool), nan
+    mid = (a_mid - q_mid) / 1e6
+    low = (a_lo - q_hi) / 1e6
+    high = (a_hi - q_lo) / 1e6
+    conflict = high < 0
+    before = -high
+    width = high - low
+    low = np.where(conflict, 0.0, np.maximum(low, 0.0))
+    high = np.where(conflict, width, high)
+    mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
+    return mid, low, high, conflict, before
+
+
 class Pairing:
     """Pair frames into transactions; returns transactions (in request order) and events."""
 
@@ -417,20 +438,8 @@ class Pairing:
             codes[exc] = [rsp_raws[k][2] for k in np.flatnonzero(exc).tolist()]
         is_exc = exc & (codes != 0)
         outcome = np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"]).astype(np.int8)
-        conflict = np.zeros(q.size, dtype=bool)
-        if self.timed:
-            mid = (t_end[r] - c_rsp - t_end[q]) / 1e6
-            low = (lo[r] - c_rsp - hi[q]) / 1e6
-            high = (hi[r] - c_rsp - lo[q]) / 1e6
-            # as _times: a contradiction widens to [0, width], never collapses
-            conflict = high < 0
-            before = -high
-            width = high - low
-            low = np.where(conflict, 0.0, np.maximum(low, 0.0))
-            high = np.where(conflict, width, high)
-            mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
-        else:
-            mid = low = high = np.full(q.size, np.nan)
+        mid, low, high, conflict, before = _response_columns(
+            self.timed, t_end[r] - c_rsp, lo[r] - c_rsp, hi[r] - c_rsp, t_end[q], lo[q], hi[q])
         retry = np.zeros(q.size, dtype=bool)
         if not self.last_answered and self.last_request is not None:
             retry[0] = self.last_request.raw == req_raws[0]
@@ -626,19 +635,8 @@ class Pairing:
             is_exc = exc & (codes != 0) & ~late
             outcome = np.where(late, OUTCOME_CODE["late"],
                                np.where(is_exc, OUTCOME_CODE["exception"], OUTCOME_CODE["ok"])).astype(np.int8)
-            conflict = np.zeros(k, dtype=bool)
-            if self.timed:
-                mid = (t_end[a] - c_rsp - qend[:k]) / 1e6
-                low = (lo[a] - c_rsp - qhi[:k]) / 1e6
-                high = (hi[a] - c_rsp - qlo[:k]) / 1e6
-                conflict = high < 0
-                before = -high
-                width = high - low
-                low = np.where(conflict, 0.0, np.maximum(low, 0.0))
-                high = np.where(conflict, width, high)
-                mid = np.where(conflict, width / 2, np.minimum(np.maximum(mid, low), high))
-            else:
-                mid = low = high = np.full(k, np.nan)
+            mid, low, high, conflict, before = _response_columns(
+                self.timed, t_end[a] - c_rsp, lo[a] - c_rsp, hi[a] - c_rsp, qend[:k], qlo[:k], qhi[:k])
             retry = np.concatenate([np.array([o.retry for o in pre[:k]], dtype=bool), retry_new[q:k]])
             columns = {
                 "t_request_end_ns": qend[:k], "t_response_start_ns": t_start[a], "station": qaddr[:k].astype(np.uint8),
