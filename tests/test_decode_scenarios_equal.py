@@ -4,8 +4,10 @@ The record-by-record ``Decoder.feed`` path is the reference: it frames one read 
 with the sequential framer and pairs one frame at a time. ``feed_batch`` (the bulk walk,
 the timeline's columns, pairing in columns, the lazily built tables) must give exactly its
 tables, however the records are cut into batches: as the simulator writes them, in
-one-second blocks (a recording's flush) and in blocks of a few records. Check values: the
-project's own reference path (no outside source).
+one-second blocks (a recording's flush) and in blocks of a few records.
+
+Source: no value from outside the project is checked here; the reference is the project's own
+record-by-record path (the independent-stack checks are in tests/test_oracle_stack.py).
 """
 
 import numpy as np

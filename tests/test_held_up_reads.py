@@ -7,6 +7,10 @@ under 1 ms, sometimes several ms on a loaded machine". A read held up by several
 bytes before and after it look a silence apart. The Modbus serial-line rule it would break:
 a silence over 1.5 character times inside a frame (MSL V1.02 p13, t1.5; fixed 750 us above
 19200 baud). A true pause inside a frame must still be reported.
+
+Source: Modbus over Serial Line Specification and Implementation Guide V1.02, section 2.5.1.1
+(t1.5, t3.5; 750 us / 1.75 ms above 19200 baud); the latency-timer behaviour of USB adapters is
+common practice as shared/TIMING.md models it.
 """
 
 import numpy as np
