@@ -151,8 +151,12 @@ def decoder_state(decoder) -> str | None:
         # the held records (relative positions below, their times and floors as they are); the storage
         # layout (_ints/_floors capacity, _lo/_n) depends on history and decides nothing
         timeline = {k: v for k, v in vars(tl).items()
-                    if k not in ("starts", "lasts", "_next_pos", "contradictions", "_ints", "_floors", "_lo", "_n")}
-        timeline["held"] = (tl.times.tolist(), tl.floors.tolist())
+                    if k not in ("starts", "lasts", "_next_pos", "contradictions", "_ints", "_floors", "_lo", "_n",
+                                 "_p_pos", "_p_t", "_p_prev")}
+        # the pending read by relative position; nan (none pending) compared as None
+        timeline["pending"] = (None if tl._p_t != tl._p_t else (tl._p_t, tl._p_prev, tl._p_pos - base))
+        timeline["held"] = (tl.times.tolist(), tl.floors.tolist(), tl.pre_floors.tolist(),
+                            (tl.windows - base).tolist())
         marks = {k: [v[0], v[1], bytes(v[2]), v[3] - base] for k, v in port._marks.items()}
         held = [(pos - base, t, _walk(msg, 0, set())) for pos, t, msg in port._held]
         rest = {k: v for k, v in vars(port).items()

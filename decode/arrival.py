@@ -52,8 +52,11 @@ class Timeline:
     _next_pos: int = 0
     _lo: int = 0  # first record still held
     _n: int = 0   # records stored (held ones are _lo.._n)
-    _ints: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), dtype=np.int64), repr=False)
-    _floors: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.float64), repr=False)
+    #: per record: first byte, last byte, read time, first byte of its floor's window, its read's last
+    #: byte (absolute; records returned at one instant are one read)
+    _ints: np.ndarray = field(default_factory=lambda: np.zeros((0, 5), dtype=np.int64), repr=False)
+    #: per record: earliest end of the bytes in its window, and of its bytes before the window (ns)
+    _floors: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.float64), repr=False)
 
     # -- storage ----------------------------------------------------------------------------------
     def _room(self, more: int) -> None:
@@ -67,8 +70,8 @@ class Timeline:
             self._floors[:held] = self._floors[self._lo:self._n]
         else:
             size = max(64, 2 * (held + more))
-            ints = np.zeros((size, 3), dtype=np.int64)
-            floors = np.zeros(size, dtype=np.float64)
+            ints = np.zeros((size, 5), dtype=np.int64)
+            floors = np.zeros((size, 2), dtype=np.float64)
             ints[:held] = self._ints[self._lo:self._n]
             floors[:held] = self._floors[self._lo:self._n]
             self._ints, self._floors = ints, floors
@@ -91,8 +94,24 @@ class Timeline:
 
     @property
     def floors(self) -> np.ndarray:
-        """Earliest end of each held record's bytes (ns)."""
-        return self._floors[self._lo:self._n]
+        """Earliest end of each held record's bytes in its window (ns)."""
+        return self._floors[self._lo:self._n, 0]
+
+    @property
+    def pre_floors(self) -> np.ndarray:
+        """Earliest end of each held record's bytes before its window (ns)."""
+        return self._floors[self._lo:self._n, 1]
+
+    @property
+    def read_ends(self) -> np.ndarray:
+        """Absolute position of the last byte of each held record's read."""
+        return self._ints[self._lo:self._n, 4]
+
+    @property
+    def windows(self) -> np.ndarray:
+        """Absolute position of the first byte of each held record's window: the bytes its read's
+        last packet may hold, which ended no earlier than its floor."""
+        return self._ints[self._lo:self._n, 3]
 
     def last_start(self) -> int:
         """Absolute position of the last record's first byte (the stream's end when none is held)."""
@@ -102,56 +121,157 @@ class Timeline:
         return self._n - self._lo
 
     # -- records in -------------------------------------------------------------------------------
-    def add(self, t_ns: int, n: int) -> float:
-        """Register a record of ``n`` bytes read at ``t_ns``; return the least silence before it (ns).
+    # A read is judged once the read after it is known: records returned at the same instant
+    # are parts of one read (a capture splits a read at a marked byte), and the next read's
+    # time bounds this one's packet (see _read_floors). Until then the last read is pending;
+    # the decoder frames nothing that touches it (decoder._Port._scan_end).
+    _p_t: float = float("nan")    # pending read: its time (nan: none yet)
+    _p_n: int = 0                  # its bytes so far
+    _p_rows: int = 0               # its records (the last rows stored)
+    _p_pos: int = 0                # absolute position of its first byte
+    _p_prev: float = float("nan")  # the time of the read before it
 
-        The silence bound is ``-inf`` for the first record and for untimed captures.
+    def add(self, t_ns: int, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Register a record of ``n`` bytes read at ``t_ns``; see :meth:`add_many`."""
+        return self.add_many(np.array([t_ns], dtype=np.int64), np.array([n], dtype=np.int64))
+
+    def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Register records (each with bytes, in time order); return the reads they complete.
+
+        Returns the absolute position of each completed read's first byte and the least
+        silence before it (ns; ``-inf`` where none can be shown: the first read, a read of
+        several packets, an untimed capture). The last read stays pending until a later
+        record or :meth:`finish` completes it.
         """
-        prev = self._last_t
-        start = self._next_pos
-        self._next_pos += n
-        self._last_t = t_ns
-        floor = t_ns - self.latency_ns - self.host_delay_ns
-        if prev is not None and n <= self.packet_bytes:
-            floor = max(floor, prev - self.host_delay_ns)
-        self._room(1)
-        k = self._n
-        self._ints[k] = (start, start + n - 1, t_ns)
-        self._floors[k] = floor
-        self._n = k + 1
-        if prev is None or self.untimed:
-            return float("-inf")
-        # TIMING.md: silence >= T_{i+1} - L - d - n·c - T_i
-        return t_ns - self.latency_ns - self.host_delay_ns - n * self.char_ns - prev
-
-    def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> np.ndarray:
-        """:meth:`add` for many records at once (all with bytes); returns the least silence before each."""
         count = t_ns.shape[0]
         if count == 0:
-            return np.zeros(0)
-        t = t_ns.astype(np.float64)
-        prev = np.empty(count)
-        prev[0] = np.nan if self._last_t is None else self._last_t
-        prev[1:] = t[:-1]
+            return np.zeros(0, dtype=np.int64), np.zeros(0)
+        t_ns = np.asarray(t_ns, dtype=np.int64)
+        n = np.asarray(n, dtype=np.int64)
         ends = self._next_pos + np.cumsum(n)
         starts = ends - n
-        floor = t - self.latency_ns - self.host_delay_ns
-        one_packet = (n <= self.packet_bytes) & ~np.isnan(prev)
-        floor[one_packet] = np.maximum(floor[one_packet], prev[one_packet] - self.host_delay_ns)
-        silence = t - self.latency_ns - self.host_delay_ns - n * self.char_ns - prev
-        silence[np.isnan(prev)] = -np.inf
-        if self.untimed:
-            silence[:] = -np.inf
         self._room(count)
         k = self._n
         self._ints[k:k + count, 0] = starts
         self._ints[k:k + count, 1] = ends - 1
         self._ints[k:k + count, 2] = t_ns
-        self._floors[k:k + count] = floor
+        self._ints[k:k + count, 3] = starts
+        self._ints[k:k + count, 4] = ends - 1
+        self._floors[k:k + count] = t_ns[:, None] - self.latency_ns - self.host_delay_ns  # until judged
         self._n = k + count
         self._next_pos = int(ends[-1])
         self._last_t = int(t_ns[-1])
-        return silence
+        t = t_ns.astype(np.float64)
+        prev = np.empty(count)
+        prev[0] = self._p_t
+        prev[1:] = t[:-1]
+        opens = np.flatnonzero(t != prev)  # records that begin a new read
+        pending = not np.isnan(self._p_t)
+        # reads: the pending one (if any) first, then the new ones
+        g_first = opens if not pending or (opens.size and opens[0] == 0) else np.r_[0, opens]
+        g_t = t[g_first]
+        g_n = np.add.reduceat(n, g_first) if g_first.size else np.zeros(0, dtype=np.int64)
+        g_rows = np.diff(np.r_[g_first, count])
+        g_pos = starts[g_first]
+        carry = pending and not (opens.size and opens[0] == 0)
+        if pending:
+            if carry:  # the first records continue the pending read
+                g_n[0] += self._p_n
+                g_rows[0] += self._p_rows
+                g_pos[0] = self._p_pos
+                g_prev0 = self._p_prev
+            else:  # the pending read is complete: it leads the list
+                g_t = np.r_[self._p_t, g_t]
+                g_n = np.r_[self._p_n, g_n]
+                g_rows = np.r_[self._p_rows, g_rows]
+                g_pos = np.r_[self._p_pos, g_pos]
+                g_prev0 = self._p_prev
+        else:
+            g_prev0 = float("nan")
+        g_prev = np.empty(g_t.shape[0])
+        g_prev[0] = g_prev0
+        g_prev[1:] = g_t[:-1]
+        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, complete=g_t.shape[0] - 1)
+        self._store(g_rows, g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
+        self._p_t, self._p_n, self._p_rows = float(g_t[-1]), int(g_n[-1]), int(g_rows[-1])
+        self._p_pos, self._p_prev = int(g_pos[-1]), float(g_prev[-1])
+        return g_pos[:-1], silence[:-1]
+
+    def pending_start(self) -> int:
+        """Absolute position of the pending read's first byte (the stream's end when none is pending)."""
+        return self._next_pos if np.isnan(self._p_t) else self._p_pos
+
+    def finish(self) -> tuple[np.ndarray, np.ndarray]:
+        """End of input: complete the pending read (nothing follows to bound it); as :meth:`add_many`."""
+        if np.isnan(self._p_t):
+            return np.zeros(0, dtype=np.int64), np.zeros(0)
+        g_t, g_n, g_prev = np.array([self._p_t]), np.array([self._p_n]), np.array([self._p_prev])
+        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, complete=0)
+        g_pos = np.array([self._p_pos])
+        self._store(np.array([self._p_rows]), g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
+        pos = np.array([self._p_pos], dtype=np.int64)
+        self._p_t, self._p_n, self._p_rows = float("nan"), 0, 0
+        return pos, silence
+
+    def _store(self, g_rows: np.ndarray, g_window: np.ndarray, g_end: np.ndarray, fw: np.ndarray,
+               fpre: np.ndarray) -> None:
+        """Write each read's window and floors into its records (the last ``g_rows.sum()`` stored)."""
+        first_row = self._n - int(g_rows.sum())
+        skip = max(first_row, self._lo) - first_row
+        rows = slice(first_row + skip, self._n)
+        self._ints[rows, 3] = np.repeat(g_window, g_rows)[skip:]
+        self._ints[rows, 4] = np.repeat(g_end, g_rows)[skip:]
+        self._floors[rows, 0] = np.repeat(fw, g_rows)[skip:]
+        self._floors[rows, 1] = np.repeat(fpre, g_rows)[skip:]
+
+    def _read_floors(self, g_t: np.ndarray, g_n: np.ndarray, g_prev: np.ndarray,
+                     complete: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Floors, window length and the least silence before each read (TIMING.md).
+
+        Returns, per read: the earliest end of the bytes in its window, the earliest end of its
+        bytes before the window, the window's length (its last bytes), and the least silence
+        before it (ns).
+
+        The first ``complete`` reads have the read after them in the list, and that read's time
+        bounds this one's last packet: with fewer than ``P`` bytes the next read held only timer
+        packets, and the timer restarts after every packet, so this read's packet left at least
+        ``L`` before the next read returned. A read the host held up beyond the usual delay
+        ``d`` so bounds from its effective time ``min(T, T_next - L)``, not from when it came
+        back (its last packet then taken to be the one before the next read's: common
+        practice for continuous traffic, where a data packet leaves on every timer expiry).
+
+        The bytes of one packet ended within one latency period, so a read can be one packet
+        only if its bytes fit in it (``n·c <= L + c``, and ``n <= P``). Then all its bytes are
+        taken to have ended after its floor (the window is the whole read), a held-up read's
+        too: a host stalled across a timer expiry with bytes waiting would merge two packets
+        that fit in one, which no timestamp shows (the likely case is taken, as for every
+        read; a first try that took such reads as several packets left the request ends of a
+        16 ms adapter tens of milliseconds off, tests/test_decode_oracle.py). A read of more
+        may hold several packets: only its last byte is known to have ended after the floor
+        (a full-buffer read: its last ``P``), and its earlier bytes only after the read before
+        it (the pre-window floor, ``T_prev - d``).
+        """
+        L, d, c, P = self.latency_ns, self.host_delay_ns, self.char_ns, self.packet_bytes
+        m = g_t.shape[0]
+        eff = g_t.copy()
+        if m > 1 and complete:
+            nxt_t = g_t[1:complete + 1]
+            timer = g_n[1:complete + 1] < P
+            eff[:complete] = np.where(timer, np.minimum(g_t[:complete], nxt_t - L), g_t[:complete])
+        has_prev = ~np.isnan(g_prev)
+        one_packet = (g_n <= P) & (g_n * c <= L + c)
+        fw = eff - L - d
+        lift = one_packet & has_prev
+        fw[lift] = np.maximum(fw[lift], g_prev[lift] - d)
+        # before the window: after the read before it; the first read of all, after a packet per byte
+        fpre = np.where(has_prev, g_prev - d, fw - (g_n + 1) * L)
+        fpre = np.minimum(fpre, fw)
+        wlen = np.where(one_packet, g_n, np.where(g_n > P, P, 1)).astype(np.int64)
+        silence = eff - L - d - g_n * c - g_prev
+        silence[~has_prev] = -np.inf
+        if self.untimed:
+            silence[:] = -np.inf
+        return fw, fpre, wlen, silence
 
     def drop_before(self, pos: int) -> None:
         """Forget records whose bytes all lie before absolute position ``pos``."""
@@ -189,73 +309,67 @@ class Timeline:
     # -- bounds -----------------------------------------------------------------------------------
     def end_bounds(self, first: int, last: int) -> tuple[int, int]:
         """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``."""
-        c = self.char_ns
-        all_starts = self.starts
-        i = max(0, int(np.searchsorted(all_starts, first, "right")) - 1)
-        j = int(np.searchsorted(all_starts, last, "right"))
-        lo = float("-inf")
-        hi = _INF
-        own = (float("-inf"), _INF)
-        p = self.packet_bytes
-        if j > i:
-            rows = self._ints[self._lo + i:self._lo + j].tolist()
-            floors = self._floors[self._lo + i:self._lo + j].tolist()
-            for (start, end, t), floor in zip(rows, floors):
-                k0 = max(first, start, end - p + 1)
-                if k0 <= last:
-                    lo = max(lo, floor + (last - k0) * c)
-                    own = (floor, float(t))
-                else:
-                    lo = max(lo, floor - (k0 - last) * c)
-                    own = (floor - (k0 - last) * c, float(t))
-                hi = min(hi, t + (last - end) * c)
-        if self.untimed or lo == float("-inf"):
-            lo = hi
-        elif lo > hi:
-            # the carried bounds crossed: widen to the byte's own record, never to a point
-            self.contradictions += 1
-            lo, hi = min(own[0], hi), own[1]
-        return round(lo), round(hi)
+        lo, hi = self.end_bounds_many(np.array([first], dtype=np.int64), np.array([last], dtype=np.int64))
+        return int(lo[0]), int(hi[0])
 
     def end_bounds_many(self, first: np.ndarray, last: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`end_bounds` for many frames (absolute positions, in stream order).
+        """Interval for the end of each frame's last byte (absolute positions, in stream order).
 
-        Only the records the frames span are read, so the cost follows the frames.
+        Every record the frame touches bounds it, the frame's bytes being back to back: its
+        read time from above (less a character per byte after), its floors from below (the
+        window's floor from the first window byte in the frame, the pre-window floor from the
+        frame's first byte in the record). Only the records the frames span are read, so the
+        cost follows the frames.
         """
+        first = np.asarray(first, dtype=np.int64)
+        last = np.asarray(last, dtype=np.int64)
         all_starts = self.starts
+        if first.size == 0:
+            z = np.zeros(0, dtype=np.int64)
+            return z, z
+        if all_starts.size == 0:
+            raise ValueError("no record holds these bytes")
         a = max(0, int(np.searchsorted(all_starts, first[0], "right")) - 1)
         b = int(np.searchsorted(all_starts, last[-1], "right"))
         starts = all_starts[a:b]
         lasts = self.lasts[a:b]
         times = self.times[a:b].astype(np.float64)
-        floors = self.floors[a:b]
+        fw = self.floors[a:b]
+        fpre = self.pre_floors[a:b]
+        ws = self.windows[a:b]
         c = self.char_ns
         ra = np.maximum(np.searchsorted(starts, first, "right") - 1, 0)
-        rb = np.searchsorted(starts, last, "right") - 1
+        rb = np.maximum(np.searchsorted(starts, last, "right") - 1, 0)
         e = last.astype(np.float64)
         # Latest end: every record's last byte ended by its read time; min over the frame's records.
         h = np.append(times - lasts * c, np.inf)
         hi = np.minimum.reduceat(h, np.ravel(np.column_stack((ra, rb + 1))))[::2] + e * c
-        # Earliest end, first record: its bytes from the frame's first (or the last P) on.
-        k0 = np.maximum(first, lasts[ra] - self.packet_bytes + 1)
-        lo = floors[ra] + (e - k0) * c
-        # Later records lie wholly inside the frame.
-        more = rb > ra
-        if more.any():
-            g = np.append(floors - np.maximum(starts, lasts - self.packet_bytes + 1) * c, -np.inf)
-            sel = np.flatnonzero(more)
-            idx = np.ravel(np.column_stack((ra[sel] + 1, rb[sel] + 1)))
-            lo[sel] = np.maximum(lo[sel], np.maximum.reduceat(g, idx)[::2] + e[sel] * c)
+
+        def bound(r: np.ndarray, k0: np.ndarray, kl: np.ndarray, ee: np.ndarray) -> np.ndarray:
+            w = np.maximum(k0, ws[r])
+            win = np.where(kl >= ws[r], fw[r] + (ee - w) * c, -np.inf)
+            return np.maximum(win, fpre[r] + (ee - k0) * c)
+
+        first_k0 = np.maximum(first, starts[ra])
+        lo = bound(ra, first_k0, np.minimum(last, lasts[ra]), e)
+        more = np.flatnonzero(rb > ra)
+        if more.size:
+            r = rb[more]
+            lo[more] = np.maximum(lo[more], bound(r, starts[r], last[more], e[more]))
+            mid = more[rb[more] - ra[more] >= 2]
+            if mid.size:
+                g = np.append(np.maximum(fw - np.maximum(starts, ws) * c, fpre - starts * c), -np.inf)
+                idx = np.ravel(np.column_stack((ra[mid] + 1, rb[mid])))
+                lo[mid] = np.maximum(lo[mid], np.maximum.reduceat(g, idx)[::2] + e[mid] * c)
         if self.untimed:
             lo = hi.copy()
         else:
             crossed = np.flatnonzero(lo > hi)
             if crossed.size:
-                # as in end_bounds: the byte's own record, without any pitch
+                # the carried bounds crossed: the byte's own record, without any pitch, never a point
                 self.contradictions += int(crossed.size)
                 j = rb[crossed]
-                k0j = np.maximum(np.maximum(first[crossed], starts[j]), lasts[j] - self.packet_bytes + 1)
-                own_lo = floors[j] - np.maximum(k0j - last[crossed], 0) * c
+                own_lo = np.where(last[crossed] >= ws[j], fw[j], fpre[j])
                 lo[crossed] = np.minimum(own_lo, hi[crossed])
                 hi[crossed] = times[j]
         return np.rint(lo).astype(np.int64), np.rint(hi).astype(np.int64)

@@ -162,13 +162,7 @@ class _Port:
             self._scan(False, out)
             self.scanner.add_boundary(len(self.buf))
         if data:
-            start = self.base + len(self.buf)
-            silence = self.timeline.add(t_ns, len(data))
-            if silence > self.t35_ns and self.cuts:
-                self.scanner.add_boundary(len(self.buf))
-            if silence > self.t15_ns:
-                self.silence_at.append(start)
-                self.silence_ns.append(silence)
+            self._silences(*self.timeline.add(t_ns, len(data)))
             if flags & FLAG_LINE_ERROR and self.marking:
                 for k in range(len(self.buf), len(self.buf) + len(data)):
                     self.scanner.add_mark(k)
@@ -178,7 +172,20 @@ class _Port:
     def flush(self, out: list) -> None:
         for kind in list(self._marks):
             self._close_mark(kind)
+        self._silences(*self.timeline.finish())
         self._scan(True, out)
+
+    def _silences(self, pos: np.ndarray, silence: np.ndarray) -> None:
+        """Boundaries and silences before the reads the timeline has just judged (absolute ``pos``)."""
+        if not pos.size:
+            return
+        if self.cuts:
+            for k in pos[silence > self.t35_ns].tolist():
+                self.scanner.add_boundary(k - self.base)
+        over = silence > self.t15_ns
+        if over.any():
+            self.silence_at.extend(pos[over].tolist())
+            self.silence_ns.extend(silence[over].tolist())
 
     def marks(self, t_ns: int, data: bytes, flags: int) -> None:
         """Turn record flags into events; consecutive marked records make one event with all their bytes.
@@ -279,21 +286,12 @@ class _Port:
         A piece is a list of ``(key, message)`` pairs from the sequential framer or a
         :class:`BulkRun` from the protocol's bulk path.
         """
-        offsets = len(self.buf) + np.cumsum(n) - n
-        silence = self.timeline.add_many(t_ns, n)
-        for i in np.flatnonzero(silence > self.t35_ns).tolist():
-            self.scanner.add_boundary(int(offsets[i]))
-        for i in np.flatnonzero(silence > self.t15_ns).tolist():
-            self.silence_at.append(self.base + int(offsets[i]))
-            self.silence_ns.append(float(silence[i]))
+        self._silences(*self.timeline.add_many(t_ns, n))
         self.buf.extend(payload)
         self._scan_bulk(pieces)
 
     def _scan_bulk(self, pieces: list) -> None:
-        end = self._scan_end()
-        self._scan_bulk_to(end, pieces)
-        if end < len(self.buf) and self.scanner.pos >= end:
-            self._scan_bulk_to(len(self.buf), pieces)  # as in _scan: nothing runs across that silence
+        self._scan_bulk_to(self._scan_end(), pieces)
         self._trim()
 
     def _scan_bulk_to(self, end: int, pieces: list) -> None:
@@ -390,27 +388,21 @@ class _Port:
                                                run.lens.tolist())]
 
     def _scan_end(self) -> int:
-        """Where the framer stops first: the whole buffer, or the start of a last record with a
-        silence over t1.5 before it.
+        """Where the framer stops: the start of the last read, which the timeline has yet to judge.
 
-        Whether that silence was on the wire or only a read the host held up, the next read
-        tells (Timeline.held_up); so a frame running across it is settled only once that read
-        is known, however the records are cut into calls. When the framer gets to that start
-        with nothing open, no frame runs across it and the rest is framed at once.
+        A read is bounded by the read after it (Timeline.add_many: a read held up in the host,
+        the parts of one read), so a frame touching the last read waits for the next record,
+        however the records are cut into calls; :meth:`flush` frames the rest. An untimed
+        capture has no times to judge and is framed to the end.
         """
-        n = len(self.buf)
-        if not self.silence_at or not self.cuts or self.untimed:
-            return n
-        last = self.timeline.last_start()
-        return last - self.base if self.silence_at[-1] == last else n
+        if self.untimed:
+            return len(self.buf)
+        return max(0, self.timeline.pending_start() - self.base)
 
     def _scan(self, final: bool, out: list) -> None:
         spans: list[Span] = []
         end = len(self.buf) if final else self._scan_end()
         self.scanner.scan(self.buf, end, final, spans)
-        if end < len(self.buf) and self.scanner.pos >= end:
-            # nothing runs across the silence before the last record: no need to wait for the next
-            self.scanner.scan(self.buf, len(self.buf), final, spans)
         for span in spans:
             out.extend(self._span_items(span))
         out.extend(self._held_before(None if final else self.base + self.scanner.settled, settled=True))

@@ -14,6 +14,7 @@ import pytest
 from buswitness.decode import Decoder, DecoderConfig
 from buswitness.decode.protocols.profibus_dp import fdl
 from buswitness.decode.protocols.profibus_dp.scanner import FdlScanner, split_telegrams
+from buswitness.decode.tables import DecodeOutput
 from buswitness.serial import SerialFormat
 
 pf = pytest.importorskip("pyprofibus.fdl")
@@ -190,9 +191,9 @@ def test_tables_carry_the_protocol_neutral_columns():
         t += int(len(raw) * c) + 200_000
         recs.append(Record(0, t, raw))
     dec = Decoder(DecoderConfig(serial=fmt, protocol="profibus-dp", latency_ms={0: 0.1}))
-    out = [dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()]
-    frames = [o.frames for o in out if len(o.frames)][0]
-    tx = [o.transactions for o in out if len(o.transactions)][0]
+    # the last read is framed once the input ends (a read waits for the one after it)
+    out = DecodeOutput.concat([dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()])
+    frames, tx = out.frames, out.transactions
     assert frames["protocol"].astype(str).tolist() == ["profibus-dp"] * 3
     assert frames["source"].tolist() == [2, 5, 2] and frames["destination"].tolist() == [5, 2, 3]
     assert frames["service"].tolist() == ["SRD_high:set_param", "no_resource", "token"]
@@ -214,9 +215,8 @@ def test_modbus_tables_carry_the_same_neutral_columns():
         t += int(len(raw) * c) + 5_000_000
         recs.append(Record(0, t, raw))
     dec = Decoder(DecoderConfig(serial=fmt, latency_ms={0: 0.1}))
-    out = [dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()]
-    frames = [o.frames for o in out if len(o.frames)][0]
-    tx = [o.transactions for o in out if len(o.transactions)][0]
+    out = DecodeOutput.concat([dec.feed_batch(RecordBatch.from_records(recs)), dec.flush()])
+    frames, tx = out.frames, out.transactions
     assert frames["source"].tolist() == [-1, 7] and frames["destination"].tolist() == [7, -1]
     assert frames["protocol"].astype(str).tolist() == ["modbus-rtu"] * 2
     row = tx.iloc[0]
