@@ -110,6 +110,15 @@ def tx_row(t0_ns: int, t_req_ns: int, station: int, function: int, outcome: str,
             "request_hex": bytes(request).hex(" "), "response_hex": bytes(response).hex(" ")}
 
 
+class _Pending:
+    """A row of the block being added, by its index, until the example heaps are settled."""
+
+    __slots__ = ("index",)
+
+    def __init__(self, index: int) -> None:
+        self.index = index
+
+
 @dataclass
 class Accumulator:
     """Everything the analysis keeps while the capture streams past; ``merge`` adds two together."""
@@ -352,25 +361,31 @@ class Accumulator:
                   timed: np.ndarray, t_req: np.ndarray) -> None:
         cols = ("t_request_end_ns", "station", "function", "outcome", "response_ms", "response_ms_low",
                 "response_ms_high", "exception_code", "retry", "request_raw", "response_raw")
-        arrays: dict = {}
 
-        def row(i: int) -> dict:
-            if not arrays:
-                arrays.update({c: tx[c].to_numpy(dtype=object) for c in cols})
-            return tx_row(self.t0_ns, *(arrays[c][i] for c in cols))
+        def rows_of(index: list[int]) -> list[dict]:
+            """The listed rows of this block as plain dicts (only the rows an example keeps)."""
+            if not index:
+                return []
+            take = np.asarray(index, np.int64)
+            values = [tx[c].to_numpy()[take].tolist() for c in cols]
+            return [tx_row(self.t0_ns, *vals) for vals in zip(*values)]
 
+        # the heaps hold (value, order, row); a row of this block enters as its index and becomes a
+        # dict only if it is still held at the end of the block (most are pushed out again)
+        pending: list[list] = []
         for st in np.unique(station[timed]):
             heap = self.worst.setdefault(int(st), [])
             floor = heap[0][0] if len(heap) >= WORST_PER_STATION else -np.inf
             idx = np.flatnonzero(timed & (station == st) & (rt > floor))
             top = idx[np.argsort(rt[idx])[-WORST_PER_STATION:]]
-            for i in top:
+            for i in top.tolist():
                 self._seq += 1
-                item = (float(rt[i]), self._seq, row(int(i)))
+                item = (float(rt[i]), self._seq, _Pending(i))
                 if len(heap) < WORST_PER_STATION:
                     heapq.heappush(heap, item)
                 elif item[0] > heap[0][0]:
                     heapq.heapreplace(heap, item)
+            pending.append(heap)
         in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
         for st in np.unique(station[in_time]):
             heap = self.slow.setdefault(int(st), [])
@@ -380,26 +395,31 @@ class Accumulator:
                 cut = idx[np.argsort(rt[idx], kind="stable")[:-SLOW_KEEP]]
                 self.slow_dropped[st] = max(self.slow_dropped[st], float(rt[cut].max()))
                 idx = np.setdiff1d(idx, cut)
-            for i in idx:
+            for i in idx.tolist():
                 self._seq += 1
-                item = (float(rt[i]), self._seq, row(int(i)))
+                item = (float(rt[i]), self._seq, _Pending(i))
                 if len(heap) < SLOW_KEEP:
                     heapq.heappush(heap, item)
                 else:
                     gone = heapq.heappushpop(heap, item)
                     self.slow_dropped[st] = max(self.slow_dropped[st], gone[0])
+            pending.append(heap)
+        held = [(heap, j) for heap in pending for j, item in enumerate(heap) if type(item[2]) is _Pending]
+        made = rows_of([heap[j][2].index for heap, j in held])
+        for (heap, j), row in zip(held, made):
+            heap[j] = (heap[j][0], heap[j][1], row)  # the same keys: the heap order holds
         failed = np.isin(outcome, [_OUTCOME_INDEX["timeout"], _OUTCOME_INDEX["corrupt"]])
         for st in np.unique(station[failed]):
             kept = self.failures.setdefault(int(st), [])
             room = FAILURES_PER_STATION - len(kept)
             if room > 0:
-                kept.extend(row(int(i)) for i in np.flatnonzero(failed & (station == st))[:room])
+                kept.extend(rows_of(np.flatnonzero(failed & (station == st))[:room].tolist()))
         late = outcome == _OUTCOME_INDEX["late"]
         for st in np.unique(station[late]):
             kept = self.late_rows.setdefault(int(st), [])
             room = min(LATE_CAP - len(kept), LATE_TOTAL_CAP - sum(len(v) for v in self.late_rows.values()))
             if room > 0:
-                kept.extend(row(int(i)) for i in np.flatnonzero(late & (station == st))[:room])
+                kept.extend(rows_of(np.flatnonzero(late & (station == st))[:room].tolist()))
         ident = np.isin(tx["function"].to_numpy(np.int64), [0x11, 0x2B]) & np.isin(
             outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["late"]])
         for i in np.flatnonzero(ident):

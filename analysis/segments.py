@@ -33,8 +33,11 @@ import numpy as np
 import pandas as pd
 from buswitness.records import RecordBatch
 
-#: Records per step: the unit in which two decodes of an overlap are compared.
-STEP_RECORDS = 4096
+#: Records per step (at most, from one block; blocks are joined up to it): the unit in which two
+#: decodes of an overlap are compared.
+STEP_RECORDS = 1 << 14
+#: ... or this many bytes of payload, whichever comes first (as the one-pass decode joins blocks).
+STEP_BYTES = 1 << 20
 #: Bytes of records a segment's decoder sees before its cut (its warm-up).
 WARM_BYTES = 2 << 20
 #: ... or this share of the capture when that is more (1/16: about 3 % more decoding on two cores).
@@ -168,8 +171,16 @@ def decoder_state(decoder) -> str | None:
 
 
 def steps(reader) -> Iterator[tuple[int, int, RecordBatch]]:
-    """(step index, place in the file before it, records) over the whole capture, the same in every process."""
+    """(step index, place in the file before it, records) over the whole capture, the same in every process.
+
+    A block larger than ``STEP_RECORDS`` is cut; smaller consecutive blocks (a recording writes
+    one a second) are joined up to ``STEP_RECORDS`` records or ``STEP_BYTES`` bytes, as the
+    one-pass decode joins them (decode/decoder.py ``joined_batches``): the decoder's cost is per
+    call, and a step is also the unit the overlap digests are compared in.
+    """
     i = pos = 0
+    pending: list[RecordBatch] = []
+    start = count = size = 0
     for batch in reader.iter_batches():
         n = len(batch)
         if not n:
@@ -179,10 +190,19 @@ def steps(reader) -> Iterator[tuple[int, int, RecordBatch]]:
             b = min(a + STEP_RECORDS, n)
             p0 = int(ends[a - 1]) if a else 0
             p1 = int(ends[b - 1])
-            yield i, pos, RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b], batch.flags[a:b],
-                                      batch.payload[p0:p1])
+            if not pending:
+                start = pos
+            pending.append(RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b], batch.flags[a:b],
+                                       batch.payload[p0:p1]))
+            count += b - a
+            size += p1 - p0
             pos += (b - a) * _RECORD_BYTES + (p1 - p0)
-            i += 1
+            if count >= STEP_RECORDS or size >= STEP_BYTES:
+                yield i, start, pending[0] if len(pending) == 1 else RecordBatch.concat(pending)
+                i += 1
+                pending, count, size = [], 0, 0
+    if pending:
+        yield i, start, pending[0] if len(pending) == 1 else RecordBatch.concat(pending)
 
 
 @dataclass
@@ -211,7 +231,7 @@ class Plan:
 class SegmentResult:
     k: int
     figures: object = None
-    head: dict = field(default_factory=dict)   #: step -> digest, from the warm start to the end of the overlap
+    head: dict = field(default_factory=dict)   #: step -> digest, from half-way through the warm-up to the overlap's end
     tail: dict = field(default_factory=dict)   #: the same for the next segment's overlap
     agree_from: int = -1                        #: first step the head must agree from
     contradictions: dict = field(default_factory=dict)
@@ -271,12 +291,14 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
                     out.rises.append((i, now))
             step_contra = tuple(sorted((p, n - before.get(p, 0)) for p, n in after.items() if n != before.get(p, 0)))
             in_head = k and (state["cut"] is None or i < state["cut"] + OVER_STEPS)
-            in_tail = not last and pos >= plan.warm(k + 1)
-            if in_head or in_tail:
+            # digests only where the seam compares them: from half-way through the warm-up
+            head_digest = in_head and out.agree_from >= 0
+            tail_digest = not last and pos >= plan.agree_from(k + 1)
+            if head_digest or tail_digest:
                 digest = output_digest(result, step_contra)
-                if in_head:
+                if head_digest:
                     out.head[i] = digest
-                if in_tail:
+                if tail_digest:
                     out.tail[i] = digest
             if k and state["cut"] is not None and i == state["cut"] + OVER_STEPS - 1:
                 out.head_state, out.head_slowest, out.handover = decoder_state(decoder), slowest_answers(decoder), i
