@@ -258,18 +258,60 @@ def _decoded(source, cfg, on_batch: Callable[[int], None], contradictions: list 
         contradictions.extend((p, port.timeline.contradictions) for p, port in sorted(decoder.ports.items()))
 
 
+class ReadOnce:
+    """An imported source (hex text, raw bytes) parsed once for both passes of an analysis.
+
+    The delivery sample's batches (at most ``DELIVERY_SAMPLE_RECORDS`` records) are kept and
+    handed to the analysis pass first, then the rest of the same reading: parsing text costs as
+    much as decoding it, and a second parse of the sample would double it for an hour's log.
+    The damage report is the source's own, filled once as the lines are read.
+    """
+
+    def __init__(self, source) -> None:
+        self._source = source
+        self._rest = iter(source.iter_batches())
+        self._head: list = []
+        self._handed = False
+
+    def __getattr__(self, name: str):
+        return getattr(self._source, name)
+
+    def sample_batches(self) -> Iterator:
+        """The batches from the start, read on as far as the caller goes (all kept)."""
+        yield from list(self._head)
+        for batch in self._rest:
+            self._head.append(batch)
+            yield batch
+
+    def iter_batches(self) -> Iterator:
+        if self._handed:
+            raise RuntimeError("this source is read once: open the capture again to read it again")
+        self._handed = True
+        head, self._head = self._head, []
+        yield from head
+        yield from self._rest
+
+
+def _reads_cheaply(source) -> bool:
+    """True for a capture file (reading it twice costs little); an importer parses text (ReadOnce)."""
+    from buswitness.capture.fileformat import CaptureReader
+    return isinstance(source, (CaptureReader, ReadOnce)) or not hasattr(source, "iter_batches")
+
+
 def _sample_records(source, limit: int) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     """Read times and sizes of the first ``limit`` records with bytes, per port (a first pass).
 
-    The source's damage report is left as it was: the analysis pass reads everything again.
+    The source's damage report is left as it was: the analysis pass reads everything again
+    (a :class:`ReadOnce` source keeps the batches read here for it, and its report as read).
     """
     from buswitness.capture.fileformat import FLAG_UNTIMED
-    report = getattr(source, "report", None)
+    once = isinstance(source, ReadOnce)
+    report = None if once else getattr(source, "report", None)
     saved = copy.deepcopy(report)
     t: dict[int, list] = {}
     n: dict[int, list] = {}
     seen = 0
-    batches = source.iter_batches()
+    batches = source.sample_batches() if once else source.iter_batches()
     try:
         for batch in batches:
             keep = (batch.length > 0) & ((batch.flags & FLAG_UNTIMED) == 0)
@@ -350,6 +392,8 @@ def analyze(source, options: AnalysisOptions | None = None, sinks: Sequence = ()
         if progress is not None:
             progress(total or 0, total)
         return _finish(_from_cache(source, options, cache, paths, sinks), cache)
+    if not _reads_cheaply(source):
+        source = ReadOnce(source)
     delivery = assess_delivery(source, protocol=options.protocol)
     header, decoding = delivery_headers(source.header, delivery)
     cfg = DecoderConfig.from_header(decoding, port_roles=options.port_roles, protocol=options.protocol)

@@ -143,3 +143,59 @@ def test_line_at_a_time_reading_equals_the_token_rules(tmp_path, seed):
     assert got == want
     assert src.report.warnings[:len(warnings)] == warnings[:MAX_LINE_WARNINGS]
     assert src.report.lines_skipped == ref.report.lines_skipped and src.report.bytes_skipped == ref.report.bytes_skipped
+
+
+def test_an_imported_log_is_parsed_once_and_analyses_as_when_read_twice(tmp_path, monkeypatch):
+    """The delivery sample and the analysis share one reading of a text log (pipeline.ReadOnce):
+    the same figures as two readings, the damage report counted once, the parser run once."""
+    from buswitness.analysis import pipeline
+    from buswitness.analysis.summary import summary_dict
+    from buswitness.simulate import load_scenario, simulate
+    sim = simulate(load_scenario("pumpstation"), duration_s=120, seed=3)
+    lines = ["# baud: 19200", "# format: 8E1", "# latency_ms: 16", "0.0 zz 01"]  # one bad line, skipped
+    for b in sim.batches():
+        for r in b.records():
+            if r.data:
+                lines.append(f"{(r.t_ns - sim.header.start_monotonic_ns) / 1e9:.6f} {r.data.hex(' ')}")
+    p = tmp_path / "night.hex"
+    p.write_text("\n".join(lines) + "\n")
+    once = open_capture(p, kind="hex", on_bad_line="skip")
+    calls = []
+    real = type(once).iter_batches
+
+    def counted(self):
+        calls.append(1)
+        return real(self)
+
+    monkeypatch.setattr(type(once), "iter_batches", counted)
+    got = pipeline.analyze(once, pipeline.AnalysisOptions(progress=False, cache=False))
+    assert len(calls) == 1
+    monkeypatch.setattr(pipeline, "_reads_cheaply", lambda source: True)  # the two-reading path, as before
+    twice = open_capture(p, kind="hex", on_bad_line="skip")
+    ref = pipeline.analyze(twice, pipeline.AnalysisOptions(progress=False, cache=False))
+    assert len(calls) == 3
+    assert once.report.lines_skipped == twice.report.lines_skipped == 1
+    assert got.bus.frames == ref.bus.frames > 0
+    a, b = summary_dict(got), summary_dict(ref)
+    a.pop("analysed_utc", None), b.pop("analysed_utc", None)
+    assert a == b
+
+
+def test_a_log_read_once_hands_on_the_sample_then_the_rest(tmp_path, monkeypatch):
+    """A sample that stops part-way: the analysis pass gets its batches again, then the rest, once."""
+    from buswitness.analysis.pipeline import ReadOnce
+    from buswitness.capture import importers
+    monkeypatch.setattr(importers, "BATCH_RECORDS", 3)
+    p = tmp_path / "many.hex"
+    p.write_text("".join(f"{k / 100:.2f} {k % 256:02x} 01\n" for k in range(20)))
+    ro = ReadOnce(open_capture(p, kind="hex"))
+    sample = ro.sample_batches()
+    first = [next(sample), next(sample)]
+    sample.close()
+    assert sum(len(b) for b in first) == 6
+    got = [r for b in ro.iter_batches() for r in b.records()]
+    want = [r for b in open_capture(p, kind="hex").iter_batches() for r in b.records()]
+    assert [(r.t_ns, r.data) for r in got] == [(r.t_ns, r.data) for r in want]
+    assert len(got) == 20
+    with pytest.raises(RuntimeError):
+        next(iter(ro.iter_batches()))
