@@ -301,12 +301,16 @@ class _Port:
         arr = np.frombuffer(buf, dtype=np.uint8)
         # The bulk path never runs a frame across a certain silence or a silence over t1.5:
         # those frames need the sequential framer's judgement and events.
-        stops = np.array(sorted(set(sc.boundaries) | {k - self.base for k in self.silence_at}), dtype=np.int64)
-        # A silence stop the read after it explains as a held-up read (Timeline.held_up) does not
-        # stop a frame (that read is always known: _scan_end); a scanner boundary always does.
+        silences = np.asarray(self.silence_at, dtype=np.int64) - self.base
+        stops = np.union1d(np.asarray(sc.boundaries, dtype=np.int64), silences)
+        # A silence the read after it explains as a held-up read (Timeline.held_up) does not stop
+        # a frame (that read is always known: _scan_end), whether or not it was long enough to be
+        # a boundary: the sequential framer matches a frame across a boundary when its check holds,
+        # and _item forgives the same silences. A boundary that is no silence (a discontinuity)
+        # always stops.
         forgiven = np.full(stops.shape[0], -1, dtype=np.int64)
         if stops.size and not self.untimed:
-            soft = ~np.isin(stops, np.asarray(sc.boundaries, dtype=np.int64))
+            soft = np.isin(stops, silences)
             if soft.any():
                 forgiven[soft] = self.timeline.held_up(stops[soft] + self.base) - self.base
                 forgiven[soft & (forgiven < 0)] = -1
