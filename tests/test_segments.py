@@ -154,3 +154,31 @@ def test_an_oracle_stack_capture_joins_like_one_pass_or_not_at_all(tmp_path, sma
         one = analyze(CaptureReader(path), AnalysisOptions(jobs=1))
         two = analyze(CaptureReader(path), AnalysisOptions(jobs=2))
         assert _summary(two) == _summary(one)
+
+
+def test_steps_join_small_blocks_and_cut_large_ones_the_same_in_every_process(monkeypatch):
+    """A recording writes a block a second: steps join them (the decoder's cost is per call), cut a
+    block larger than a step, and number and place them only by the file, so every process agrees."""
+    import numpy as np
+    from buswitness.records import RecordBatch
+    monkeypatch.setattr(segments, "STEP_RECORDS", 25)
+
+    def block(t0: int, n: int) -> RecordBatch:
+        return RecordBatch(np.arange(t0, t0 + n, dtype=np.int64), np.full(n, 2, np.int64),
+                           np.zeros(n, np.uint8), np.zeros(n, np.uint8), np.arange(2 * n, dtype=np.uint8))
+
+    class Reader:
+        def iter_batches(self):
+            t = 0
+            for n in (10, 10, 10, 60, 0, 7):
+                yield block(t, n)
+                t += n
+
+    got = list(segments.steps(Reader()))
+    assert [len(b) for _i, _p, b in got] == [30, 25, 25, 17]  # 10+10+10; 25 of 60; 25; 10 of 60 + 7
+    assert [i for i, _p, _b in got] == [0, 1, 2, 3]
+    per_record = 2 + segments._RECORD_BYTES
+    assert [p for _i, p, _b in got] == [0, 30 * per_record, 55 * per_record, 80 * per_record]
+    assert np.concatenate([b.t_ns for _i, _p, b in got]).tolist() == list(range(97))
+    again = list(segments.steps(Reader()))
+    assert [(i, p, b.t_ns.tolist()) for i, p, b in again] == [(i, p, b.t_ns.tolist()) for i, p, b in got]
