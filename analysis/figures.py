@@ -154,10 +154,10 @@ class Accumulator:
     last_ns: int | None = None
     unknown_outcomes: int = 0
     largest_gaps: list = field(default_factory=list)     # heap of (gap_ms, t_ns)
-    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, row)
+    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, row values)
     failures: dict = field(default_factory=dict)         # station -> list of rows
     late_rows: dict = field(default_factory=dict)        # station -> list of rows
-    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, row): in time, slowest
+    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, row values): in time, slowest
     slow_dropped: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest one dropped
     judged_ms: float | None = None  #: the timeout the in-time answers were judged against (judge())
     device_ids: dict = field(default_factory=dict)       # station -> list of str
@@ -219,7 +219,11 @@ class Accumulator:
         self._last_frame_end_ns = int(max(ends.max(), self._last_frame_end_ns or ends.max()))
         if len(gap_ms):
             self.gaps += np.bincount(FINE.index(gap_ms), minlength=FINE.count)
-            top = np.lexsort((starts_g, gap_ms))[-LARGEST_GAPS:]
+            # the longest LARGEST_GAPS by (gap, start), sorted among the candidates only
+            cand = np.arange(len(gap_ms))
+            if len(gap_ms) > 4 * LARGEST_GAPS:
+                cand = np.flatnonzero(gap_ms >= np.partition(gap_ms, -LARGEST_GAPS)[-LARGEST_GAPS])
+            top = cand[np.lexsort((starts_g[cand], gap_ms[cand]))[-LARGEST_GAPS:]]
             for i in top:
                 item = (float(gap_ms[i]), int(starts_g[i]))
                 if len(self.largest_gaps) < LARGEST_GAPS:
@@ -362,16 +366,20 @@ class Accumulator:
         cols = ("t_request_end_ns", "station", "function", "outcome", "response_ms", "response_ms_low",
                 "response_ms_high", "exception_code", "retry", "request_raw", "response_raw")
 
-        def rows_of(index: list[int]) -> list[dict]:
-            """The listed rows of this block as plain dicts (only the rows an example keeps)."""
+        def values_of(index: list[int]) -> list[tuple]:
+            """The listed rows of this block as tuples of their values (only the rows an example keeps)."""
             if not index:
                 return []
             take = np.asarray(index, np.int64)
-            values = [tx[c].to_numpy()[take].tolist() for c in cols]
-            return [tx_row(self.t0_ns, *vals) for vals in zip(*values)]
+            return list(zip(*[tx[c].to_numpy()[take].tolist() for c in cols]))
 
-        # the heaps hold (value, order, row); a row of this block enters as its index and becomes a
-        # dict only if it is still held at the end of the block (most are pushed out again)
+        def rows_of(index: list[int]) -> list[dict]:
+            """The listed rows of this block as plain dicts."""
+            return [tx_row(self.t0_ns, *vals) for vals in values_of(index)]
+
+        # the heaps hold (value, order, row); a row of this block enters as its index, becomes a
+        # tuple of its values if it is still held at the end of the block (most are pushed out
+        # again), and a dict in figures() if it is held to the end
         pending: list[list] = []
         for st in np.unique(station[timed]):
             heap = self.worst.setdefault(int(st), [])
@@ -405,7 +413,7 @@ class Accumulator:
                     self.slow_dropped[st] = max(self.slow_dropped[st], gone[0])
             pending.append(heap)
         held = [(heap, j) for heap in pending for j, item in enumerate(heap) if type(item[2]) is _Pending]
-        made = rows_of([heap[j][2].index for heap, j in held])
+        made = values_of([heap[j][2].index for heap, j in held])
         for (heap, j), row in zip(held, made):
             heap[j] = (heap[j][0], heap[j][1], row)  # the same keys: the heap order holds
         failed = np.isin(outcome, [_OUTCOME_INDEX["timeout"], _OUTCOME_INDEX["corrupt"]])
@@ -464,7 +472,7 @@ class Accumulator:
         """The plain, mergeable figures so far: a copy (feeding on does not change them), or, with
         ``copy=False`` for an accumulator that is done, its own arrays handed over."""
         def rows(heaps: dict) -> dict:
-            return {int(st): [(float(rt), r) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
+            return {int(st): [(float(rt), tx_row(self.t0_ns, *r)) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
                     for st, h in heaps.items() if h}
 
         edges = {"first_request_ns": self.first_request_ns.copy(), "last_request_ns": self.last_request_ns.copy(),
