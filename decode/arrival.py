@@ -28,6 +28,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 _INF = float("inf")
+_NO_POS = np.zeros(0, dtype=np.int64)
+_NO_SILENCE = np.zeros(0)
 
 
 @dataclass
@@ -132,8 +134,71 @@ class Timeline:
     _p_prev: float = float("nan")  # the time of the read before it
 
     def add(self, t_ns: int, n: int) -> tuple[np.ndarray, np.ndarray]:
-        """Register a record of ``n`` bytes read at ``t_ns``; see :meth:`add_many`."""
-        return self.add_many(np.array([t_ns], dtype=np.int64), np.array([n], dtype=np.int64))
+        """Register a record of ``n`` bytes read at ``t_ns``; see :meth:`add_many`.
+
+        The same rules in plain Python for one record (the record-by-record path takes every
+        record of a noisy line through here, where numpy's fixed cost per call would dominate);
+        tests/test_decode_scenarios_equal.py holds both to the same tables.
+        """
+        t_ns, n = int(t_ns), int(n)
+        if n <= 0:
+            return _NO_POS, _NO_SILENCE
+        start = self._next_pos
+        self._room(1)
+        k = self._n
+        self._ints[k] = (start, start + n - 1, t_ns, start, start + n - 1)
+        self._floors[k] = t_ns - self.latency_ns - self.host_delay_ns  # until judged
+        self._n = k + 1
+        self._next_pos = start + n
+        self._last_t = t_ns
+        t = float(t_ns)
+        p_t = self._p_t
+        if p_t == t:  # a further part of the pending read
+            self._p_n += n
+            self._p_rows += 1
+            fw, fpre, wlen, _silence = self._read_floors_one(t, self._p_n, self._p_prev, None, 0)
+            self._store_one(self._p_rows, self._p_pos + self._p_n - wlen, self._p_pos + self._p_n - 1, fw, fpre)
+            return _NO_POS, _NO_SILENCE
+        done_pos = done_silence = None
+        if p_t == p_t:  # the pending read is complete: judge it, this record's read after it
+            fw, fpre, wlen, done_silence = self._read_floors_one(p_t, self._p_n, self._p_prev, t, n)
+            end = self._p_pos + self._p_n
+            self._store_one(self._p_rows, end - wlen, end - 1, fw, fpre, below=1)
+            done_pos = self._p_pos
+        fw, fpre, wlen, _silence = self._read_floors_one(t, n, p_t, None, 0)
+        self._store_one(1, start + n - wlen, start + n - 1, fw, fpre)
+        self._p_t, self._p_n, self._p_rows, self._p_pos, self._p_prev = t, n, 1, start, p_t
+        if done_pos is None:
+            return _NO_POS, _NO_SILENCE
+        return np.array([done_pos], dtype=np.int64), np.array([done_silence])
+
+    def _read_floors_one(self, t: float, n: int, prev: float, nxt_t: float | None,
+                         nxt_n: int) -> tuple[float, float, int, float]:
+        """:meth:`_read_floors` for one read (``nxt_t`` None: the read after it is not known yet)."""
+        L, d, c, P = self.latency_ns, self.host_delay_ns, self.char_ns, self.packet_bytes
+        eff = t
+        if nxt_t is not None and nxt_n < P:
+            eff = min(t, nxt_t - L)
+        has_prev = prev == prev
+        one_packet = n <= P and n * c <= L + c
+        fw = eff - L - d
+        if one_packet and has_prev:
+            fw = max(fw, prev - d)
+        fpre = prev - d if has_prev else fw - (n + 1) * L
+        fpre = min(fpre, fw)
+        wlen = n if one_packet else (P if n > P else 1)
+        silence = eff - L - d - n * c - prev if has_prev and not self.untimed else -_INF
+        return fw, fpre, wlen, silence
+
+    def _store_one(self, rows: int, window: int, end: int, fw: float, fpre: float, below: int = 0) -> None:
+        """:meth:`_store` for one read: its ``rows`` records, which end ``below`` rows before the last."""
+        stop = self._n - below
+        first = max(stop - rows, self._lo)
+        if first < stop:
+            self._ints[first:stop, 3] = window
+            self._ints[first:stop, 4] = end
+            self._floors[first:stop, 0] = fw
+            self._floors[first:stop, 1] = fpre
 
     def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Register records (each with bytes, in time order); return the reads they complete.
@@ -173,6 +238,7 @@ class Timeline:
         g_n = np.add.reduceat(n, g_first) if g_first.size else np.zeros(0, dtype=np.int64)
         g_rows = np.diff(np.r_[g_first, count])
         g_pos = starts[g_first]
+        g_lead = n[g_first]  # each read's first record: what the read before it is judged by
         carry = pending and not (opens.size and opens[0] == 0)
         if pending:
             if carry:  # the first records continue the pending read
@@ -185,13 +251,14 @@ class Timeline:
                 g_n = np.r_[self._p_n, g_n]
                 g_rows = np.r_[self._p_rows, g_rows]
                 g_pos = np.r_[self._p_pos, g_pos]
+                g_lead = np.r_[0, g_lead]  # (the pending read's own is never read)
                 g_prev0 = self._p_prev
         else:
             g_prev0 = float("nan")
         g_prev = np.empty(g_t.shape[0])
         g_prev[0] = g_prev0
         g_prev[1:] = g_t[:-1]
-        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, complete=g_t.shape[0] - 1)
+        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, g_lead, complete=g_t.shape[0] - 1)
         self._store(g_rows, g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
         self._p_t, self._p_n, self._p_rows = float(g_t[-1]), int(g_n[-1]), int(g_rows[-1])
         self._p_pos, self._p_prev = int(g_pos[-1]), float(g_prev[-1])
@@ -206,7 +273,7 @@ class Timeline:
         if np.isnan(self._p_t):
             return np.zeros(0, dtype=np.int64), np.zeros(0)
         g_t, g_n, g_prev = np.array([self._p_t]), np.array([self._p_n]), np.array([self._p_prev])
-        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, complete=0)
+        fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, g_n, complete=0)
         g_pos = np.array([self._p_pos])
         self._store(np.array([self._p_rows]), g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
         pos = np.array([self._p_pos], dtype=np.int64)
@@ -224,7 +291,7 @@ class Timeline:
         self._floors[rows, 0] = np.repeat(fw, g_rows)[skip:]
         self._floors[rows, 1] = np.repeat(fpre, g_rows)[skip:]
 
-    def _read_floors(self, g_t: np.ndarray, g_n: np.ndarray, g_prev: np.ndarray,
+    def _read_floors(self, g_t: np.ndarray, g_n: np.ndarray, g_prev: np.ndarray, g_lead: np.ndarray,
                      complete: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Floors, window length and the least silence before each read (TIMING.md).
 
@@ -235,7 +302,9 @@ class Timeline:
         The first ``complete`` reads have the read after them in the list, and that read's time
         bounds this one's last packet: with fewer than ``P`` bytes the next read held only timer
         packets, and the timer restarts after every packet, so this read's packet left at least
-        ``L`` before the next read returned. A read the host held up beyond the usual delay
+        ``L`` before the next read returned. The next read is judged by its first record
+        (``g_lead``; a capture splits a read at a marked byte), as :meth:`held_up` judges it:
+        what has arrived when this read is judged, however the records are cut into calls. A read the host held up beyond the usual delay
         ``d`` so bounds from its effective time ``min(T, T_next - L)``, not from when it came
         back (its last packet then taken to be the one before the next read's: common
         practice for continuous traffic, where a data packet leaves on every timer expiry).
@@ -256,7 +325,7 @@ class Timeline:
         eff = g_t.copy()
         if m > 1 and complete:
             nxt_t = g_t[1:complete + 1]
-            timer = g_n[1:complete + 1] < P
+            timer = g_lead[1:complete + 1] < P
             eff[:complete] = np.where(timer, np.minimum(g_t[:complete], nxt_t - L), g_t[:complete])
         has_prev = ~np.isnan(g_prev)
         one_packet = (g_n <= P) & (g_n * c <= L + c)
@@ -308,9 +377,48 @@ class Timeline:
 
     # -- bounds -----------------------------------------------------------------------------------
     def end_bounds(self, first: int, last: int) -> tuple[int, int]:
-        """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``."""
-        lo, hi = self.end_bounds_many(np.array([first], dtype=np.int64), np.array([last], dtype=np.int64))
-        return int(lo[0]), int(hi[0])
+        """Interval for the end (stop bit) of the byte at ``last``, for a frame spanning ``first..last``.
+
+        :meth:`end_bounds_many` for one frame, in plain Python (the record-by-record path bounds
+        every frame through here); the same arithmetic in the same order, so the same numbers.
+        """
+        first, last = int(first), int(last)
+        all_starts = self.starts
+        if all_starts.size == 0:
+            raise ValueError("no record holds these bytes")
+        a = max(0, int(np.searchsorted(all_starts, first, "right")) - 1)
+        b = int(np.searchsorted(all_starts, last, "right"))
+        rows = self._ints[self._lo + a:self._lo + max(b, a + 1)].tolist()
+        floors = self._floors[self._lo + a:self._lo + max(b, a + 1)].tolist()
+        c = self.char_ns
+        e = float(last)
+        rb = max(b - a - 1, 0)
+        hi = min(float(t) - end * c for _start, end, t, _ws, _re in rows[:rb + 1]) + e * c
+
+        def bound(r: int, k0: int, kl: int) -> float:
+            ws = rows[r][3]
+            fw, fpre = floors[r]
+            w = max(k0, ws)
+            win = fw + (e - w) * c if kl >= ws else -_INF
+            return max(win, fpre + (e - k0) * c)
+
+        lo = bound(0, max(first, rows[0][0]), min(last, rows[0][1]))
+        if rb > 0:
+            lo = max(lo, bound(rb, rows[rb][0], last))
+            if rb >= 2:
+                g = max(max(fw - max(start, ws) * c, fpre - start * c)
+                        for (start, _end, _t, ws, _re), (fw, fpre) in zip(rows[1:rb], floors[1:rb]))
+                lo = max(lo, g + e * c)
+        if self.untimed:
+            lo = hi
+        elif lo > hi:
+            # the carried bounds crossed: the byte's own record, without any pitch, never a point
+            self.contradictions += 1
+            ws, t = rows[rb][3], rows[rb][2]
+            own_lo = floors[rb][0] if last >= ws else floors[rb][1]
+            lo = min(own_lo, hi)
+            hi = float(t)
+        return int(np.rint(lo)), int(np.rint(hi))
 
     def end_bounds_many(self, first: np.ndarray, last: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Interval for the end of each frame's last byte (absolute positions, in stream order).
