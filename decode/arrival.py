@@ -194,11 +194,12 @@ class Timeline:
         """:meth:`_store` for one read: its ``rows`` records, which end ``below`` rows before the last."""
         stop = self._n - below
         first = max(stop - rows, self._lo)
-        if first < stop:
-            self._ints[first:stop, 3] = window
-            self._ints[first:stop, 4] = end
-            self._floors[first:stop, 0] = fw
-            self._floors[first:stop, 1] = fpre
+        if first + 1 == stop:  # one record (the usual case): two writes
+            self._ints[first, 3:5] = (window, end)
+            self._floors[first] = (fw, fpre)
+        elif first < stop:
+            self._ints[first:stop, 3:5] = (window, end)
+            self._floors[first:stop] = (fw, fpre)
 
     def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Register records (each with bytes, in time order); return the reads they complete.
@@ -266,7 +267,7 @@ class Timeline:
 
     def pending_start(self) -> int:
         """Absolute position of the pending read's first byte (the stream's end when none is pending)."""
-        return self._next_pos if np.isnan(self._p_t) else self._p_pos
+        return self._next_pos if self._p_t != self._p_t else self._p_pos  # nan: none pending
 
     def finish(self) -> tuple[np.ndarray, np.ndarray]:
         """End of input: complete the pending read (nothing follows to bound it); as :meth:`add_many`."""

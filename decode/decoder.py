@@ -179,6 +179,14 @@ class _Port:
         """Boundaries and silences before the reads the timeline has just judged (absolute ``pos``)."""
         if not pos.size:
             return
+        if pos.size == 1:  # one read (the record-by-record path): no array work
+            k, gap = int(pos[0]), float(silence[0])
+            if self.cuts and gap > self.t35_ns:
+                self.scanner.add_boundary(k - self.base)
+            if gap > self.t15_ns:
+                self.silence_at.append(k)
+                self.silence_ns.append(gap)
+            return
         if self.cuts:
             for k in pos[silence > self.t35_ns].tolist():
                 self.scanner.add_boundary(k - self.base)
