@@ -44,8 +44,10 @@ WARM_BYTES = 2 << 20
 WARM_SHARE = 16
 #: Steps the previous segment decodes past the cut.
 OVER_STEPS = 4
-#: A capture smaller than this is decoded in one pass (starting processes costs more than it saves).
-PARALLEL_MIN_BYTES = 12 << 20
+#: A capture smaller than this is decoded in one pass: starting processes costs more than it saves,
+#: and a seam that does not join costs a second decode (the 8 h demo night at 19200, 17 MB: 72 s
+#: in segments whose seam failed, 43 s in one pass; a 1 h 115200 capture, 46 MB, gains 10 %).
+PARALLEL_MIN_BYTES = 64 << 20
 #: At most this many segments, whatever the core count.
 MAX_JOBS = 8
 _RECORD_BYTES = 12  # one record's entry in a block's index (capture/fileformat.py INDEX_DTYPE)
