@@ -54,9 +54,9 @@ class Timeline:
     _next_pos: int = 0
     _lo: int = 0  # first record still held
     _n: int = 0   # records stored (held ones are _lo.._n)
-    #: per record: first byte, last byte, read time, first byte of its floor's window, its read's last
-    #: byte (absolute; records returned at one instant are one read)
-    _ints: np.ndarray = field(default_factory=lambda: np.zeros((0, 5), dtype=np.int64), repr=False)
+    #: per record: first byte, last byte, read time, first byte of its floor's window (absolute;
+    #: records returned at one instant are one read)
+    _ints: np.ndarray = field(default_factory=lambda: np.zeros((0, 4), dtype=np.int64), repr=False)
     #: per record: earliest end of the bytes in its window, and of its bytes before the window (ns)
     _floors: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.float64), repr=False)
 
@@ -72,7 +72,7 @@ class Timeline:
             self._floors[:held] = self._floors[self._lo:self._n]
         else:
             size = max(64, 2 * (held + more))
-            ints = np.zeros((size, 5), dtype=np.int64)
+            ints = np.zeros((size, 4), dtype=np.int64)
             floors = np.zeros((size, 2), dtype=np.float64)
             ints[:held] = self._ints[self._lo:self._n]
             floors[:held] = self._floors[self._lo:self._n]
@@ -103,11 +103,6 @@ class Timeline:
     def pre_floors(self) -> np.ndarray:
         """Earliest end of each held record's bytes before its window (ns)."""
         return self._floors[self._lo:self._n, 1]
-
-    @property
-    def read_ends(self) -> np.ndarray:
-        """Absolute position of the last byte of each held record's read."""
-        return self._ints[self._lo:self._n, 4]
 
     @property
     def windows(self) -> np.ndarray:
@@ -146,7 +141,7 @@ class Timeline:
         start = self._next_pos
         self._room(1)
         k = self._n
-        self._ints[k] = (start, start + n - 1, t_ns, start, start + n - 1)
+        self._ints[k] = (start, start + n - 1, t_ns, start)
         self._floors[k] = t_ns - self.latency_ns - self.host_delay_ns  # until judged
         self._n = k + 1
         self._next_pos = start + n
@@ -157,16 +152,15 @@ class Timeline:
             self._p_n += n
             self._p_rows += 1
             fw, fpre, wlen, _silence = self._read_floors_one(t, self._p_n, self._p_prev, None, 0)
-            self._store_one(self._p_rows, self._p_pos + self._p_n - wlen, self._p_pos + self._p_n - 1, fw, fpre)
+            self._store_one(self._p_rows, self._p_pos + self._p_n - wlen, fw, fpre)
             return _NO_POS, _NO_SILENCE
         done_pos = done_silence = None
         if p_t == p_t:  # the pending read is complete: judge it, this record's read after it
             fw, fpre, wlen, done_silence = self._read_floors_one(p_t, self._p_n, self._p_prev, t, n)
-            end = self._p_pos + self._p_n
-            self._store_one(self._p_rows, end - wlen, end - 1, fw, fpre, below=1)
+            self._store_one(self._p_rows, self._p_pos + self._p_n - wlen, fw, fpre, below=1)
             done_pos = self._p_pos
         fw, fpre, wlen, _silence = self._read_floors_one(t, n, p_t, None, 0)
-        self._store_one(1, start + n - wlen, start + n - 1, fw, fpre)
+        self._store_one(1, start + n - wlen, fw, fpre)
         self._p_t, self._p_n, self._p_rows, self._p_pos, self._p_prev = t, n, 1, start, p_t
         if done_pos is None:
             return _NO_POS, _NO_SILENCE
@@ -190,15 +184,15 @@ class Timeline:
         silence = eff - L - d - n * c - prev if has_prev and not self.untimed else -_INF
         return fw, fpre, wlen, silence
 
-    def _store_one(self, rows: int, window: int, end: int, fw: float, fpre: float, below: int = 0) -> None:
+    def _store_one(self, rows: int, window: int, fw: float, fpre: float, below: int = 0) -> None:
         """:meth:`_store` for one read: its ``rows`` records, which end ``below`` rows before the last."""
         stop = self._n - below
         first = max(stop - rows, self._lo)
         if first + 1 == stop:  # one record (the usual case): two writes
-            self._ints[first, 3:5] = (window, end)
+            self._ints[first, 3] = window
             self._floors[first] = (fw, fpre)
         elif first < stop:
-            self._ints[first:stop, 3:5] = (window, end)
+            self._ints[first:stop, 3] = window
             self._floors[first:stop] = (fw, fpre)
 
     def add_many(self, t_ns: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -222,7 +216,6 @@ class Timeline:
         self._ints[k:k + count, 1] = ends - 1
         self._ints[k:k + count, 2] = t_ns
         self._ints[k:k + count, 3] = starts
-        self._ints[k:k + count, 4] = ends - 1
         self._floors[k:k + count] = t_ns[:, None] - self.latency_ns - self.host_delay_ns  # until judged
         self._n = k + count
         self._next_pos = int(ends[-1])
@@ -260,7 +253,7 @@ class Timeline:
         g_prev[0] = g_prev0
         g_prev[1:] = g_t[:-1]
         fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, g_lead, complete=g_t.shape[0] - 1)
-        self._store(g_rows, g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
+        self._store(g_rows, g_pos + g_n - wlen, fw, fpre)
         self._p_t, self._p_n, self._p_rows = float(g_t[-1]), int(g_n[-1]), int(g_rows[-1])
         self._p_pos, self._p_prev = int(g_pos[-1]), float(g_prev[-1])
         return g_pos[:-1], silence[:-1]
@@ -276,19 +269,17 @@ class Timeline:
         g_t, g_n, g_prev = np.array([self._p_t]), np.array([self._p_n]), np.array([self._p_prev])
         fw, fpre, wlen, silence = self._read_floors(g_t, g_n, g_prev, g_n, complete=0)
         g_pos = np.array([self._p_pos])
-        self._store(np.array([self._p_rows]), g_pos + g_n - wlen, g_pos + g_n - 1, fw, fpre)
+        self._store(np.array([self._p_rows]), g_pos + g_n - wlen, fw, fpre)
         pos = np.array([self._p_pos], dtype=np.int64)
         self._p_t, self._p_n, self._p_rows = float("nan"), 0, 0
         return pos, silence
 
-    def _store(self, g_rows: np.ndarray, g_window: np.ndarray, g_end: np.ndarray, fw: np.ndarray,
-               fpre: np.ndarray) -> None:
+    def _store(self, g_rows: np.ndarray, g_window: np.ndarray, fw: np.ndarray, fpre: np.ndarray) -> None:
         """Write each read's window and floors into its records (the last ``g_rows.sum()`` stored)."""
         first_row = self._n - int(g_rows.sum())
         skip = max(first_row, self._lo) - first_row
         rows = slice(first_row + skip, self._n)
         self._ints[rows, 3] = np.repeat(g_window, g_rows)[skip:]
-        self._ints[rows, 4] = np.repeat(g_end, g_rows)[skip:]
         self._floors[rows, 0] = np.repeat(fw, g_rows)[skip:]
         self._floors[rows, 1] = np.repeat(fpre, g_rows)[skip:]
 
@@ -394,7 +385,7 @@ class Timeline:
         c = self.char_ns
         e = float(last)
         rb = max(b - a - 1, 0)
-        hi = min(float(t) - end * c for _start, end, t, _ws, _re in rows[:rb + 1]) + e * c
+        hi = min(float(t) - end * c for _start, end, t, _ws in rows[:rb + 1]) + e * c
 
         def bound(r: int, k0: int, kl: int) -> float:
             ws = rows[r][3]
@@ -408,7 +399,7 @@ class Timeline:
             lo = max(lo, bound(rb, rows[rb][0], last))
             if rb >= 2:
                 g = max(max(fw - max(start, ws) * c, fpre - start * c)
-                        for (start, _end, _t, ws, _re), (fw, fpre) in zip(rows[1:rb], floors[1:rb]))
+                        for (start, _end, _t, ws), (fw, fpre) in zip(rows[1:rb], floors[1:rb]))
                 lo = max(lo, g + e * c)
         if self.untimed:
             lo = hi
