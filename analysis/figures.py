@@ -21,6 +21,8 @@ from buswitness.analysis.devid import device_id_text
 from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, quantile, quantiles_rows
 from buswitness.decode.events import EVENT_KINDS as DECODER_EVENT_KINDS
 from buswitness.decode.events import OUTCOMES
+from buswitness.decode.rawbytes import take as take_raws
+from buswitness.decode.tables import Columns
 
 #: The decoder's vocabulary (docs/tables.md), plus "other" for a kind this build does not know.
 EVENT_KINDS = DECODER_EVENT_KINDS + ("other",)
@@ -48,8 +50,15 @@ _KIND_INDEX = {name: i for i, name in enumerate(EVENT_KINDS)}
 _DAMAGE_KINDS = ("crc_error", "truncated", "stray_bytes", "collision", "line_error")
 
 
-def _codes(values: pd.Series, vocabulary: tuple[str, ...], fallback: int) -> np.ndarray:
-    """Index of each value in ``vocabulary`` (``fallback`` for anything else), fast for categoricals."""
+def _codes(values: pd.Series | np.ndarray, vocabulary: tuple[str, ...], fallback: int) -> np.ndarray:
+    """Index of each value in ``vocabulary`` (``fallback`` for anything else), fast for categoricals.
+
+    Codes already (a :class:`Columns` table's category column, in a vocabulary that ``vocabulary``
+    begins with) are taken as they are, -1 (a kind the decoder does not know) as ``fallback``.
+    """
+    if isinstance(values, np.ndarray) and values.dtype.kind in "iu":
+        codes = values.astype(np.int64)
+        return np.where(codes < 0, fallback, codes)
     index = {name: i for i, name in enumerate(vocabulary)}
     if isinstance(values.dtype, pd.CategoricalDtype):
         lookup = np.array([index.get(str(c), fallback) for c in values.cat.categories] + [fallback], np.int64)
@@ -57,6 +66,13 @@ def _codes(values: pd.Series, vocabulary: tuple[str, ...], fallback: int) -> np.
     uniques, inverse = np.unique(values.to_numpy(dtype=object).astype(str), return_inverse=True)
     lookup = np.array([index.get(u, fallback) for u in uniques.tolist()], np.int64)
     return lookup[inverse.reshape(-1)]
+
+
+def _take(column, index: np.ndarray) -> list:
+    """One column's values at ``index`` as a list (a bytes column's entries made into ``bytes`` only here)."""
+    if isinstance(column, pd.Series):
+        column = column.to_numpy(dtype=object)
+    return take_raws(column, index)
 
 
 def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray) -> None:
@@ -189,9 +205,9 @@ class Accumulator:
         """Bus traffic: frames, bytes, line busy time, silences between frames."""
         if frames.empty:
             return
-        t_start = frames["t_start_ns"].to_numpy(np.int64)
-        t_end = frames["t_end_ns"].to_numpy(np.int64)
-        length = frames["length"].to_numpy(np.int64)
+        t_start = np.asarray(frames["t_start_ns"], np.int64)
+        t_end = np.asarray(frames["t_end_ns"], np.int64)
+        length = np.asarray(frames["length"], np.int64)
         self._span(t_start)
         self._span(t_end)
         self.frames += len(frames)
@@ -235,28 +251,30 @@ class Accumulator:
         """Outcomes, response times, poll cycle, master move-on gaps, example lists."""
         if tx.empty:
             return
-        if not tx["t_request_end_ns"].is_monotonic_increasing:
-            tx = tx.sort_values("t_request_end_ns", kind="stable")
-        t_req = tx["t_request_end_ns"].to_numpy(np.int64)
+        t_req = np.asarray(tx["t_request_end_ns"], np.int64)
+        if t_req.size > 1 and (np.diff(t_req) < 0).any():
+            order = np.argsort(t_req, kind="stable")
+            tx = tx.take(order) if isinstance(tx, Columns) else tx.iloc[order]
+            t_req = np.asarray(tx["t_request_end_ns"], np.int64)
         self._span(t_req)
-        station = tx["station"].to_numpy(np.int64)
-        function = tx["function"].to_numpy(np.int64)
+        station = np.asarray(tx["station"], np.int64)
+        function = np.asarray(tx["function"], np.int64)
         outcome = _codes(tx["outcome"], OUTCOMES, -1)
         self.unknown_outcomes += int((outcome < 0).sum())
         known = outcome >= 0
         self.outcomes += np.bincount(station[known] * len(OUTCOMES) + outcome[known],
                                      minlength=N_ADDR * len(OUTCOMES)).reshape(N_ADDR, len(OUTCOMES))
-        retry = tx["retry"].to_numpy(bool)
+        retry = np.asarray(tx["retry"], bool)
         self.retries += np.bincount(station[retry], minlength=N_ADDR)
         exc = outcome == _OUTCOME_INDEX["exception"]
         if exc.any():
-            codes = tx["exception_code"].to_numpy(np.int64)[exc]
+            codes = np.asarray(tx["exception_code"], np.int64)[exc]
             self.exception_codes += np.bincount(station[exc] * 256 + codes, minlength=N_ADDR * 256).reshape(N_ADDR, 256)
         self.functions += np.bincount(station * 256 + function, minlength=N_ADDR * 256).reshape(N_ADDR, 256)
 
-        rt = tx["response_ms"].to_numpy(np.float64)
-        lo = tx["response_ms_low"].to_numpy(np.float64)
-        hi = tx["response_ms_high"].to_numpy(np.float64)
+        rt = np.asarray(tx["response_ms"], np.float64)
+        lo = np.asarray(tx["response_ms_low"], np.float64)
+        hi = np.asarray(tx["response_ms_high"], np.float64)
         timed = np.isfinite(rt) & np.isin(outcome, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late")])
         if timed.any():
             s = station[timed]
@@ -298,7 +316,7 @@ class Accumulator:
         retry, and the answer to the first attempt after it): the master may have taken that
         answer and moved on early, so the silence says nothing about its timeout.
         """
-        resp = tx["t_response_start_ns"].to_numpy(np.int64)
+        resp = np.asarray(tx["t_response_start_ns"], np.int64)
         prev_station = np.concatenate(([self._prev_tx[0]], station[:-1]))
         prev_resp = np.concatenate(([self._prev_tx[1]], resp[:-1]))
         self._prev_tx = (int(station[-1]), int(resp[-1]))
@@ -310,8 +328,7 @@ class Accumulator:
         need[0] = True
         need[1:] = timeout[:-1]
         req_len = np.zeros(len(tx), np.int64)
-        raw = tx["request_raw"].to_numpy(dtype=object)
-        req_len[need] = [len(r) for r in raw[need]]
+        req_len[need] = [len(r) for r in _take(tx["request_raw"], np.flatnonzero(need))]
         next_start = t_req - (req_len * self.char_ns).astype(np.int64)
         if first_block:
             self._lead_request_ns = int(next_start[0])
@@ -371,7 +388,11 @@ class Accumulator:
             if not index:
                 return []
             take = np.asarray(index, np.int64)
-            return list(zip(*[tx[c].to_numpy()[take].tolist() for c in cols]))
+            values = [_take(tx[c], take) for c in cols]
+            if isinstance(tx, Columns):  # outcomes as codes: their names, as a table gives them
+                o = cols.index("outcome")
+                values[o] = [OUTCOMES[k] if 0 <= k < len(OUTCOMES) else "unknown" for k in values[o]]
+            return list(zip(*values))
 
         def rows_of(index: list[int]) -> list[dict]:
             """The listed rows of this block as plain dicts."""
@@ -428,14 +449,14 @@ class Accumulator:
             room = min(LATE_CAP - len(kept), LATE_TOTAL_CAP - sum(len(v) for v in self.late_rows.values()))
             if room > 0:
                 kept.extend(rows_of(np.flatnonzero(late & (station == st))[:room].tolist()))
-        ident = np.isin(tx["function"].to_numpy(np.int64), [0x11, 0x2B]) & np.isin(
+        ident = np.isin(np.asarray(tx["function"], np.int64), [0x11, 0x2B]) & np.isin(
             outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["late"]])
         for i in np.flatnonzero(ident):
             st = int(station[i])
             known = self.device_ids.setdefault(st, [])
             if len(known) >= DEVICE_IDS_PER_STATION:
                 continue
-            text = device_id_text(bytes(tx["response_raw"].iat[int(i)]))
+            text = device_id_text(bytes(_take(tx["response_raw"], np.array([i]))[0]))
             if text and text not in known:
                 known.append(text)
 
@@ -443,14 +464,14 @@ class Accumulator:
         """Damage and notable traffic, counted per station and kind and per minute."""
         if events.empty:
             return
-        t = events["t_ns"].to_numpy(np.int64)
+        t = np.asarray(events["t_ns"], np.int64)
         self._span(t)
         kind = _codes(events["kind"], EVENT_KINDS, _KIND_INDEX["other"])
-        station = events["station"].to_numpy(np.int64)
+        station = np.asarray(events["station"], np.int64)
         row = np.where((station >= 0) & (station < N_ADDR), station + 1, 0)
         self.events += np.bincount(row * len(EVENT_KINDS) + kind,
                                    minlength=(N_ADDR + 1) * len(EVENT_KINDS)).reshape(N_ADDR + 1, len(EVENT_KINDS))
-        raw_len = events["raw"].map(len).to_numpy(np.int64)
+        raw_len = np.fromiter(map(len, events["raw"]), np.int64, len(events))
         damage = np.isin(kind, [_KIND_INDEX[k] for k in _DAMAGE_KINDS])
         busy = raw_len * self.char_ns * damage
         self.busy_ns += float(busy.sum())

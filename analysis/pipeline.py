@@ -150,8 +150,10 @@ def analyze_tables(header: CaptureHeader, outputs: Iterable, options: AnalysisOp
     def process() -> None:
         nonlocal acc, pending, rows
         if pending and all(isinstance(p, DecodeOutput) for p in pending):
-            # the decoder's columns joined first: one DataFrame per table and block
-            frames, tx, events = DecodeOutput.concat(pending).to_frames()
+            # the decoder's columns joined first: one table each per block, and a DataFrame only
+            # for a reader that needs one (the figures read the numpy columns)
+            joined = DecodeOutput.concat(pending)
+            frames, tx, events = joined.to_frames() if sinks or extra is not None else joined.columns()
         else:
             frames = pd.concat([p.frames for p in pending] or [empty[0]], ignore_index=True)
             tx = pd.concat([p.transactions for p in pending] or [empty[1]], ignore_index=True)

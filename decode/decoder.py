@@ -21,6 +21,8 @@ from buswitness.decode.events import Damage, Frame
 from buswitness.decode.messages import BulkRun, DamageMsg, FrameMsg, RegularRun, Span
 from buswitness.decode.protocols import get as get_protocol
 from buswitness.decode.protocols.base import EITHER, JUNK, REQUEST, RESPONSE, FieldProtocol
+from buswitness.decode.rawbytes import RawSlices
+from buswitness.decode.rawbytes import take as take_raws
 from buswitness.decode.tables import (
     Collector,
     DecodeOutput,
@@ -357,14 +359,13 @@ class _Port:
                                                             fcs[:keep])
                         expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size:
-                    ends = (starts + lens).tolist()
                     raws = (bulk.frame_bytes(buf, starts, lens) if hasattr(bulk, "frame_bytes")
-                            else [buf[a:b] for a, b in zip(starts.tolist(), ends)])
+                            else RawSlices(buf, starts, lens))
                     first = starts + self.base
                     lo, hi = self.timeline.end_bounds_many(first, first + lens - 1)
                     self._last_end = (int(lo[-1]), int(hi[-1]))
                     pieces.append(BulkRun(lo, hi, lens, shapes, addrs, fcs, raws))
-                    sc.pos = ends[-1]
+                    sc.pos = int(starts[-1] + lens[-1])
                     bulk.after_run(sc, raws, shapes, addrs)
                     self.expect_response = expect
                     progressed = True
@@ -821,9 +822,9 @@ class Decoder:
         for b, s, pick in zip(blocks, slot, picks):
             ports[s] = b.port
             shapes[s] = REQUEST if b.role == "master" else RESPONSE
-            run_raws = np.empty(len(b.run.raws), dtype=object)
-            run_raws[:] = b.run.raws
-            merged[s] = run_raws[pick]
+            got = np.empty(pick.size, dtype=object)
+            got[:] = take_raws(b.run.raws, pick)
+            merged[s] = got
         raws: list = merged.tolist()
         if not columns:
             for k in range(m):

@@ -8,6 +8,7 @@ protocol calls the station and the service of a frame.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -63,7 +64,7 @@ class BulkRun:
     shapes: np.ndarray   # int8 scanner verdicts
     addrs: np.ndarray    # uint8 station address
     fcs: np.ndarray      # uint8 function code
-    raws: list           # bytes of each frame
+    raws: Sequence       # bytes of each frame: a list, or decode/rawbytes.py RawSlices (read lazily)
 
     def __len__(self) -> int:
         return int(self.lens.shape[0])

@@ -10,6 +10,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
+from buswitness.decode.rawbytes import RawColumn
+from buswitness.decode.rawbytes import take as take_raws
 
 #: Version of the table layout (docs/tables.md). 2: protocol-neutral columns added (protocol, source,
 #: destination, service, result_code); every column of version 1 is unchanged.
@@ -177,6 +179,30 @@ class DecodeOutput:
         """The three tables as DataFrames: frames, transactions, events."""
         return self.frames, self.transactions, self.events
 
+    def columns(self) -> tuple[Columns, Columns, Columns]:
+        """The three tables' version-1 columns as numpy arrays (:class:`Columns`), no DataFrame built.
+
+        For a reader that needs no table (the figures): the frames' bytes stay where the decoder
+        found them until a row is read.
+        """
+        if self._parts is None:
+            return tuple(Columns.of_frame(t) for t in self.to_frames())  # type: ignore[return-value]
+        frame_chunks, txn_chunks, events, _proto = self._parts
+        frames = {name: _concat(frame_chunks, name, _FRAME_TYPES[name]) for name in FRAME_COLUMNS if name != "raw"}
+        frames["raw"] = RawColumn([c["raw"] for c in frame_chunks])
+        txns = {name: _concat(txn_chunks, name, _TXN_TYPES[name]) for name in TRANSACTION_COLUMNS
+                if name not in ("request_raw", "response_raw")}
+        txns["request_raw"] = RawColumn([c["request_raw"] for c in txn_chunks])
+        txns["response_raw"] = RawColumn([c["response_raw"] for c in txn_chunks])
+        ev = {
+            "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
+            "kind": np.array([EVENT_CODE.get(e.kind, -1) for e in events], dtype=np.int8),
+            "station": np.array([e.station for e in events], dtype=np.int16),
+            "port": np.array([e.port for e in events], dtype=np.uint8),
+            "raw": [e.raw for e in events], "detail": [e.detail for e in events],
+        }
+        return Columns(frames), Columns(txns), Columns(ev)
+
     def _table(self, k: int) -> pd.DataFrame:
         table = self._tables[k]
         if table is None:
@@ -258,6 +284,57 @@ class DecodeOutput:
     def __repr__(self) -> str:
         f, t, e = self.counts()
         return f"DecodeOutput(frames={f} rows, transactions={t} rows, events={e} rows)"
+
+
+class Columns:
+    """A table as numpy columns: categories as codes in the table's vocabulary (docs/tables.md;
+    -1 for a kind this build does not know), bytes columns as sequences of ``bytes``.
+
+    What the figures read instead of a DataFrame: ``len(t)``, ``t.empty``, ``t[name]`` and
+    ``name in t`` behave as on the table.
+    """
+
+    __slots__ = ("data", "rows")
+
+    #: Columns held as category codes, and their vocabularies.
+    CATEGORIES = {"direction": DIRECTIONS, "outcome": OUTCOMES, "kind": EVENT_KINDS}
+
+    def __init__(self, data: dict) -> None:
+        self.data = data
+        self.rows = len(next(iter(data.values()))) if data else 0
+
+    @classmethod
+    def of_frame(cls, table: pd.DataFrame) -> Columns:
+        """A DataFrame's columns (categories of the table's vocabulary as codes)."""
+        data: dict = {}
+        for name in table.columns:
+            col = table[name]
+            vocab = cls.CATEGORIES.get(name)
+            if vocab is not None:
+                index = {v: i for i, v in enumerate(vocab)}
+                values = col.astype(object).to_numpy()
+                data[name] = np.fromiter((index.get(str(v), -1) for v in values), np.int8, len(values))
+            else:
+                data[name] = col.to_numpy()
+        return cls(data)
+
+    def __len__(self) -> int:
+        return self.rows
+
+    @property
+    def empty(self) -> bool:
+        return self.rows == 0
+
+    def __getitem__(self, name: str):
+        return self.data[name]
+
+    def __contains__(self, name: object) -> bool:
+        return name in self.data
+
+    def take(self, index: np.ndarray) -> Columns:
+        """The rows at ``index``, in that order."""
+        return Columns({k: v[index] if isinstance(v, np.ndarray) else take_raws(v, index)
+                        for k, v in self.data.items()})
 
 
 def _rows(chunk: dict) -> int:

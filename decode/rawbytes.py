@@ -1,0 +1,121 @@
+"""Frames' bytes kept as (start, length) into the buffer they were found in, made into ``bytes`` when read.
+
+The bulk path finds thousands of frames per call; a ``bytes`` object for each one cost more than
+the CRC checks that found them, and the analysis reads the bytes of a few dozen (the examples a
+report lists). :class:`RawSlices` is the frames of one run, :class:`RawColumn` a table's column of
+many runs (and of plain ``bytes`` lists from the sequential path), both read-only sequences of
+``bytes``: ``raws[i]`` is the frame's bytes, ``len(raws[i])`` its length.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, Sequence
+
+import numpy as np
+
+
+class RawSlices(Sequence):
+    """The bytes of frames ``buf[starts[i]:starts[i] + lens[i]]``, as a sequence of ``bytes``."""
+
+    __slots__ = ("buf", "starts", "lens")
+
+    def __init__(self, buf: bytes, starts: np.ndarray, lens: np.ndarray) -> None:
+        self.buf = buf
+        self.starts = starts
+        self.lens = lens
+
+    def __len__(self) -> int:
+        return int(self.starts.shape[0])
+
+    def __getitem__(self, i):  # type: ignore[override]
+        if isinstance(i, slice):
+            return RawSlices(self.buf, self.starts[i], self.lens[i])
+        a = int(self.starts[i])
+        return self.buf[a:a + int(self.lens[i])]
+
+    def __iter__(self) -> Iterator[bytes]:
+        buf = self.buf
+        return (buf[a:a + n] for a, n in zip(self.starts.tolist(), self.lens.tolist()))
+
+    def take(self, index: np.ndarray) -> list[bytes]:
+        """The bytes of the frames at ``index``, in that order."""
+        buf = self.buf
+        return [buf[a:a + n] for a, n in zip(self.starts[index].tolist(), self.lens[index].tolist())]
+
+    def lengths(self) -> np.ndarray:
+        return np.asarray(self.lens, dtype=np.int64)
+
+    def tolist(self) -> list[bytes]:
+        return list(self)
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, (RawSlices, RawColumn, list, tuple)):
+            return len(self) == len(other) and all(a == b for a, b in zip(self, other))
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"RawSlices({len(self)} frames)"
+
+
+def take(raws: Sequence, index: np.ndarray) -> list[bytes]:
+    """The entries of ``raws`` (a list, an object array, :class:`RawSlices` or :class:`RawColumn`) at ``index``."""
+    got = getattr(raws, "take", None)
+    if got is not None and not isinstance(raws, np.ndarray):
+        return got(index)
+    if isinstance(raws, np.ndarray):
+        return raws[index].tolist()
+    return [raws[i] for i in np.asarray(index).tolist()]
+
+
+class RawColumn(Sequence):
+    """A table's bytes column: parts (runs' :class:`RawSlices`, lists of ``bytes``) joined end to end."""
+
+    __slots__ = ("parts", "bounds")
+
+    def __init__(self, parts: list) -> None:
+        self.parts = [p for p in parts if len(p)]
+        self.bounds = np.cumsum([0] + [len(p) for p in self.parts], dtype=np.int64)
+
+    def __len__(self) -> int:
+        return int(self.bounds[-1])
+
+    def __getitem__(self, i):  # type: ignore[override]
+        if isinstance(i, slice):
+            return RawColumn([self.take(np.arange(len(self))[i])])
+        i = int(i)
+        if i < 0:
+            i += len(self)
+        if not 0 <= i < len(self):
+            raise IndexError(i)
+        k = int(np.searchsorted(self.bounds, i, "right")) - 1
+        return self.parts[k][i - int(self.bounds[k])]
+
+    def __iter__(self) -> Iterator[bytes]:
+        for p in self.parts:
+            yield from p
+
+    def take(self, index: np.ndarray) -> list[bytes]:
+        index = np.asarray(index, dtype=np.int64)
+        if len(self.parts) == 1:
+            return take(self.parts[0], index)
+        part = np.searchsorted(self.bounds, index, "right") - 1
+        got: list = [None] * index.shape[0]
+        for k in np.unique(part).tolist():
+            where = np.flatnonzero(part == k)
+            for w, v in zip(where.tolist(), take(self.parts[k], index[where] - self.bounds[k])):
+                got[w] = v
+        return got
+
+    def lengths(self) -> np.ndarray:
+        """Each entry's length in bytes."""
+        out = [p.lengths() if isinstance(p, RawSlices) else np.fromiter(map(len, p), np.int64, len(p))
+               for p in self.parts]
+        return np.concatenate(out) if out else np.zeros(0, np.int64)
+
+    def tolist(self) -> list[bytes]:
+        return list(self)
+
+    def __repr__(self) -> str:
+        return f"RawColumn({len(self)} entries in {len(self.parts)} parts)"
