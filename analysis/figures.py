@@ -75,10 +75,25 @@ def _take(column, index: np.ndarray) -> list:
     return take_raws(column, index)
 
 
-def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray) -> None:
-    """Count ``values_ms`` into the rows ``station`` of a (station, FINE bin) histogram."""
-    stations, compact = np.unique(station, return_inverse=True)
-    counts = np.bincount(compact.reshape(-1) * FINE.count + FINE.index(values_ms),
+def _present(station: np.ndarray) -> np.ndarray:
+    """The distinct stations (addresses below N_ADDR), ascending: ``np.unique`` by counting, not sorting."""
+    return np.flatnonzero(np.bincount(station, minlength=N_ADDR))
+
+
+def _groups(station: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The distinct stations and each entry's place among them (``np.unique(..., return_inverse=True)``)."""
+    present = _present(station)
+    place = np.zeros(max(N_ADDR, int(present[-1]) + 1 if present.size else 0), np.int64)
+    place[present] = np.arange(present.size)
+    return present, place[station]
+
+
+def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray,
+              groups: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+    """Count ``values_ms`` into the rows ``station`` of a (station, FINE bin) histogram
+    (``groups``: :func:`_groups` of ``station``, when the caller has it)."""
+    stations, compact = groups if groups is not None else _groups(station)
+    counts = np.bincount(compact * FINE.count + FINE.index(values_ms),
                          minlength=len(stations) * FINE.count).reshape(len(stations), FINE.count)
     target[stations] += counts
 
@@ -127,12 +142,14 @@ def tx_row(t0_ns: int, t_req_ns: int, station: int, function: int, outcome: str,
 
 
 class _Pending:
-    """A row of the block being added, by its index, until the example heaps are settled."""
+    """An example heap's row: its index in the block being added (-1 once pushed out), then
+    its values (``row``) once the block's heaps are settled."""
 
-    __slots__ = ("index",)
+    __slots__ = ("index", "row")
 
     def __init__(self, index: int) -> None:
         self.index = index
+        self.row: tuple | None = None
 
 
 @dataclass
@@ -170,10 +187,10 @@ class Accumulator:
     last_ns: int | None = None
     unknown_outcomes: int = 0
     largest_gaps: list = field(default_factory=list)     # heap of (gap_ms, t_ns)
-    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, row values)
+    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, _Pending: row values)
     failures: dict = field(default_factory=dict)         # station -> list of rows
     late_rows: dict = field(default_factory=dict)        # station -> list of rows
-    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, row values): in time, slowest
+    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, _Pending): in time, slowest
     slow_dropped: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest one dropped
     judged_ms: float | None = None  #: the timeout the in-time answers were judged against (judge())
     device_ids: dict = field(default_factory=dict)       # station -> list of str
@@ -278,10 +295,12 @@ class Accumulator:
         timed = np.isfinite(rt) & np.isin(outcome, [_OUTCOME_INDEX[o] for o in ("ok", "exception", "late")])
         if timed.any():
             s = station[timed]
+            groups = _groups(s)
             for hist, values in ((self.rt_mid, rt), (self.rt_low, np.where(np.isfinite(lo), lo, rt)),
                                  (self.rt_high, np.where(np.isfinite(hi), hi, rt))):
-                _add_hist(hist, s, values[timed])
-            _add_hist(self.halfwidth, s, np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed])
+                _add_hist(hist, s, values[timed], groups)
+            _add_hist(self.halfwidth, s, np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed],
+                      groups)
             np.fmin.at(self.rt_min, s, rt[timed])
             np.fmax.at(self.rt_max, s, rt[timed])
             in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
@@ -354,8 +373,7 @@ class Accumulator:
         n_min = int(minute.max()) + 1
         rel = minute - m0
         n_rel = n_min - m0
-        stations, compact = np.unique(station, return_inverse=True)
-        compact = compact.reshape(-1)
+        stations, compact = _groups(station)
         # one bincount over (station, minute, column) for every count column at once
         n_col = len(MINUTE_COLUMNS)
         col_of_outcome = np.full(len(OUTCOMES) + 1, -1, np.int64)
@@ -398,11 +416,11 @@ class Accumulator:
             """The listed rows of this block as plain dicts."""
             return [tx_row(self.t0_ns, *vals) for vals in values_of(index)]
 
-        # the heaps hold (value, order, row); a row of this block enters as its index, becomes a
-        # tuple of its values if it is still held at the end of the block (most are pushed out
-        # again), and a dict in figures() if it is held to the end
-        pending: list[list] = []
-        for st in np.unique(station[timed]):
+        # the heaps hold (value, order, _Pending); a row of this block enters as its index, gets
+        # a tuple of its values if it is still held at the end of the block (most are pushed out
+        # again), and becomes a dict in figures() if it is held to the end
+        born: list[_Pending] = []
+        for st in _present(station[timed]):
             heap = self.worst.setdefault(int(st), [])
             floor = heap[0][0] if len(heap) >= WORST_PER_STATION else -np.inf
             idx = np.flatnonzero(timed & (station == st) & (rt > floor))
@@ -413,10 +431,12 @@ class Accumulator:
                 if len(heap) < WORST_PER_STATION:
                     heapq.heappush(heap, item)
                 elif item[0] > heap[0][0]:
-                    heapq.heapreplace(heap, item)
-            pending.append(heap)
+                    heapq.heapreplace(heap, item)[2].index = -1
+                else:
+                    continue
+                born.append(item[2])
         in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
-        for st in np.unique(station[in_time]):
+        for st in _present(station[in_time]):
             heap = self.slow.setdefault(int(st), [])
             floor = heap[0][0] if len(heap) >= SLOW_KEEP else -np.inf
             idx = np.flatnonzero(in_time & (station == st) & (rt > floor))
@@ -427,24 +447,24 @@ class Accumulator:
             for i in idx.tolist():
                 self._seq += 1
                 item = (float(rt[i]), self._seq, _Pending(i))
+                born.append(item[2])
                 if len(heap) < SLOW_KEEP:
                     heapq.heappush(heap, item)
                 else:
                     gone = heapq.heappushpop(heap, item)
+                    gone[2].index = -1
                     self.slow_dropped[st] = max(self.slow_dropped[st], gone[0])
-            pending.append(heap)
-        held = [(heap, j) for heap in pending for j, item in enumerate(heap) if type(item[2]) is _Pending]
-        made = values_of([heap[j][2].index for heap, j in held])
-        for (heap, j), row in zip(held, made):
-            heap[j] = (heap[j][0], heap[j][1], row)  # the same keys: the heap order holds
+        held = [p for p in born if p.index >= 0 and p.row is None]
+        for p, row in zip(held, values_of([p.index for p in held])):
+            p.row = row
         failed = np.isin(outcome, [_OUTCOME_INDEX["timeout"], _OUTCOME_INDEX["corrupt"]])
-        for st in np.unique(station[failed]):
+        for st in _present(station[failed]):
             kept = self.failures.setdefault(int(st), [])
             room = FAILURES_PER_STATION - len(kept)
             if room > 0:
                 kept.extend(rows_of(np.flatnonzero(failed & (station == st))[:room].tolist()))
         late = outcome == _OUTCOME_INDEX["late"]
-        for st in np.unique(station[late]):
+        for st in _present(station[late]):
             kept = self.late_rows.setdefault(int(st), [])
             room = min(LATE_CAP - len(kept), LATE_TOTAL_CAP - sum(len(v) for v in self.late_rows.values()))
             if room > 0:
@@ -493,7 +513,7 @@ class Accumulator:
         """The plain, mergeable figures so far: a copy (feeding on does not change them), or, with
         ``copy=False`` for an accumulator that is done, its own arrays handed over."""
         def rows(heaps: dict) -> dict:
-            return {int(st): [(float(rt), tx_row(self.t0_ns, *r)) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
+            return {int(st): [(float(rt), tx_row(self.t0_ns, *r.row)) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
                     for st, h in heaps.items() if h}
 
         edges = {"first_request_ns": self.first_request_ns.copy(), "last_request_ns": self.last_request_ns.copy(),
