@@ -1,8 +1,8 @@
 """Decoding a long capture on every core: time segments decoded at once, joined where they agree.
 
 The capture's records are cut into steps (at most ``STEP_RECORDS`` records of one block), the
-same steps in every process, and the steps into ``jobs`` segments of about equal size by their
-place in the file. Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of
+same steps in every process, and the steps into ``jobs`` segments by their place in the file,
+of about equal work: the first, which needs no warm-up, takes that much more (:meth:`Plan.cut`). Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of
 records (or a sixteenth of the capture) before the segment's cut with a fresh decoder: by the
 cut, that decoder has usually seen the open requests, the master's waits and the stations'
 usual answers the decode from the start of the capture has seen (decoder state that crosses
@@ -35,15 +35,16 @@ from buswitness.records import RecordBatch
 
 #: Records per step (at most, from one block; blocks are joined up to it): the unit in which two
 #: decodes of an overlap are compared.
-STEP_RECORDS = 1 << 14
-#: ... or this many bytes of payload, whichever comes first (as the one-pass decode joins blocks).
-STEP_BYTES = 1 << 20
-#: Bytes of records a segment's decoder sees before its cut (its warm-up).
-WARM_BYTES = 2 << 20
+STEP_RECORDS = 1 << 16
+#: ... or this many bytes of payload, whichever comes first (as the one-pass decode joins blocks,
+#: decode/decoder.py JOIN_RECORDS: the decoder's cost per call wants large steps, the overlap small ones).
+STEP_BYTES = 4 << 20
+#: Bytes of records a segment's decoder sees before its cut (its warm-up): two steps at least.
+WARM_BYTES = 8 << 20
 #: ... or this share of the capture when that is more (1/16: about 3 % more decoding on two cores).
 WARM_SHARE = 16
 #: Steps the previous segment decodes past the cut.
-OVER_STEPS = 4
+OVER_STEPS = 2
 #: A capture smaller than this is decoded in one pass: starting processes costs more than it saves,
 #: and a seam that does not join costs a second decode (the 8 h demo night at 19200, 17 MB: 72 s
 #: in segments whose seam failed, 43 s in one pass; a 1 h 115200 capture, 46 MB, gains 10 %).
@@ -59,23 +60,23 @@ def tables_of(out) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
 
 
 def output_digest(out, contradictions: tuple = ()) -> str:
-    """A digest of every value of the three tables, in order (and the step's timing contradictions)."""
+    """A digest of every value of the three tables' columns, in order (and the step's timing contradictions).
+
+    Read from the decoder's numpy columns (decode/tables.py ``DecodeOutput.columns``): no DataFrame
+    is built, and a bytes column is hashed as its lengths and its bytes joined.
+    """
     h = hashlib.blake2b(repr(contradictions).encode(), digest_size=16)
-    for table in tables_of(out):
+    for table in out.columns():
         h.update(f"|{len(table)}|".encode())
-        for name in table.columns:
-            col = table[name]
-            h.update(f"{name}:{col.dtype}".encode())
-            if isinstance(col.dtype, pd.CategoricalDtype):
-                h.update(repr(list(col.cat.categories)).encode())
-                h.update(np.ascontiguousarray(col.cat.codes.to_numpy()).tobytes())
-            elif col.dtype == object:
-                for v in col.tolist():
-                    b = v if isinstance(v, (bytes, bytearray)) else repr(v).encode()
-                    h.update(len(b).to_bytes(4, "little"))
-                    h.update(b)
-            else:
-                h.update(np.ascontiguousarray(col.to_numpy()).tobytes())
+        for name, col in table.data.items():
+            if isinstance(col, np.ndarray) and col.dtype != object:
+                h.update(f"{name}:{col.dtype}".encode())
+                h.update(np.ascontiguousarray(col).tobytes())
+                continue
+            values = [v if isinstance(v, (bytes, bytearray)) else repr(v).encode() for v in col]
+            h.update(f"{name}:object".encode())
+            h.update(np.fromiter(map(len, values), np.int64, len(values)).tobytes())
+            h.update(b"".join(values))
     return h.hexdigest()
 
 
@@ -215,7 +216,17 @@ class Plan:
     jobs: int
 
     def cut(self, k: int) -> int:
-        return self.total * k // self.jobs
+        """Where segment ``k`` starts: every segment but the first also decodes its warm-up, so the
+        first takes that much more of the capture and each gets the same work (``w`` bytes decoded)."""
+        if k <= 0:
+            return 0
+        if k >= self.jobs:
+            return self.total
+        warm = self.warm_bytes
+        w = (self.total + (self.jobs - 1) * warm) // self.jobs
+        if w <= warm:  # a warm-up as long as a segment: even cuts
+            return self.total * k // self.jobs
+        return k * w - (k - 1) * warm
 
     @property
     def warm_bytes(self) -> int:

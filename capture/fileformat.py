@@ -661,7 +661,7 @@ class CaptureReader:
             ), path, pos)
             rep.blocks += 1
             rep.records += len(batch)
-            rep.data_bytes += int(batch.length.sum())
+            rep.data_bytes += plen if len(batch) == n else int(batch.length.sum())
             yield batch
 
     def _in_span(self, batch: RecordBatch, path: Path, pos: int) -> RecordBatch:
@@ -676,9 +676,9 @@ class CaptureReader:
             self._anchor_ns = int(sane[0])
         lo = max(-MAX_RECORD_NS, self._anchor_ns - MAX_SPAN_NS)
         hi = min(MAX_RECORD_NS, self._anchor_ns + MAX_SPAN_NS)
-        keep = (t >= lo) & (t <= hi)
-        if keep.all():
+        if int(t.min()) >= lo and int(t.max()) <= hi:  # the usual case: no mask to build
             return batch
+        keep = (t >= lo) & (t <= hi)
         return self._drop_times(batch, keep, path, pos)
 
     def _drop_times(self, batch: RecordBatch, keep: np.ndarray, path: Path, pos: int) -> RecordBatch:

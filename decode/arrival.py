@@ -227,10 +227,10 @@ class Timeline:
         opens = np.flatnonzero(t != prev)  # records that begin a new read
         pending = not np.isnan(self._p_t)
         # reads: the pending one (if any) first, then the new ones
-        g_first = opens if not pending or (opens.size and opens[0] == 0) else np.r_[0, opens]
+        g_first = opens if not pending or (opens.size and opens[0] == 0) else np.concatenate(([0], opens))
         g_t = t[g_first]
         g_n = np.add.reduceat(n, g_first) if g_first.size else np.zeros(0, dtype=np.int64)
-        g_rows = np.diff(np.r_[g_first, count])
+        g_rows = np.diff(np.append(g_first, count))
         g_pos = starts[g_first]
         g_lead = n[g_first]  # each read's first record: what the read before it is judged by
         carry = pending and not (opens.size and opens[0] == 0)
@@ -241,11 +241,11 @@ class Timeline:
                 g_pos[0] = self._p_pos
                 g_prev0 = self._p_prev
             else:  # the pending read is complete: it leads the list
-                g_t = np.r_[self._p_t, g_t]
-                g_n = np.r_[self._p_n, g_n]
-                g_rows = np.r_[self._p_rows, g_rows]
-                g_pos = np.r_[self._p_pos, g_pos]
-                g_lead = np.r_[0, g_lead]  # (the pending read's own is never read)
+                g_t = np.concatenate(([self._p_t], g_t))
+                g_n = np.concatenate(([self._p_n], g_n))
+                g_rows = np.concatenate(([self._p_rows], g_rows))
+                g_pos = np.concatenate(([self._p_pos], g_pos))
+                g_lead = np.concatenate(([0], g_lead))  # (the pending read's own is never read)
                 g_prev0 = self._p_prev
         else:
             g_prev0 = float("nan")

@@ -577,7 +577,7 @@ class Decoder:
         payload = batch.payload.tobytes()
         offsets = batch.offsets
         lengths = batch.length
-        ports = np.unique(batch.port)
+        ports = np.flatnonzero(np.bincount(batch.port))  # the ports present, ascending (port numbers are one byte)
         single = ports.size == 1 and set(self.ports) <= {int(ports[0])} and self.proto.bulk is not None
         plain = ((batch.flags & ~np.uint8(FLAG_UNTIMED)) == 0) & (lengths > 0)
         if not single:
@@ -872,8 +872,10 @@ class Decoder:
 
 #: Reader batches are joined up to about this many records (or JOIN_BYTES bytes) before decoding:
 #: a recording flushes a block a second, and the decoder's cost per call outweighs a second's records.
-JOIN_RECORDS = 1 << 14
-JOIN_BYTES = 1 << 20
+#: (1 h at 115200 from a 1 ms adapter, one pass: 1.12 s at 16k records, 0.96 s at 64k, 0.81 s at
+#: 128k; peak memory 183, 211, 225 MB.)
+JOIN_RECORDS = 1 << 17
+JOIN_BYTES = 8 << 20
 
 
 def joined_batches(batches: Iterable[RecordBatch], records: int = JOIN_RECORDS,
