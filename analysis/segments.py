@@ -35,11 +35,12 @@ from buswitness.records import RecordBatch
 
 #: Records per step (at most, from one block; blocks are joined up to it): the unit in which two
 #: decodes of an overlap are compared.
-STEP_RECORDS = 1 << 16
-#: ... or this many bytes of payload, whichever comes first (as the one-pass decode joins blocks,
-#: decode/decoder.py JOIN_RECORDS: the decoder's cost per call wants large steps, the overlap small ones).
-STEP_BYTES = 4 << 20
-#: Bytes of records a segment's decoder sees before its cut (its warm-up): two steps at least.
+STEP_RECORDS = 1 << 15
+#: ... or this many bytes of payload, whichever comes first (the decoder's cost per call wants large
+#: steps, memory and the overlap small ones: 24 h at 1 ms in two segments, 16k records a step 15.9 s,
+#: 32k 12.9-14.1 s, 64k 14.4 s; peak of the 16 ms bench day 250, 267-271, 335 MB).
+STEP_BYTES = 2 << 20
+#: Bytes of records a segment's decoder sees before its cut (its warm-up): four steps at least.
 WARM_BYTES = 8 << 20
 #: ... or this share of the capture when that is more (1/16: about 3 % more decoding on two cores).
 WARM_SHARE = 16
