@@ -2,11 +2,11 @@
 
 The capture's records are cut into steps (at most ``STEP_RECORDS`` records of one block), the
 same steps in every process, and the steps into ``jobs`` segments by their place in the file,
-of about equal work: the first, which needs no warm-up, takes that much more (:meth:`Plan.cut`). Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of
-records (or a sixteenth of the capture) before the segment's cut with a fresh decoder: by the
-cut, that decoder has usually seen the open requests, the master's waits and the stations'
-usual answers the decode from the start of the capture has seen (decoder state that crosses
-the seam). The process before it decodes on ``OVER_STEPS`` steps past the cut.
+of about equal work: the first, which needs no warm-up, takes that much more (:meth:`Plan.cut`).
+Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of records (or a
+sixteenth of the capture) before the segment's cut with a fresh decoder: by the cut, that
+decoder has usually seen the open requests, the master's waits and the stations' usual answers
+the decode from the start of the capture has seen (decoder state that crosses the seam). The process before it decodes on ``OVER_STEPS`` steps past the cut.
 
 The join is checked, never assumed. Over the overlap the two processes' tables (frames,
 transactions, events, and the timing contradictions counted) must be the same, step by step,

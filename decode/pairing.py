@@ -174,7 +174,6 @@ def _response_columns(timed: bool, a_mid, a_lo, a_hi, q_mid, q_lo, q_hi) -> tupl
     return mid, low, high, conflict, before
 
 
-
 def _address_groups(stations: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The distinct addresses, ascending, and each entry's place among them: what
     ``np.unique(stations, return_inverse=True)`` gives, by counting (addresses are one byte), not sorting."""
@@ -182,6 +181,7 @@ def _address_groups(stations: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     place = np.zeros(present[-1] + 1 if present.size else 1, np.int64)
     place[present] = np.arange(present.size)
     return present, place[stations]
+
 
 class Pairing:
     """Pair frames into transactions; returns transactions (in request order) and events."""
