@@ -873,9 +873,10 @@ class Decoder:
 #: Reader batches are joined up to about this many records (or JOIN_BYTES bytes) before decoding:
 #: a recording flushes a block a second, and the decoder's cost per call outweighs a second's records.
 #: (1 h at 115200 from a 1 ms adapter, one pass, best of 3 in one process: 1.12 s at 16k records,
-#: 0.96 s at 64k, 0.81 s at 128k; peak memory 183, 211, 225 MB.)
-JOIN_RECORDS = 1 << 17
-JOIN_BYTES = 8 << 20
+#: 0.96 s at 64k, 0.81 s at 128k; peak memory 183, 211, 225 MB. The same hour as hex text, whose
+#: first 300k records are also kept for the latency sample: 206, 252, 341 MB. 64k it is.)
+JOIN_RECORDS = 1 << 16
+JOIN_BYTES = 4 << 20
 
 
 def joined_batches(batches: Iterable[RecordBatch], records: int = JOIN_RECORDS,
