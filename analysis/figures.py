@@ -21,6 +21,7 @@ from buswitness.analysis.devid import device_id_text
 from buswitness.analysis.histogram import COARSE, FINE, LogBins, count_above, quantile, quantiles_rows
 from buswitness.decode.events import EVENT_KINDS as DECODER_EVENT_KINDS
 from buswitness.decode.events import OUTCOMES
+from buswitness.decode.pairing import address_groups
 from buswitness.decode.rawbytes import take as take_raws
 from buswitness.decode.tables import Columns
 
@@ -80,12 +81,8 @@ def _present(station: np.ndarray) -> np.ndarray:
     return np.flatnonzero(np.bincount(station, minlength=N_ADDR))
 
 
-def _groups(station: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The distinct stations and each entry's place among them (``np.unique(..., return_inverse=True)``)."""
-    present = _present(station)
-    place = np.zeros(max(N_ADDR, int(present[-1]) + 1 if present.size else 0), np.int64)
-    place[present] = np.arange(present.size)
-    return present, place[station]
+#: The distinct stations and each entry's place among them (``np.unique(..., return_inverse=True)``).
+_groups = address_groups
 
 
 def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray,

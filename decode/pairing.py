@@ -174,7 +174,7 @@ def _response_columns(timed: bool, a_mid, a_lo, a_hi, q_mid, q_lo, q_hi) -> tupl
     return mid, low, high, conflict, before
 
 
-def _address_groups(stations: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def address_groups(stations: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The distinct addresses, ascending, and each entry's place among them: what
     ``np.unique(stations, return_inverse=True)`` gives, by counting (addresses are one byte), not sorting."""
     present = np.flatnonzero(np.bincount(stations))
@@ -395,7 +395,7 @@ class Pairing:
         pair (NaN times on an untimed capture). The run leaves nothing open.
         """
         if stations.size:
-            uniq, inverse = _address_groups(stations)
+            uniq, inverse = address_groups(stations)
             counts = np.bincount(inverse)
             slowest = np.full(uniq.size, -np.inf)
             finite = np.isfinite(response_ns)

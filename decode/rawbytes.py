@@ -42,28 +42,14 @@ class RawSlices(Sequence):
         buf = self.buf
         return [buf[a:a + n] for a, n in zip(self.starts[index].tolist(), self.lens[index].tolist())]
 
-    def lengths(self) -> np.ndarray:
-        return np.asarray(self.lens, dtype=np.int64)
-
-    def tolist(self) -> list[bytes]:
-        return list(self)
-
-    def __eq__(self, other: object) -> bool:
-        if isinstance(other, (RawSlices, RawColumn, list, tuple)):
-            return len(self) == len(other) and all(a == b for a, b in zip(self, other))
-        return NotImplemented
-
-    __hash__ = None  # type: ignore[assignment]
-
     def __repr__(self) -> str:
         return f"RawSlices({len(self)} frames)"
 
 
 def take(raws: Sequence, index: np.ndarray) -> list[bytes]:
     """The entries of ``raws`` (a list, an object array, :class:`RawSlices` or :class:`RawColumn`) at ``index``."""
-    got = getattr(raws, "take", None)
-    if got is not None and not isinstance(raws, np.ndarray):
-        return got(index)
+    if isinstance(raws, (RawSlices, RawColumn)):
+        return raws.take(index)
     if isinstance(raws, np.ndarray):
         return raws[index].tolist()
     return [raws[i] for i in np.asarray(index).tolist()]
@@ -107,15 +93,6 @@ class RawColumn(Sequence):
             for w, v in zip(where.tolist(), take(self.parts[k], index[where] - self.bounds[k])):
                 got[w] = v
         return got
-
-    def lengths(self) -> np.ndarray:
-        """Each entry's length in bytes."""
-        out = [p.lengths() if isinstance(p, RawSlices) else np.fromiter(map(len, p), np.int64, len(p))
-               for p in self.parts]
-        return np.concatenate(out) if out else np.zeros(0, np.int64)
-
-    def tolist(self) -> list[bytes]:
-        return list(self)
 
     def __repr__(self) -> str:
         return f"RawColumn({len(self)} entries in {len(self.parts)} parts)"

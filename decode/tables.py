@@ -110,16 +110,22 @@ def transactions_frame(chunks: list[dict], proto=None) -> pd.DataFrame:
     return pd.DataFrame(data, columns=list(TRANSACTION_COLUMNS) + extra)
 
 
-def events_frame(events: list[Damage], proto=None) -> pd.DataFrame:
-    data = {
+def event_columns(events: list[Damage]) -> dict:
+    """Columns of the events table for event objects (kinds as codes, -1 for one this build does not know)."""
+    return {
         "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
-        "kind": pd.Categorical.from_codes(np.array([EVENT_CODE.get(e.kind, -1) for e in events], dtype=np.int8),
-                                          dtype=_EVENT_DTYPE),
+        "kind": np.array([EVENT_CODE.get(e.kind, -1) for e in events], dtype=np.int8),
         "station": np.array([e.station for e in events], dtype=np.int16),
         "port": np.array([e.port for e in events], dtype=np.uint8),
-        "raw": pd.Series([e.raw for e in events], dtype=object),
-        "detail": pd.Series([e.detail for e in events], dtype=object),
+        "raw": [e.raw for e in events], "detail": [e.detail for e in events],
     }
+
+
+def events_frame(events: list[Damage], proto=None) -> pd.DataFrame:
+    data = event_columns(events)
+    data["kind"] = pd.Categorical.from_codes(data["kind"], dtype=_EVENT_DTYPE)
+    data["raw"] = pd.Series(data["raw"], dtype=object)
+    data["detail"] = pd.Series(data["detail"], dtype=object)
     extra = [] if proto is None else _neutral(data, len(events), proto, "")
     return pd.DataFrame(data, columns=list(EVENT_COLUMNS) + extra)
 
@@ -194,14 +200,7 @@ class DecodeOutput:
                 if name not in ("request_raw", "response_raw")}
         txns["request_raw"] = RawColumn([c["request_raw"] for c in txn_chunks])
         txns["response_raw"] = RawColumn([c["response_raw"] for c in txn_chunks])
-        ev = {
-            "t_ns": np.array([e.t_ns for e in events], dtype=np.int64),
-            "kind": np.array([EVENT_CODE.get(e.kind, -1) for e in events], dtype=np.int8),
-            "station": np.array([e.station for e in events], dtype=np.int16),
-            "port": np.array([e.port for e in events], dtype=np.uint8),
-            "raw": [e.raw for e in events], "detail": [e.detail for e in events],
-        }
-        return Columns(frames), Columns(txns), Columns(ev)
+        return Columns(frames), Columns(txns), Columns(event_columns(events))
 
     def _table(self, k: int) -> pd.DataFrame:
         table = self._tables[k]
