@@ -174,35 +174,49 @@ def decoder_state(decoder) -> str | None:
     return h.hexdigest()
 
 
-def steps(reader) -> Iterator[tuple[int, int, RecordBatch]]:
+def steps(reader, skip_before: int = 0) -> Iterator[tuple[int, int, RecordBatch]]:
     """(step index, place in the file before it, records) over the whole capture, the same in every process.
 
     A block larger than ``STEP_RECORDS`` is cut; smaller consecutive blocks (a recording writes
     one a second) are joined up to ``STEP_RECORDS`` records or ``STEP_BYTES`` bytes, as the
     one-pass decode joins them (decode/decoder.py ``joined_batches``): the decoder's cost is per
     call, and a step is also the unit the overlap digests are compared in.
+
+    Steps that start before ``skip_before`` are counted and placed but neither built nor
+    yielded: a later segment reads past the capture's first part only to number its steps
+    (every block is still read and checked, so damage there numbers them as in every process).
     """
-    i = pos = 0
+    i = pos = start = count = size = 0
     pending: list[RecordBatch] = []
-    start = count = size = 0
     for batch in reader.iter_batches():
         n = len(batch)
         if not n:
             continue
+        if n <= STEP_RECORDS and (start if count else pos) < skip_before:
+            p1 = int(batch.length.sum())
+            if count + n < STEP_RECORDS and size + p1 < STEP_BYTES:  # a block inside a skipped step
+                if not count:
+                    start = pos
+                count += n
+                size += p1
+                pos += n * _RECORD_BYTES + p1
+                continue
         ends = np.cumsum(batch.length)
         for a in range(0, n, STEP_RECORDS):
             b = min(a + STEP_RECORDS, n)
             p0 = int(ends[a - 1]) if a else 0
             p1 = int(ends[b - 1])
-            if not pending:
+            if not count:
                 start = pos
-            pending.append(RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b], batch.flags[a:b],
-                                       batch.payload[p0:p1]))
+            if start >= skip_before:
+                pending.append(RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b],
+                                           batch.flags[a:b], batch.payload[p0:p1]))
             count += b - a
             size += p1 - p0
             pos += (b - a) * _RECORD_BYTES + (p1 - p0)
             if count >= STEP_RECORDS or size >= STEP_BYTES:
-                yield i, start, pending[0] if len(pending) == 1 else RecordBatch.concat(pending)
+                if start >= skip_before:
+                    yield i, start, pending[0] if len(pending) == 1 else RecordBatch.concat(pending)
                 i += 1
                 pending, count, size = [], 0, 0
     if pending:
@@ -283,7 +297,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
     def owned_outputs():
         started = False
         next_cut_step = None
-        for i, pos, batch in steps(reader):
+        for i, pos, batch in steps(reader, plan.warm(k) if k else 0):
             if not started:
                 if k and pos < plan.warm(k):
                     continue

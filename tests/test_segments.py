@@ -182,3 +182,30 @@ def test_steps_join_small_blocks_and_cut_large_ones_the_same_in_every_process(mo
     assert np.concatenate([b.t_ns for _i, _p, b in got]).tolist() == list(range(97))
     again = list(segments.steps(Reader()))
     assert [(i, p, b.t_ns.tolist()) for i, p, b in again] == [(i, p, b.t_ns.tolist()) for i, p, b in got]
+
+
+def test_a_later_segment_skipping_the_start_gets_the_very_steps_of_a_full_reading(monkeypatch):
+    """Steps before a later segment's warm-up are numbered and placed but not built: the steps it
+    does get are the ones a full reading gives, index, place and records alike."""
+    import numpy as np
+    from buswitness.records import RecordBatch
+    monkeypatch.setattr(segments, "STEP_RECORDS", 25)
+    monkeypatch.setattr(segments, "STEP_BYTES", 70)
+    rng = np.random.default_rng(3)
+    blocks = [rng.integers(1, 6, size=n) for n in rng.choice([0, 1, 3, 10, 24, 25, 26, 60], size=80)]
+
+    class Reader:
+        def iter_batches(self):
+            t = 0
+            for lengths in blocks:
+                n = len(lengths)
+                yield RecordBatch(np.arange(t, t + n, dtype=np.int64), lengths.astype(np.int64),
+                                  np.zeros(n, np.uint8), np.zeros(n, np.uint8),
+                                  np.zeros(int(lengths.sum()), np.uint8))
+                t += n
+
+    full = [(i, p, b.t_ns.tolist()) for i, p, b in segments.steps(Reader())]
+    assert len(full) > 20
+    for skip in sorted({p for _i, p, _b in full} | {1, 500, 10**9}):
+        got = [(i, p, b.t_ns.tolist()) for i, p, b in segments.steps(Reader(), skip)]
+        assert got == [s for s in full if s[1] >= skip], skip
