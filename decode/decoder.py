@@ -307,7 +307,7 @@ class _Port:
     def _scan_bulk_to(self, end: int, pieces: list) -> None:
         sc = self.scanner
         bulk = self.proto.bulk
-        buf = bytes(self.buf[:end]) if end < len(self.buf) else bytes(self.buf)
+        buf = bytes(memoryview(self.buf)[:end])  # one copy (a bytearray slice would be a second)
         arr = np.frombuffer(buf, dtype=np.uint8)
         # The bulk path never runs a frame across a certain silence or a silence over t1.5:
         # those frames need the sequential framer's judgement and events.
