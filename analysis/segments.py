@@ -6,7 +6,8 @@ of about equal work: the first, which needs no warm-up, takes that much more (:m
 Segment ``k`` is decoded by its own process, which starts ``WARM_BYTES`` of records (or a
 sixteenth of the capture) before the segment's cut with a fresh decoder: by the cut, that
 decoder has usually seen the open requests, the master's waits and the stations' usual answers
-the decode from the start of the capture has seen (decoder state that crosses the seam). The process before it decodes on ``OVER_STEPS`` steps past the cut.
+the decode from the start of the capture has seen (decoder state that crosses the seam). The
+process before it decodes on ``OVER_STEPS`` steps past the cut.
 
 The join is checked, never assumed. Over the overlap the two processes' tables (frames,
 transactions, events, and the timing contradictions counted) must be the same, step by step,
@@ -30,7 +31,6 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
 
 import numpy as np
-import pandas as pd
 from buswitness.records import RecordBatch
 
 #: Records per step (at most, from one block; blocks are joined up to it): the unit in which two
@@ -53,11 +53,6 @@ PARALLEL_MIN_BYTES = 64 << 20
 #: At most this many segments, whatever the core count.
 MAX_JOBS = 8
 _RECORD_BYTES = 12  # one record's entry in a block's index (capture/fileformat.py INDEX_DTYPE)
-
-
-def tables_of(out) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    """The three tables of a decoder output (decode/tables.py ``DecodeOutput``): the one adaptor to its form."""
-    return out.to_frames()
 
 
 def output_digest(out, contradictions: tuple = ()) -> str:
@@ -192,15 +187,6 @@ def steps(reader, skip_before: int = 0) -> Iterator[tuple[int, int, RecordBatch]
         n = len(batch)
         if not n:
             continue
-        if n <= STEP_RECORDS and (start if count else pos) < skip_before:
-            p1 = int(batch.length.sum())
-            if count + n < STEP_RECORDS and size + p1 < STEP_BYTES:  # a block inside a skipped step
-                if not count:
-                    start = pos
-                count += n
-                size += p1
-                pos += n * _RECORD_BYTES + p1
-                continue
         ends = np.cumsum(batch.length)
         for a in range(0, n, STEP_RECORDS):
             b = min(a + STEP_RECORDS, n)

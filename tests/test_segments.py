@@ -42,7 +42,7 @@ def _one_pass(path: Path):
 
 
 def _tables(outs) -> list[pd.DataFrame]:
-    return [pd.concat([segments.tables_of(o)[i] for o in outs], ignore_index=True) for i in range(3)]
+    return [pd.concat([o.to_frames()[i] for o in outs], ignore_index=True) for i in range(3)]
 
 
 def _assert_same_tables(a, b) -> None:
