@@ -338,15 +338,18 @@ class _Port:
                 else:
                     starts, lens, shapes, expect, addrs, fcs = bulk.spans(buf, arr, sc.pos, end,
                                                                           self.expect_response, self.one_way)
-                if starts.size and self._held:
+                keep = starts.size
+                if keep and self._held:
                     # stop before the first frame that comes after a held event's bytes
                     keep = int(np.searchsorted(starts, min(h[0] for h in self._held) - self.base, "left"))
-                    if keep < starts.size:
-                        starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
-                                                            fcs[:keep])
-                        expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
-                if starts.size and stops.size:
-                    # the first frame with a stop inside it that its own reads do not explain away
+                if keep and sc.breaks:
+                    # and before the first frame from a break mark on: the sequential framer judges the
+                    # mark (the idle-line 0x00 of a driver letting go, when it is right behind a frame)
+                    later = bisect_left(sc.breaks, sc.pos)
+                    if later < len(sc.breaks):
+                        keep = min(keep, int(np.searchsorted(starts, sc.breaks[later], "left")))
+                if keep and stops.size:
+                    # and before the first frame with a stop inside it that its own reads do not explain away
                     f = np.searchsorted(starts, stops, "right") - 1
                     valid = f >= 0
                     fv = np.maximum(f, 0)
@@ -354,10 +357,11 @@ class _Port:
                     inside = valid & (stops > starts[fv]) & (stops < ends_f)
                     inside &= forgiven < 0
                     if inside.any():
-                        keep = int(f[inside].min())
-                        starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
-                                                            fcs[:keep])
-                        expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
+                        keep = min(keep, int(f[inside].min()))
+                if keep < starts.size:
+                    starts, lens, shapes, addrs, fcs = (starts[:keep], lens[:keep], shapes[:keep], addrs[:keep],
+                                                        fcs[:keep])
+                    expect = bool(shapes[-1] != RESPONSE) if keep else self.expect_response
                 if starts.size:
                     raws = (bulk.frame_bytes(buf, starts, lens) if hasattr(bulk, "frame_bytes")
                             else RawSlices(buf, starts, lens))
