@@ -49,7 +49,7 @@ class Scanner(Protocol):
 class FieldProtocol(Protocol):
     name: str            # registry name, e.g. "modbus-rtu"
     label: str           # for people, e.g. "Modbus RTU"
-    marks_bytes: bool    # the scanner takes UART marks and breaks (add_mark, add_break, after_frame)
+    marks_bytes: bool    # the scanner takes UART marks and breaks (add_mark, add_break, breaks, after_frame)
     bulk: Any            # a bulk path (``spans``, ``after_run``, optionally ``walker``) or None
     station_label: str   # what a station is called ("station", "slave")
 
@@ -67,6 +67,7 @@ class NoMarks:
 
     after_frame = False
     junk_start = None
+    breaks: tuple = ()  # positions of break marks not yet judged: never any
 
     def add_mark(self, at: int) -> None:
         pass
