@@ -31,6 +31,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
 
 import numpy as np
+from buswitness.decode.rawbytes import RawColumn
 from buswitness.records import RecordBatch
 
 #: Records per step (at most, from one block; blocks are joined up to it): the unit in which two
@@ -61,7 +62,7 @@ def output_digest(out, contradictions: tuple = ()) -> str:
     Read from the decoder's numpy columns (decode/tables.py ``DecodeOutput.columns``): no DataFrame
     is built, and a bytes column is hashed as its lengths and its bytes joined.
     """
-    h = hashlib.blake2b(repr(contradictions).encode(), digest_size=16)
+    h = hashlib.sha256(repr(contradictions).encode())  # sha256: twice blake2b here (the CPU hashes it)
     for table in out.columns():
         h.update(f"|{len(table)}|".encode())
         for name, col in table.data.items():
@@ -69,10 +70,14 @@ def output_digest(out, contradictions: tuple = ()) -> str:
                 h.update(f"{name}:{col.dtype}".encode())
                 h.update(np.ascontiguousarray(col).tobytes())
                 continue
-            values = [v if isinstance(v, (bytes, bytearray)) else repr(v).encode() for v in col]
+            if isinstance(col, RawColumn):
+                lens, data = col.joined()
+            else:
+                values = [v if isinstance(v, (bytes, bytearray)) else repr(v).encode() for v in col]
+                lens, data = np.fromiter(map(len, values), np.int64, len(values)), b"".join(values)
             h.update(f"{name}:object".encode())
-            h.update(np.fromiter(map(len, values), np.int64, len(values)).tobytes())
-            h.update(b"".join(values))
+            h.update(lens.tobytes())
+            h.update(data)
     return h.hexdigest()
 
 

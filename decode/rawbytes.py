@@ -42,8 +42,27 @@ class RawSlices(Sequence):
         buf = self.buf
         return [buf[a:a + n] for a, n in zip(self.starts[index].tolist(), self.lens[index].tolist())]
 
+    def joined(self) -> tuple[np.ndarray, bytes]:
+        """Every frame's length, and their bytes end to end: gathered in one step, no ``bytes`` per frame."""
+        lens = np.asarray(self.lens, np.int64)
+        total = int(lens.sum())
+        if not total:
+            return lens, b""
+        shift = np.asarray(self.starts, np.int64) - (np.cumsum(lens) - lens)  # buffer offset minus joined offset
+        where = np.repeat(shift, lens) + np.arange(total, dtype=np.int64)
+        return lens, np.frombuffer(self.buf, np.uint8)[where].tobytes()
+
     def __repr__(self) -> str:
         return f"RawSlices({len(self)} frames)"
+
+
+def joined(raws: Sequence) -> tuple[np.ndarray, bytes]:
+    """The entries' lengths and their bytes end to end, whatever holds them: the same for the same
+    bytes (what a digest of a bytes column reads)."""
+    if isinstance(raws, (RawSlices, RawColumn)):
+        return raws.joined()
+    values = [bytes(v) for v in raws]
+    return np.fromiter(map(len, values), np.int64, len(values)), b"".join(values)
 
 
 def take(raws: Sequence, index: np.ndarray) -> list[bytes]:
@@ -93,6 +112,13 @@ class RawColumn(Sequence):
             for w, v in zip(where.tolist(), take(self.parts[k], index[where] - self.bounds[k])):
                 got[w] = v
         return got
+
+    def joined(self) -> tuple[np.ndarray, bytes]:
+        """Every entry's length, and their bytes end to end (as :meth:`RawSlices.joined`)."""
+        got = [joined(p) for p in self.parts]
+        if not got:
+            return np.zeros(0, np.int64), b""
+        return np.concatenate([g[0] for g in got]), b"".join(g[1] for g in got)
 
     def __repr__(self) -> str:
         return f"RawColumn({len(self)} entries in {len(self.parts)} parts)"
