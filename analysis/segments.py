@@ -31,6 +31,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
 
 import numpy as np
+from buswitness.capture.fileformat import SkimmedBlock, WatchPoint
 from buswitness.decode.rawbytes import RawColumn
 from buswitness.records import RecordBatch
 
@@ -183,23 +184,30 @@ def steps(reader, skip_before: int = 0) -> Iterator[tuple[int, int, RecordBatch]
     call, and a step is also the unit the overlap digests are compared in.
 
     Steps that start before ``skip_before`` are counted and placed but neither built nor
-    yielded: a later segment reads past the capture's first part only to number its steps
-    (every block is still read and checked, so damage there numbers them as in every process).
+    yielded: a later segment passes over the capture's first part only to number its steps. A
+    reader that can skims the blocks there (``iter_skimming``: their sizes from their headers, the
+    bodies neither read nor checked); a block damaged there numbers the steps after it otherwise
+    than a full reading does, which the segment's :class:`WatchPoint` shows (:func:`seams_agree`).
     """
     i = pos = start = count = size = 0
     pending: list[RecordBatch] = []
-    for batch in reader.iter_batches():
+    skims = skip_before > 0 and hasattr(reader, "iter_skimming")
+    for batch in reader.iter_skimming(skip_before, STEP_RECORDS) if skims else reader.iter_batches():
         n = len(batch)
         if not n:
             continue
-        ends = np.cumsum(batch.length)
+        skimmed = isinstance(batch, SkimmedBlock)
+        lengths = batch.lengths if skimmed else batch.length
+        ends = np.cumsum(lengths) if lengths is not None else None  # None: a skimmed block of one step
         for a in range(0, n, STEP_RECORDS):
             b = min(a + STEP_RECORDS, n)
             p0 = int(ends[a - 1]) if a else 0
-            p1 = int(ends[b - 1])
+            p1 = int(ends[b - 1]) if ends is not None else batch.payload
             if not count:
                 start = pos
             if start >= skip_before:
+                if skimmed:
+                    raise RuntimeError("a skimmed block reached past the place skimming was asked to stop")
                 pending.append(RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b],
                                            batch.flags[a:b], batch.payload[p0:p1]))
             count += b - a
@@ -263,6 +271,8 @@ class SegmentResult:
     rises: list = field(default_factory=list)   #: (step, {station: slowest answer}) whenever one rose
     consulted: set = field(default_factory=set)  #: steps in which pairing read a slowest answer
     handover: int = -1                          #: the last step before this segment's own rows
+    head_watch: WatchPoint | None = None        #: where its reader stood at its warm-up's place
+    tail_watch: WatchPoint | None = None        #: ... and at the next segment's warm-up's place
 
 
 def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool = False) -> SegmentResult:
@@ -276,6 +286,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
     reader = CaptureReader([str(p) for p in paths])
     decoder = Decoder(cfg)
     last = k == plan.jobs - 1
+    reader.watch(*([plan.warm(k)] if k else []), *([] if last else [plan.warm(k + 1)]))
     out = SegmentResult(k)
     state = {"cut": None}
     step = [0]
@@ -341,6 +352,8 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
         out.tables = list(owned_outputs())
     else:
         out.figures = analyze_tables(header, owned_outputs(), AnalysisOptions()).unjudged
+    out.head_watch = reader.watched.get(plan.warm(k)) if k else None
+    out.tail_watch = None if last else reader.watched.get(plan.warm(k + 1))
     if last:
         out.report = reader.report
     return out
@@ -367,6 +380,23 @@ def _slowest_settled(prev: SegmentResult, seg: SegmentResult) -> bool:
     return not any(seg.handover < i <= settled for i in seg.consulted)
 
 
+def _same_place(a: WatchPoint | None, b: WatchPoint | None) -> bool:
+    """True when two readers stood at the same block, having placed the same blocks before it: the
+    later segment skimmed the capture's start and a full reading agrees with its count."""
+    return a is not None and b is not None and (a.part, a.offset, a.place) == (b.part, b.offset, b.place)
+
+
+def read_report(parts: list[SegmentResult]):
+    """The capture's read report from the segments' readers: each counts the blocks from its own
+    warm-up's place to the next one's (where the next reader takes over)."""
+    whole = parts[0].tail_watch.report if len(parts) > 1 else parts[0].report
+    whole = whole.since(type(whole)())  # a copy
+    for k, seg in enumerate(parts[1:], start=1):
+        end = seg.report if k == len(parts) - 1 else seg.tail_watch.report
+        whole.add(end.since(seg.head_watch.report))
+    return whole
+
+
 def seams_agree(parts: list[SegmentResult]) -> list[int]:
     """The seams (k: between segment k-1 and k) that did not join.
 
@@ -378,7 +408,8 @@ def seams_agree(parts: list[SegmentResult]) -> list[int]:
     bad = []
     for prev, seg in zip(parts, parts[1:]):
         needed = [i for i in seg.head if i >= seg.agree_from]
-        if (seg.agree_from < 0 or not needed or any(prev.tail.get(i) != seg.head[i] for i in needed)
+        if (not _same_place(prev.tail_watch, seg.head_watch)
+                or seg.agree_from < 0 or not needed or any(prev.tail.get(i) != seg.head[i] for i in needed)
                 or seg.head_state is None or seg.head_state != prev.tail_state
                 or not _slowest_settled(prev, seg)):
             bad.append(seg.k)
@@ -442,11 +473,11 @@ def decode_parallel(source, header, cfg, jobs: int, notice: Callable[[str], None
         for port, n in p.contradictions.items():
             contradictions[port] = contradictions.get(port, 0) + n
     report = getattr(source, "report", None)
-    last = parts[-1].report
-    if report is not None and last is not None:
+    whole = read_report(parts)
+    if report is not None:
         keep = {"files", "missing_parts", "warnings"}
-        for f in fields(last):
+        for f in fields(whole):
             if f.name not in keep:
-                setattr(report, f.name, getattr(last, f.name))
-        report.warnings = list(report.warnings) + [w for w in last.warnings if w not in report.warnings]
+                setattr(report, f.name, getattr(whole, f.name))
+        report.warnings = list(report.warnings) + [w for w in whole.warnings if w not in report.warnings]
     return Parallel(figures, contradictions, report)

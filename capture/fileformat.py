@@ -19,6 +19,7 @@ Format version changelog:
 from __future__ import annotations
 
 import contextlib
+import copy
 import json
 import os
 import re
@@ -467,12 +468,61 @@ class ReadReport:
         return not (self.truncated_tail or self.bad_blocks or self.bytes_skipped or self.missing_parts
                     or self.lines_skipped or self.bad_time_records or self.read_error)
 
+    def since(self, earlier: ReadReport) -> ReadReport:
+        """What was found after ``earlier`` (a copy of this report taken before): counts, flags and warnings."""
+        return ReadReport(
+            files=list(self.files), missing_parts=list(self.missing_parts),
+            **{name: getattr(self, name) - getattr(earlier, name) for name in _REPORT_COUNTS},
+            truncated_tail=self.truncated_tail and not earlier.truncated_tail,
+            read_error=self.read_error if self.read_error != earlier.read_error else "",
+            warnings=self.warnings[len(earlier.warnings):])
+
+    def add(self, later: ReadReport) -> None:
+        """Take in what ``later`` (a report of the part read after this one) found."""
+        for name in _REPORT_COUNTS:
+            setattr(self, name, getattr(self, name) + getattr(later, name))
+        self.truncated_tail = self.truncated_tail or later.truncated_tail
+        self.read_error = self.read_error or later.read_error
+        self.warnings = self.warnings + [w for w in later.warnings if w not in self.warnings]
+
     def summary(self) -> str:
         lines = [f"{self.records} records, {self.data_bytes} bytes in {self.blocks} blocks, {len(self.files)} file(s)"]
         if self.lines_skipped:
             lines.append(f"{self.lines_skipped} malformed line{'s' if self.lines_skipped != 1 else ''} skipped")
         lines.extend(self.warnings)
         return "\n".join(lines)
+
+
+#: The counts of a :class:`ReadReport` (added up over the parts of a capture read apart).
+_REPORT_COUNTS = ("records", "data_bytes", "blocks", "truncated_records_kept", "bad_blocks", "bad_block_records",
+                  "bytes_skipped", "lines_skipped", "bad_time_records")
+
+
+@dataclass(frozen=True)
+class SkimmedBlock:
+    """A block passed over unread (:meth:`CaptureReader.iter_skimming`): how many records, how many bytes.
+
+    Its header was read and checked, its body was not (its checksum neither): a reading that
+    relies on it must check later that a full reading placed the same blocks (:class:`WatchPoint`).
+    """
+
+    records: int
+    payload: int
+    lengths: np.ndarray | None = None  #: each record's length, read only for a block of many records
+
+    def __len__(self) -> int:
+        return self.records
+
+
+@dataclass(frozen=True)
+class WatchPoint:
+    """Where reading stood at the block that reaches past a place asked for (:meth:`CaptureReader.watch`),
+    before reading it: two readers at the same point have placed the same blocks before it."""
+
+    part: int      #: which file of the set
+    offset: int    #: the block's byte offset in that file
+    place: int     #: records x 12 + payload bytes of every block read or skimmed before it
+    report: ReadReport  #: a copy of the reader's report there
 
 
 def read_header(path: str | os.PathLike) -> CaptureHeader:
@@ -568,6 +618,11 @@ class CaptureReader:
             paths, missing = [Path(p) for p in path], []
         self.read_size = read_size
         self._anchor_ns: int | None = None
+        self._place = 0                 # records x 12 + payload of the blocks read or skimmed so far
+        self._skim_until = 0            # skim whole blocks that end at or before this place
+        self._lengths_over = 0          # ... reading the lengths of a skimmed block of more records
+        self._marks: list[int] = []     # places still watched for, ascending
+        self.watched: dict[int, WatchPoint] = {}
         self.header = read_header(paths[0])
         self.paths: list[Path] = []
         for p in paths:
@@ -584,17 +639,40 @@ class CaptureReader:
                 f"the time they covered is a gap in every figure")
 
     def iter_batches(self) -> Iterator[RecordBatch]:
-        for p in self.paths:
-            yield from self._iter_file(p)
+        yield from self.iter_skimming(0)
+
+    def iter_skimming(self, skim_until: int, lengths_over: int = 0) -> Iterator[RecordBatch | SkimmedBlock]:
+        """The batches, but the capture's start passed over: a block that ends at or before place
+        ``skim_until`` (records x 12 + payload bytes from the start) is yielded as a
+        :class:`SkimmedBlock`, its body neither read nor checked (nor counted in ``report``), with
+        its records' lengths when it holds more than ``lengths_over`` records (0: never).
+
+        For a process that decodes a later part of a long capture and only needs to number what
+        comes before it; the first block is always read (it sets the capture's clock anchor).
+        """
+        self._place, self._skim_until, self._lengths_over = 0, skim_until, lengths_over
+        for k, p in enumerate(self.paths):
+            yield from self._iter_file(p, k)
+
+    def watch(self, *places: int) -> None:
+        """Note a :class:`WatchPoint` in ``watched[place]`` at the block that reaches past each place
+        (the first whose records end after it), before that block is read, in the next reading."""
+        self._marks = sorted(set(places))
+        self.watched = {}
+
+    def _take_watch(self, part: int, offset: int, end: int) -> None:
+        while self._marks and self._marks[0] < end:
+            mark = self._marks.pop(0)
+            self.watched[mark] = WatchPoint(part, offset, self._place, copy.deepcopy(self.report))
 
     def iter_records(self) -> Iterator[Record]:
         for batch in self.iter_batches():
             yield from batch.records()
 
-    def _iter_file(self, path: Path) -> Iterator[RecordBatch]:
+    def _iter_file(self, path: Path, part: int = 0) -> Iterator[RecordBatch | SkimmedBlock]:
         with _open_for_read(path) as f:
             try:
-                yield from self._iter_blocks(f, path)
+                yield from self._iter_blocks(f, path, part)
             except OSError as exc:  # a failing medium (EIO): keep what was read, say where it stopped
                 self._note_read_error(path, f, exc)
 
@@ -609,9 +687,10 @@ class CaptureReader:
             f"{path}: read error {where} ({reason}); the records read before it are kept, the rest of this "
             f"file could not be read (copy it again, or read it from another drive)")
 
-    def _iter_blocks(self, f: BinaryIO, path: Path) -> Iterator[RecordBatch]:
+    def _iter_blocks(self, f: BinaryIO, path: Path, part: int = 0) -> Iterator[RecordBatch | SkimmedBlock]:
         rep = self.report
         _read_file_header(f, path)
+        size = os.fstat(f.fileno()).st_size if self._skim_until else 0
         while True:
             pos = f.tell()
             head = f.read(_BLOCK_HEAD.size)
@@ -630,6 +709,19 @@ class CaptureReader:
                     return
                 continue
             body_len = n * INDEX_DTYPE.itemsize + plen
+            if self._marks and self._marks[0] < self._place + body_len:
+                self._take_watch(part, pos, self._place + body_len)
+            if (self._skim_until and self._place + body_len <= self._skim_until and self._anchor_ns is not None
+                    and pos + _BLOCK_HEAD.size + body_len + 4 <= size):
+                lengths = None
+                if self._lengths_over and n > self._lengths_over:
+                    lengths = np.frombuffer(f.read(n * INDEX_DTYPE.itemsize), INDEX_DTYPE)["length"].astype(np.int64)
+                    f.seek(plen + 4, os.SEEK_CUR)
+                else:
+                    f.seek(body_len + 4, os.SEEK_CUR)
+                self._place += body_len
+                yield SkimmedBlock(n, plen, lengths)
+                continue
             body = f.read(body_len)
             crc = f.read(4)
             if len(body) < body_len or len(crc) < 4:
@@ -638,6 +730,7 @@ class CaptureReader:
                 if len(batch):
                     rep.records += len(batch)
                     rep.data_bytes += int(batch.length.sum())
+                    self._place += len(batch) * INDEX_DTYPE.itemsize + int(batch.payload.size)
                     yield batch
                 return
             if zlib.crc32(body) != _U32.unpack(crc)[0]:
@@ -661,7 +754,9 @@ class CaptureReader:
             ), path, pos)
             rep.blocks += 1
             rep.records += len(batch)
-            rep.data_bytes += plen if len(batch) == n else int(batch.length.sum())
+            kept = plen if len(batch) == n else int(batch.length.sum())
+            rep.data_bytes += kept
+            self._place += len(batch) * INDEX_DTYPE.itemsize + kept
             yield batch
 
     def _in_span(self, batch: RecordBatch, path: Path, pos: int) -> RecordBatch:

@@ -9,6 +9,7 @@ itself made; no check value comes from outside the project.
 from __future__ import annotations
 
 import json
+from dataclasses import asdict
 from pathlib import Path
 
 import pandas as pd
@@ -16,7 +17,7 @@ import pytest
 from buswitness.analysis import segments
 from buswitness.analysis.pipeline import AnalysisOptions, analyze, assess_delivery, delivery_headers
 from buswitness.analysis.summary import summary_dict
-from buswitness.capture.fileformat import CaptureHeader, CaptureReader, CaptureWriter, PortInfo
+from buswitness.capture.fileformat import BLOCK_SYNC, CaptureHeader, CaptureReader, CaptureWriter, PortInfo
 from buswitness.decode import Decoder, DecoderConfig
 from buswitness.serial import SerialFormat
 from buswitness.simulate import load_scenario, simulate
@@ -209,3 +210,62 @@ def test_a_later_segment_skipping_the_start_gets_the_very_steps_of_a_full_readin
     for skip in sorted({p for _i, p, _b in full} | {1, 500, 10**9}):
         got = [(i, p, b.t_ns.tolist()) for i, p, b in segments.steps(Reader(), skip)]
         assert got == [s for s in full if s[1] >= skip], skip
+
+
+def _in_small_blocks(tmp_path: Path, scenario: str, seconds: float, seed: int, per_block: int = 40) -> Path:
+    """A simulated capture written in many small blocks, as a recording writes a busy line."""
+    sim = simulate(load_scenario(scenario), duration_s=seconds, seed=seed)
+    path = tmp_path / f"{scenario}-blocks.bwcap"
+    with CaptureWriter(path, sim.header, fsync_interval_s=3600.0, flush_interval_s=3600.0,
+                       max_block_records=per_block) as writer:
+        for batch in sim.batches():
+            writer.append_batch(batch)
+    return path
+
+
+def _block_at(path: Path, share: float) -> int:
+    """Byte offset of the first block that starts at or after ``share`` of the file."""
+    data = path.read_bytes()
+    return data.index(BLOCK_SYNC, int(len(data) * share))
+
+
+def test_a_later_segment_skims_the_capture_start_and_joins_a_full_reading(tmp_path, small_segments, monkeypatch):
+    """The later segment passes over the blocks before its warm-up by their headers alone; where it
+    takes over, the earlier segment's full reading stands at the same block with the same count
+    before it, so the seam joins, the tables are one pass's, and the read report added up from the
+    segments' readers is the one a single reading gives."""
+    path = _in_small_blocks(tmp_path, "saturated115200", 90.0, 11)
+    monkeypatch.setattr(segments, "WARM_BYTES", path.stat().st_size // 8)  # a regular line joins after it
+    reader, cfg, serial = _one_pass(path)
+    plan = segments.Plan(path.stat().st_size, 2)
+    parts = [segments.run_segment([str(path)], reader.header, cfg, plan, k, keep_tables=True) for k in range(2)]
+    head = parts[1].head_watch
+    assert head is not None and head.place > plan.warm(1) // 2
+    assert head.report.blocks == 1  # of all the blocks before its warm-up, it read only the first (the clock's anchor)
+    assert segments.seams_agree(parts) == []
+    _assert_same_tables(serial, [o for p in parts for o in p.tables])
+    assert asdict(segments.read_report(parts)) == asdict(reader.report)
+
+
+@pytest.mark.parametrize("where", ["skimmed", "after the seam", "cut-off tail"])
+def test_damage_anywhere_is_reported_by_segments_as_one_pass_reports_it(tmp_path, small_segments, monkeypatch,
+                                                                       where):
+    """A damaged block where the later segment only skimmed makes it count differently from the
+    full reading: the seam is refused and the capture decoded in one pass. Damage after the seam,
+    or a cut-off tail, joins, and the segments' read reports add up to one reading's."""
+    path = _in_small_blocks(tmp_path, "saturated115200", 90.0, 11)
+    monkeypatch.setattr(segments, "WARM_BYTES", path.stat().st_size // 8)
+    data = bytearray(path.read_bytes())
+    if where == "cut-off tail":
+        del data[-7:]
+    else:
+        at = _block_at(path, 0.15 if where == "skimmed" else 0.85)
+        data[at + 20] ^= 0x5A  # a byte of the block's records: its checksum no longer matches
+    path.write_bytes(bytes(data))
+    notes: list = []
+    one = analyze(CaptureReader(path), AnalysisOptions(jobs=1))
+    two = analyze(CaptureReader(path), AnalysisOptions(jobs=2, notice=notes.append))
+    assert not one.damage.clean
+    assert two.damage == one.damage
+    assert _summary(two) == _summary(one)
+    assert any("one pass" in n for n in notes) == (where == "skimmed")
