@@ -85,12 +85,12 @@ def _present(station: np.ndarray) -> np.ndarray:
 _groups = address_groups
 
 
-def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray,
-              groups: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray | None,
+              groups: tuple[np.ndarray, np.ndarray] | None = None, bins: np.ndarray | None = None) -> None:
     """Count ``values_ms`` into the rows ``station`` of a (station, FINE bin) histogram
-    (``groups``: :func:`_groups` of ``station``, when the caller has it)."""
+    (``groups``: :func:`_groups` of ``station``, when the caller has it; ``bins``: their FINE bins, likewise)."""
     stations, compact = groups if groups is not None else _groups(station)
-    counts = np.bincount(compact * FINE.count + FINE.index(values_ms),
+    counts = np.bincount(compact * FINE.count + (FINE.index(values_ms) if bins is None else bins),
                          minlength=len(stations) * FINE.count).reshape(len(stations), FINE.count)
     target[stations] += counts
 
@@ -249,10 +249,14 @@ class Accumulator:
         self._last_frame_end_ns = int(max(ends.max(), self._last_frame_end_ns or ends.max()))
         if len(gap_ms):
             self.gaps += np.bincount(FINE.index(gap_ms), minlength=FINE.count)
-            # the longest LARGEST_GAPS by (gap, start), sorted among the candidates only
+            # the longest LARGEST_GAPS by (gap, start), sorted among the candidates only: once the
+            # list is full, a gap shorter than its shortest cannot enter
             cand = np.arange(len(gap_ms))
-            if len(gap_ms) > 4 * LARGEST_GAPS:
-                cand = np.flatnonzero(gap_ms >= np.partition(gap_ms, -LARGEST_GAPS)[-LARGEST_GAPS])
+            if len(self.largest_gaps) >= LARGEST_GAPS:
+                cand = np.flatnonzero(gap_ms >= self.largest_gaps[0][0])
+            if len(cand) > 4 * LARGEST_GAPS:
+                g = gap_ms[cand]
+                cand = cand[g >= np.partition(g, -LARGEST_GAPS)[-LARGEST_GAPS]]
             top = cand[np.lexsort((starts_g[cand], gap_ms[cand]))[-LARGEST_GAPS:]]
             for i in top:
                 item = (float(gap_ms[i]), int(starts_g[i]))
@@ -293,7 +297,9 @@ class Accumulator:
         if timed.any():
             s = station[timed]
             groups = _groups(s)
-            for hist, values in ((self.rt_mid, rt), (self.rt_low, np.where(np.isfinite(lo), lo, rt)),
+            mid_bins = FINE.index(rt[timed])
+            _add_hist(self.rt_mid, s, None, groups, mid_bins)
+            for hist, values in ((self.rt_low, np.where(np.isfinite(lo), lo, rt)),
                                  (self.rt_high, np.where(np.isfinite(hi), hi, rt))):
                 _add_hist(hist, s, values[timed], groups)
             _add_hist(self.halfwidth, s, np.where(np.isfinite(hi) & np.isfinite(lo), (hi - lo) / 2, 0.0)[timed],
@@ -302,7 +308,7 @@ class Accumulator:
             np.fmax.at(self.rt_max, s, rt[timed])
             in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
             np.fmax.at(self.ok_max, station[in_time], rt[in_time])
-            self.in_time += np.bincount(FINE.index(rt[in_time]), minlength=FINE.count)
+            self.in_time += np.bincount(mid_bins[in_time[timed]], minlength=FINE.count)
 
         self._poll_cycle(station, t_req)
         self._move_on(tx, station, outcome, t_req)
@@ -310,7 +316,9 @@ class Accumulator:
         self._examples(tx, station, outcome, rt, timed, t_req)
 
     def _poll_cycle(self, station: np.ndarray, t_req: np.ndarray) -> None:
-        order = np.lexsort((t_req, station))
+        # by station, then time: t_req is in time order (add_transactions sorts it), so a stable sort
+        # by station alone gives lexsort((t_req, station))'s order; on one byte, numpy sorts by radix
+        order = np.argsort(station.astype(np.uint8), kind="stable")
         s, t = station[order], t_req[order]
         same = np.concatenate(([False], s[1:] == s[:-1]))
         prev = np.where(same, np.concatenate(([0], t[:-1])), self.last_request_ns[s])
@@ -381,17 +389,27 @@ class Accumulator:
         oc = col_of_outcome[outcome]
         counts = (np.bincount(key, minlength=size) + np.bincount(key[oc >= 0] + oc[oc >= 0], minlength=size)
                   + np.bincount(key[retry] + 6, minlength=size)).reshape(len(stations), n_rel, n_col)
-        rt_bin = COARSE.index(np.where(timed, rt, 1.0))
+        # the timed answers' coarse histogram per (station, minute) in one count, and their slowest
+        # per (station, minute) as the largest of each run: a station's rows are in minute order
+        t_compact, t_rel, t_rt = compact[timed], rel[timed], rt[timed]
+        rt_hist = np.bincount((t_compact * n_rel + t_rel) * COARSE.count + COARSE.index(t_rt),
+                              minlength=len(stations) * n_rel * COARSE.count).reshape(len(stations), n_rel,
+                                                                                     COARSE.count)
+        t_order = np.argsort(t_compact.astype(np.uint8), kind="stable")
+        t_key = (t_compact * n_rel + t_rel)[t_order]
+        runs = np.flatnonzero(np.r_[True, t_key[1:] != t_key[:-1]])
+        run_max = np.fmax.reduceat(t_rt[t_order], runs) if runs.size else np.zeros(0)
+        run_station, run_minute = np.divmod(t_key[runs], n_rel)
         for j, st in enumerate(stations.tolist()):
             data = self.station_minutes.setdefault(st, _Growing(n_col)).ensure(n_min)
             data[m0:n_min] += counts[j]
-            tsel = timed & (compact == j)
-            if tsel.any():
+            mine = run_station == j
+            if mine.any():
                 hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count, np.int32)).ensure(n_min)
-                hist[m0:n_min] += np.bincount(rel[tsel] * COARSE.count + rt_bin[tsel],
-                                              minlength=n_rel * COARSE.count).reshape(n_rel, COARSE.count)
+                hist[m0:n_min] += rt_hist[j]
                 mx = self.station_minute_max.setdefault(st, _Growing(1, np.float64, np.nan)).ensure(n_min)
-                np.fmax.at(mx[:, 0], minute[tsel], rt[tsel])
+                at = m0 + run_minute[mine]
+                mx[at, 0] = np.fmax(mx[at, 0], run_max[mine])
 
     def _examples(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, rt: np.ndarray,
                   timed: np.ndarray, t_req: np.ndarray) -> None:

@@ -31,10 +31,18 @@ class LogBins:
         return math.sqrt(self.ratio) - 1.0
 
     def index(self, values_ms: np.ndarray) -> np.ndarray:
-        """Bin index of each value (values must be finite)."""
+        """Bin index of each value (values must be finite).
+
+        The arithmetic of ``floor(log(max(v, lo) / lo) / log(ratio))``, step by step in one buffer
+        (every figure bins millions of values: the temporaries cost as much as the logarithm).
+        """
         v = np.maximum(np.asarray(values_ms, dtype=np.float64), self.lo_ms)
-        k = np.floor(np.log(v / self.lo_ms) / math.log(self.ratio)).astype(np.int64)
-        return np.clip(k, 0, self.count - 1)
+        v /= self.lo_ms
+        np.log(v, out=v)
+        v /= math.log(self.ratio)
+        np.floor(v, out=v)
+        k = v.astype(np.int64)
+        return np.clip(k, 0, self.count - 1, out=k)
 
     def centre(self, k: np.ndarray | int) -> np.ndarray | float:
         """Geometric centre of bin ``k``."""
