@@ -56,10 +56,41 @@ class RawSlices(Sequence):
         return f"RawSlices({len(self)} frames)"
 
 
+class PickedRaws(Sequence):
+    """The entries ``raws[index[i]]``: a bytes column's rows picked or reordered (a table sorted by
+    time) without making a ``bytes`` of each; they are made only for the rows read."""
+
+    __slots__ = ("raws", "index")
+
+    def __init__(self, raws: Sequence, index: np.ndarray) -> None:
+        self.raws = raws
+        self.index = np.asarray(index, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return int(self.index.shape[0])
+
+    def __getitem__(self, i):  # type: ignore[override]
+        if isinstance(i, slice):
+            return PickedRaws(self.raws, self.index[i])
+        return self.raws[int(self.index[i])]
+
+    def __iter__(self) -> Iterator[bytes]:
+        return iter(take(self.raws, self.index))
+
+    def take(self, index: np.ndarray) -> list[bytes]:
+        return take(self.raws, self.index[np.asarray(index, dtype=np.int64)])
+
+    def joined(self) -> tuple[np.ndarray, bytes]:
+        return joined(take(self.raws, self.index))
+
+    def __repr__(self) -> str:
+        return f"PickedRaws({len(self)} of {len(self.raws)})"
+
+
 def joined(raws: Sequence) -> tuple[np.ndarray, bytes]:
     """The entries' lengths and their bytes end to end, whatever holds them: the same for the same
     bytes (what a digest of a bytes column reads)."""
-    if isinstance(raws, (RawSlices, RawColumn)):
+    if isinstance(raws, (RawSlices, RawColumn, PickedRaws)):
         return raws.joined()
     values = [bytes(v) for v in raws]
     return np.fromiter(map(len, values), np.int64, len(values)), b"".join(values)
@@ -67,7 +98,7 @@ def joined(raws: Sequence) -> tuple[np.ndarray, bytes]:
 
 def take(raws: Sequence, index: np.ndarray) -> list[bytes]:
     """The entries of ``raws`` (a list, an object array, :class:`RawSlices` or :class:`RawColumn`) at ``index``."""
-    if isinstance(raws, (RawSlices, RawColumn)):
+    if isinstance(raws, (RawSlices, RawColumn, PickedRaws)):
         return raws.take(index)
     if isinstance(raws, np.ndarray):
         return raws[index].tolist()

@@ -10,8 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from buswitness.decode.events import DIRECTIONS, EVENT_KINDS, OUTCOMES, Damage, Frame, Transaction
-from buswitness.decode.rawbytes import RawColumn
-from buswitness.decode.rawbytes import take as take_raws
+from buswitness.decode.rawbytes import PickedRaws, RawColumn
 
 #: Version of the table layout (docs/tables.md). 2: protocol-neutral columns added (protocol, source,
 #: destination, service, result_code); every column of version 1 is unchanged.
@@ -331,8 +330,8 @@ class Columns:
         return name in self.data
 
     def take(self, index: np.ndarray) -> Columns:
-        """The rows at ``index``, in that order."""
-        return Columns({k: v[index] if isinstance(v, np.ndarray) else take_raws(v, index)
+        """The rows at ``index``, in that order (a bytes column's rows picked, made into ``bytes`` when read)."""
+        return Columns({k: v[index] if isinstance(v, np.ndarray) else PickedRaws(v, index)
                         for k, v in self.data.items()})
 
 

@@ -1,7 +1,7 @@
 """Frames' bytes kept as slices of the buffer they were found in (decode/rawbytes.py)."""
 
 import numpy as np
-from buswitness.decode.rawbytes import RawColumn, RawSlices, joined
+from buswitness.decode.rawbytes import PickedRaws, RawColumn, RawSlices, joined
 
 
 def _slices(rng: np.random.Generator, n: int) -> RawSlices:
@@ -30,3 +30,18 @@ def test_an_empty_column_joins_to_nothing():
     assert lens.size == 0 and data == b""
     lens, data = RawSlices(b"abc", np.zeros(2, np.int64), np.zeros(2, np.int64)).joined()
     assert lens.tolist() == [0, 0] and data == b""
+
+
+def test_picked_rows_read_as_the_rows_of_the_column_they_were_picked_from():
+    rng = np.random.default_rng(8)
+    column = RawColumn([_slices(rng, 30), [b"\x05", b"\x06\x07"]])
+    entries = list(column)
+    order = rng.permutation(len(entries))
+    picked = PickedRaws(column, order)
+    assert len(picked) == len(entries)
+    assert list(picked) == [entries[i] for i in order]
+    assert picked[3] == entries[order[3]]
+    assert picked.take(np.array([5, 0, 5])) == [entries[order[5]], entries[order[0]], entries[order[5]]]
+    assert list(picked[2:6]) == [entries[i] for i in order[2:6]]
+    lens, data = joined(picked)
+    assert lens.tolist() == [len(entries[i]) for i in order] and data == b"".join(entries[i] for i in order)
