@@ -184,10 +184,10 @@ class Accumulator:
     last_ns: int | None = None
     unknown_outcomes: int = 0
     largest_gaps: list = field(default_factory=list)     # heap of (gap_ms, t_ns)
-    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, seq, _Pending: row values)
+    worst: dict = field(default_factory=dict)            # station -> heap of (response_ms, t_ns, seq, _Pending)
     failures: dict = field(default_factory=dict)         # station -> list of rows
     late_rows: dict = field(default_factory=dict)        # station -> list of rows
-    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, seq, _Pending): in time, slowest
+    slow: dict = field(default_factory=dict)             # station -> heap of (response_ms, t_ns, seq, _Pending): in time
     slow_dropped: np.ndarray = field(default_factory=lambda: np.full(N_ADDR, -np.inf))  #: slowest one dropped
     judged_ms: float | None = None  #: the timeout the in-time answers were judged against (judge())
     device_ids: dict = field(default_factory=dict)       # station -> list of str
@@ -397,7 +397,7 @@ class Accumulator:
                                                                                      COARSE.count)
         t_order = np.argsort(t_compact.astype(np.uint8), kind="stable")
         t_key = (t_compact * n_rel + t_rel)[t_order]
-        runs = np.flatnonzero(np.r_[True, t_key[1:] != t_key[:-1]])
+        runs = np.flatnonzero(np.r_[True, t_key[1:] != t_key[:-1]]) if t_key.size else np.zeros(0, np.int64)
         run_max = np.fmax.reduceat(t_rt[t_order], runs) if runs.size else np.zeros(0)
         run_station, run_minute = np.divmod(t_key[runs], n_rel)
         for j, st in enumerate(stations.tolist()):
@@ -431,43 +431,51 @@ class Accumulator:
             """The listed rows of this block as plain dicts."""
             return [tx_row(self.t0_ns, *vals) for vals in values_of(index)]
 
-        # the heaps hold (value, order, _Pending); a row of this block enters as its index, gets
-        # a tuple of its values if it is still held at the end of the block (most are pushed out
-        # again), and becomes a dict in figures() if it is held to the end
+        # the heaps hold (value, request time, order, _Pending), ranked by value, then time: the
+        # same rows are kept however the transactions are cut into blocks (segments, steps), as
+        # Figures.merge ranks them. A row of this block enters as its index, gets a tuple of its
+        # values if it is still held at the end of the block (most are pushed out again), and
+        # becomes a dict in figures() if it is held to the end.
         born: list[_Pending] = []
+
+        def above(heap: list, keep: int, rows: np.ndarray) -> np.ndarray:
+            """Of ``rows``, those that rank above the heap's least (all of them while it has room)."""
+            if len(heap) < keep:
+                return rows
+            f_rt, f_t = heap[0][0], heap[0][1]
+            return rows & ((rt > f_rt) | ((rt == f_rt) & (t_req > f_t)))
+
         for st in _present(station[timed]):
             heap = self.worst.setdefault(int(st), [])
-            floor = heap[0][0] if len(heap) >= WORST_PER_STATION else -np.inf
-            idx = np.flatnonzero(timed & (station == st) & (rt > floor))
-            top = idx[np.argsort(rt[idx])[-WORST_PER_STATION:]]
+            idx = np.flatnonzero(above(heap, WORST_PER_STATION, timed & (station == st)))
+            top = idx[np.lexsort((t_req[idx], rt[idx]))[-WORST_PER_STATION:]]
             for i in top.tolist():
                 self._seq += 1
-                item = (float(rt[i]), self._seq, _Pending(i))
+                item = (float(rt[i]), int(t_req[i]), self._seq, _Pending(i))
                 if len(heap) < WORST_PER_STATION:
                     heapq.heappush(heap, item)
-                elif item[0] > heap[0][0]:
-                    heapq.heapreplace(heap, item)[2].index = -1
+                elif item > heap[0]:
+                    heapq.heapreplace(heap, item)[3].index = -1
                 else:
                     continue
-                born.append(item[2])
+                born.append(item[3])
         in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
         for st in _present(station[in_time]):
             heap = self.slow.setdefault(int(st), [])
-            floor = heap[0][0] if len(heap) >= SLOW_KEEP else -np.inf
-            idx = np.flatnonzero(in_time & (station == st) & (rt > floor))
+            idx = np.flatnonzero(above(heap, SLOW_KEEP, in_time & (station == st)))
             if len(idx) > SLOW_KEEP:
-                cut = idx[np.argsort(rt[idx], kind="stable")[:-SLOW_KEEP]]
-                self.slow_dropped[st] = max(self.slow_dropped[st], float(rt[cut].max()))
-                idx = np.setdiff1d(idx, cut)
+                ranked = idx[np.lexsort((t_req[idx], rt[idx]))]
+                self.slow_dropped[st] = max(self.slow_dropped[st], float(rt[ranked[:-SLOW_KEEP]].max()))
+                idx = np.sort(ranked[-SLOW_KEEP:])
             for i in idx.tolist():
                 self._seq += 1
-                item = (float(rt[i]), self._seq, _Pending(i))
-                born.append(item[2])
+                item = (float(rt[i]), int(t_req[i]), self._seq, _Pending(i))
+                born.append(item[3])
                 if len(heap) < SLOW_KEEP:
                     heapq.heappush(heap, item)
                 else:
                     gone = heapq.heappushpop(heap, item)
-                    gone[2].index = -1
+                    gone[3].index = -1
                     self.slow_dropped[st] = max(self.slow_dropped[st], gone[0])
         held = [p for p in born if p.index >= 0 and p.row is None]
         for p, row in zip(held, values_of([p.index for p in held])):
@@ -528,7 +536,7 @@ class Accumulator:
         """The plain, mergeable figures so far: a copy (feeding on does not change them), or, with
         ``copy=False`` for an accumulator that is done, its own arrays handed over."""
         def rows(heaps: dict) -> dict:
-            return {int(st): [(float(rt), tx_row(self.t0_ns, *r.row)) for rt, _seq, r in sorted(h, key=lambda x: (x[0], x[1]))]
+            return {int(st): [(float(rt), tx_row(self.t0_ns, *r.row)) for rt, _t, _seq, r in sorted(h, key=lambda x: x[:3])]
                     for st, h in heaps.items() if h}
 
         edges = {"first_request_ns": self.first_request_ns.copy(), "last_request_ns": self.last_request_ns.copy(),

@@ -132,3 +132,44 @@ def test_nights_merge_on_one_absolute_time_axis(tmp_path):
         assert series["requests"][1440:1443] == b.station_series(s.address)["requests"][:3]
     assert m.minutes() == 1440 + b.minutes()
     assert m.bus.frames == a.bus.frames + b.bus.frames
+
+
+def test_the_slowest_answers_kept_do_not_depend_on_how_the_transactions_are_cut(monkeypatch):
+    """Equal response times (a coarse adapter gives many; here the times are rounded to whole ms)
+    are ranked by request time in the example lists, so one block or many (steps, segments, a
+    decoder that went on) keep the very same rows."""
+    from buswitness.analysis import figures as fig
+    from buswitness.decode import Decoder, DecoderConfig
+    monkeypatch.setattr(fig, "WORST_PER_STATION", 4)
+    monkeypatch.setattr(fig, "SLOW_KEEP", 40)  # small lists: full early, then many ties at their edge
+    sim = simulate(load_scenario("pumpstation"), duration_s=180.0, seed=5)
+    decoder = Decoder(DecoderConfig.from_header(sim.header))
+    outs = [decoder.feed_batch(b) for b in sim.batches()] + [decoder.flush()]
+    tx = _joined_columns([o.columns()[1] for o in outs])
+    tx.data["response_ms"] = np.round(np.asarray(tx["response_ms"], np.float64))  # whole ms: ties aplenty
+    rt = tx.data["response_ms"]
+    assert len(np.unique(rt[np.isfinite(rt)])) < np.isfinite(rt).sum() // 10
+
+    def kept(cut_every: int) -> tuple:
+        acc = fig.Accumulator(t0_ns=int(np.min(tx["t_request_end_ns"])), char_ns=1e6)
+        for a in range(0, len(tx), cut_every):
+            acc.add_transactions(tx.take(np.arange(a, min(a + cut_every, len(tx)))))
+        f = acc.figures()
+        return ({st: [(r, row["t_s"]) for r, row in rows] for st, rows in f.worst.items()},
+                {st: [(r, row["t_s"]) for r, row in rows] for st, rows in f.slow.items()}, f.slow_dropped.tolist())
+
+    whole = kept(len(tx))
+    assert all(len(rows) == 4 for rows in whole[0].values())
+    for every in (1000, 257, 31):
+        assert kept(every) == whole, every
+
+
+def _joined_columns(tables: list):
+    """The rows of several Columns tables end to end (bytes columns as lists)."""
+    from buswitness.decode.tables import Columns
+    out: dict = {}
+    for t in tables:
+        for name, col in t.data.items():
+            out.setdefault(name, []).append(col)
+    return Columns({k: np.concatenate(v) if isinstance(v[0], np.ndarray) else [b for c in v for b in c]
+                    for k, v in out.items()})
