@@ -19,8 +19,9 @@ have been read by pairing before both agree on it (:func:`_slowest_settled`). Th
 decoder's tables after the overlap are the ones a single pass gives, for the same records. Each segment's rows from the end of its own
 overlap to the end of the next overlap go into its figures, and the figures of the segments
 merge into those of the whole capture (analysis/figures.py ``Figures.merge`` joins contiguous
-parts of one capture exactly). A seam whose two decodes never agree makes the whole capture
-decode in one pass, with a notice.
+parts of one capture exactly). Where a seam's two decodes never agree, the first segment's decoder
+(in the calling process, from the capture's start) goes on to the end: the capture in one pass,
+with a notice, without decoding the first segment again.
 """
 
 from __future__ import annotations
@@ -271,14 +272,19 @@ class SegmentResult:
     rises: list = field(default_factory=list)   #: (step, {station: slowest answer}) whenever one rose
     consulted: set = field(default_factory=set)  #: steps in which pairing read a slowest answer
     handover: int = -1                          #: the last step before this segment's own rows
+    went_on: bool = False                       #: decoded on to the capture's end (a seam after it failed)
     head_watch: WatchPoint | None = None        #: where its reader stood at its warm-up's place
     tail_watch: WatchPoint | None = None        #: ... and at the next segment's warm-up's place
 
 
-def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool = False) -> SegmentResult:
+def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool = False,
+                go_on: Callable[[SegmentResult], bool] | None = None) -> SegmentResult:
     """Decode segment ``k`` (in a worker process): its figures and the digests of its overlaps.
 
-    With ``keep_tables`` the decoder outputs the segment owns are kept instead of counted.
+    With ``keep_tables`` the decoder outputs the segment owns are kept instead of counted. With
+    ``go_on``, at the end of its overlap the segment asks it (with what it found so far) whether
+    to go on to the capture's end instead: a seam after it that did not join is then decoded on
+    by the decoder that came from the start, not decoded again from the start.
     """
     from buswitness.analysis.pipeline import AnalysisOptions, analyze_tables
     from buswitness.capture.fileformat import CaptureReader
@@ -288,7 +294,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
     last = k == plan.jobs - 1
     reader.watch(*([plan.warm(k)] if k else []), *([] if last else [plan.warm(k + 1)]))
     out = SegmentResult(k)
-    state = {"cut": None}
+    state = {"cut": None, "last": last}
     step = [0]
     if k:
         _watch_slowest(decoder, out.consulted, step)
@@ -308,7 +314,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
                 state["cut"] = i
             if out.agree_from < 0 and k and pos >= plan.agree_from(k):
                 out.agree_from = i
-            if not last and next_cut_step is None and pos >= plan.cut(k + 1):
+            if not state["last"] and next_cut_step is None and pos >= plan.cut(k + 1):
                 next_cut_step = i
             before = counts()
             step[0] = i
@@ -323,7 +329,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
             in_head = k and (state["cut"] is None or i < state["cut"] + OVER_STEPS)
             # digests only where the seam compares them: from half-way through the warm-up
             head_digest = in_head and out.agree_from >= 0
-            tail_digest = not last and pos >= plan.agree_from(k + 1)
+            tail_digest = not state["last"] and pos >= plan.agree_from(k + 1)
             if head_digest or tail_digest:
                 digest = output_digest(result, step_contra)
                 if head_digest:
@@ -339,9 +345,12 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
                 for p, n in step_contra:
                     out.contradictions[p] = out.contradictions.get(p, 0) + n
                 yield result
-            if next_cut_step is not None and i >= next_cut_step + OVER_STEPS - 1:
-                return
-        if last:
+            if not state["last"] and next_cut_step is not None and i >= next_cut_step + OVER_STEPS - 1:
+                out.tail_watch = reader.watched.get(plan.warm(k + 1))  # what go_on's seam check reads
+                if go_on is None or not go_on(out):
+                    return
+                state["last"] = out.went_on = True  # on to the end, as one pass
+        if state["last"]:
             before = counts()
             result = decoder.flush()
             for p, n in counts().items():
@@ -354,7 +363,7 @@ def run_segment(paths: list, header, cfg, plan: Plan, k: int, keep_tables: bool 
         out.figures = analyze_tables(header, owned_outputs(), AnalysisOptions()).unjudged
     out.head_watch = reader.watched.get(plan.warm(k)) if k else None
     out.tail_watch = None if last else reader.watched.get(plan.warm(k + 1))
-    if last:
+    if state["last"]:
         out.report = reader.report
     return out
 
@@ -459,25 +468,43 @@ def decode_parallel(source, header, cfg, jobs: int, notice: Callable[[str], None
     # fork where there is one: the workers start at once with the modules already loaded, and a
     # caller's script needs no ``if __name__ == "__main__"`` guard (spawn would run it again)
     ctx = multiprocessing.get_context("fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn")
+    checked: dict = {}
+
+    def go_on(first: SegmentResult) -> bool:
+        """At the end of the first segment's overlap: the other segments' results, and whether a seam
+        failed (then the first segment's decoder goes on to the end: the capture in one pass)."""
+        checked["parts"] = [first] + [f.result() for f in futures]
+        checked["bad"] = seams_agree(checked["parts"])
+        return bool(checked["bad"])
+
     with concurrent.futures.ProcessPoolExecutor(max_workers=jobs - 1, mp_context=ctx) as pool:
         futures = [pool.submit(run_segment, paths, header, cfg, plan, k) for k in range(1, jobs)]
-        parts = [run_segment(paths, header, cfg, plan, 0)] + [f.result() for f in futures]
-    bad = seams_agree(parts)
+        first = run_segment(paths, header, cfg, plan, 0, go_on=go_on)
+        parts = checked.get("parts") or [first] + [f.result() for f in futures]
+    bad = checked["bad"] if "bad" in checked else seams_agree(parts)
     if bad:
-        notice(f"the decodes of {len(bad)} of {jobs - 1} segment seam(s) did not agree over their overlap: "
-               f"decoded in one pass instead")
-        return None
+        said = (f"the decodes of {len(bad)} of {jobs - 1} segment seam(s) did not agree over their overlap: "
+                f"decoded in one pass instead")
+        if not first.went_on:
+            notice(said)
+            return None
+        notice(said + " (the first segment's decoder went on to the end)")
+        return Parallel(Figures.merge([first.figures]), dict(first.contradictions),
+                        _into(getattr(source, "report", None), first.report))
     figures = Figures.merge([p.figures for p in parts])
     contradictions: dict = {}
     for p in parts:
         for port, n in p.contradictions.items():
             contradictions[port] = contradictions.get(port, 0) + n
-    report = getattr(source, "report", None)
-    whole = read_report(parts)
+    return Parallel(figures, contradictions, _into(getattr(source, "report", None), read_report(parts)))
+
+
+def _into(report, whole):
+    """The source's own read report (its files, parts and opening warnings) given what the
+    segments' readers found over the whole capture."""
     if report is not None:
-        keep = {"files", "missing_parts", "warnings"}
         for f in fields(whole):
-            if f.name not in keep:
+            if f.name not in {"files", "missing_parts", "warnings"}:
                 setattr(report, f.name, getattr(whole, f.name))
         report.warnings = list(report.warnings) + [w for w in whole.warnings if w not in report.warnings]
-    return Parallel(figures, contradictions, report)
+    return report

@@ -106,13 +106,25 @@ def test_analysis_on_several_cores_equals_one_pass(tmp_path, small_segments, sce
 
 
 def test_a_seam_whose_decodes_never_agree_falls_back_to_one_pass(tmp_path, small_segments, monkeypatch):
+    """The first segment's decoder goes on to the capture's end: one pass, each record decoded once
+    in this process (the later segment's work is lost, the first segment's is not)."""
     path = tmp_path / "late.bwcap"
     simulate(load_scenario("fault-late"), duration_s=120.0, seed=2).write(path)
     monkeypatch.setattr(segments, "output_digest", lambda out, c=(): str(id(out)))  # no two steps agree
+    fed = [0]
+    feed = Decoder.feed_batch
+
+    def counted(self, batch):
+        fed[0] += len(batch)
+        return feed(self, batch)
+
+    monkeypatch.setattr(Decoder, "feed_batch", counted)  # counts in this process only (workers are forked)
     notes: list = []
     result = analyze(CaptureReader(path), AnalysisOptions(jobs=2, notice=notes.append))
     assert any("one pass" in n for n in notes)
+    assert fed[0] == sum(len(b) for b in CaptureReader(path).iter_batches())
     assert _summary(result) == _summary(analyze(CaptureReader(path), AnalysisOptions(jobs=1)))
+    assert result.damage == analyze(CaptureReader(path), AnalysisOptions(jobs=1)).damage
 
 
 def test_short_captures_table_outputs_and_other_inputs_stay_in_one_pass(tmp_path, monkeypatch):
