@@ -36,7 +36,8 @@ class LogBins:
         The arithmetic of ``floor(log(max(v, lo) / lo) / log(ratio))``, step by step in one buffer
         (every figure bins millions of values: the temporaries cost as much as the logarithm).
         """
-        v = np.maximum(np.asarray(values_ms, dtype=np.float64), self.lo_ms)
+        v = np.array(values_ms, dtype=np.float64)  # a copy (also of a scalar) to work in
+        np.maximum(v, self.lo_ms, out=v)
         v /= self.lo_ms
         np.log(v, out=v)
         v /= math.log(self.ratio)

@@ -21,18 +21,20 @@ overlap to the end of the next overlap go into its figures, and the figures of t
 merge into those of the whole capture (analysis/figures.py ``Figures.merge`` joins contiguous
 parts of one capture exactly). Where a seam's two decodes never agree, the first segment's decoder
 (in the calling process, from the capture's start) goes on to the end: the capture in one pass,
-with a notice, without decoding the first segment again.
+with a notice, without decoding the first segment again (only if that decoder stopped short, a
+read error before its overlap's end say, is the capture decoded again from the start).
 """
 
 from __future__ import annotations
 
+import copy
 import hashlib
 import os
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
 
 import numpy as np
-from buswitness.capture.fileformat import SkimmedBlock, WatchPoint
+from buswitness.capture.fileformat import ReadReport, SkimmedBlock, WatchPoint
 from buswitness.decode.rawbytes import RawColumn
 from buswitness.records import RecordBatch
 
@@ -50,8 +52,9 @@ WARM_SHARE = 16
 #: Steps the previous segment decodes past the cut.
 OVER_STEPS = 2
 #: A capture smaller than this is decoded in one pass: starting processes costs more than it saves,
-#: and a seam that does not join costs a second decode (the 8 h demo night at 19200, 17 MB: 72 s
-#: in segments whose seam failed, 43 s in one pass; a 1 h 115200 capture, 46 MB, gains 10 %).
+#: and a seam that does not join costs the later segments' work (the 8 h demo night at 19200, 17 MB:
+#: 72 s in segments whose seam failed, 43 s in one pass, when a failed seam meant a second decode
+#: from the start; a 1 h 115200 capture, 46 MB, gains 10 %).
 PARALLEL_MIN_BYTES = 64 << 20
 #: At most this many segments, whatever the core count.
 MAX_JOBS = 8
@@ -64,7 +67,7 @@ def output_digest(out, contradictions: tuple = ()) -> str:
     Read from the decoder's numpy columns (decode/tables.py ``DecodeOutput.columns``): no DataFrame
     is built, and a bytes column is hashed as its lengths and its bytes joined.
     """
-    h = hashlib.sha256(repr(contradictions).encode())  # sha256: twice blake2b here (the CPU hashes it)
+    h = hashlib.sha256(repr(contradictions).encode())  # about twice blake2b's speed on this CPU (SHA instructions)
     for table in out.columns():
         h.update(f"|{len(table)}|".encode())
         for name, col in table.data.items():
@@ -186,9 +189,9 @@ def steps(reader, skip_before: int = 0) -> Iterator[tuple[int, int, RecordBatch]
 
     Steps that start before ``skip_before`` are counted and placed but neither built nor
     yielded: a later segment passes over the capture's first part only to number its steps. A
-    reader that can skims the blocks there (``iter_skimming``: their sizes from their headers, the
-    bodies neither read nor checked); a block damaged there numbers the steps after it otherwise
-    than a full reading does, which the segment's :class:`WatchPoint` shows (:func:`seams_agree`).
+    reader that can, skims the blocks there (``iter_skimming``: checked, not unpacked); records a
+    full reading would leave out there (an impossible time) number the steps after them otherwise,
+    which the segment's :class:`WatchPoint` shows (:func:`seams_agree`).
     """
     i = pos = start = count = size = 0
     pending: list[RecordBatch] = []
@@ -203,11 +206,11 @@ def steps(reader, skip_before: int = 0) -> Iterator[tuple[int, int, RecordBatch]
         for a in range(0, n, STEP_RECORDS):
             b = min(a + STEP_RECORDS, n)
             p0 = int(ends[a - 1]) if a else 0
-            p1 = int(ends[b - 1]) if ends is not None else batch.payload
+            p1 = int(ends[b - 1]) if ends is not None else batch.payload_bytes
             if not count:
                 start = pos
             if start >= skip_before:
-                if skimmed:
+                if skimmed:  # a bug check: the reader skims only blocks that end before skip_before
                     raise RuntimeError("a skimmed block reached past the place skimming was asked to stop")
                 pending.append(RecordBatch(batch.t_ns[a:b], batch.length[a:b], batch.port[a:b],
                                            batch.flags[a:b], batch.payload[p0:p1]))
@@ -395,11 +398,10 @@ def _same_place(a: WatchPoint | None, b: WatchPoint | None) -> bool:
     return a is not None and b is not None and (a.part, a.offset, a.place) == (b.part, b.offset, b.place)
 
 
-def read_report(parts: list[SegmentResult]):
+def read_report(parts: list[SegmentResult]) -> ReadReport:
     """The capture's read report from the segments' readers: each counts the blocks from its own
     warm-up's place to the next one's (where the next reader takes over)."""
-    whole = parts[0].tail_watch.report if len(parts) > 1 else parts[0].report
-    whole = whole.since(type(whole)())  # a copy
+    whole = copy.deepcopy(parts[0].tail_watch.report if len(parts) > 1 else parts[0].report)
     for k, seg in enumerate(parts[1:], start=1):
         end = seg.report if k == len(parts) - 1 else seg.tail_watch.report
         whole.add(end.since(seg.head_watch.report))
@@ -457,7 +459,9 @@ class Parallel:
 
 
 def decode_parallel(source, header, cfg, jobs: int, notice: Callable[[str], None]) -> Parallel | None:
-    """Figures of the whole capture from ``jobs`` segments decoded at once; None when a seam did not join."""
+    """Figures of the whole capture from ``jobs`` segments decoded at once. Where a seam did not join,
+    the first segment's decoder has gone on to the end (one pass); None where it could not (it
+    stopped before its overlap's end, a read error say): then the caller decodes in one pass."""
     import concurrent.futures
     import multiprocessing
 
@@ -475,6 +479,9 @@ def decode_parallel(source, header, cfg, jobs: int, notice: Callable[[str], None
         failed (then the first segment's decoder goes on to the end: the capture in one pass)."""
         checked["parts"] = [first] + [f.result() for f in futures]
         checked["bad"] = seams_agree(checked["parts"])
+        if checked["bad"]:
+            checked["parts"] = None  # their figures are not used: not held through the rest
+        pool.shutdown(wait=True)  # the workers are done: not left idle while this decodes on
         return bool(checked["bad"])
 
     with concurrent.futures.ProcessPoolExecutor(max_workers=jobs - 1, mp_context=ctx) as pool:

@@ -500,14 +500,15 @@ _REPORT_COUNTS = ("records", "data_bytes", "blocks", "truncated_records_kept", "
 
 @dataclass(frozen=True)
 class SkimmedBlock:
-    """A block passed over unread (:meth:`CaptureReader.iter_skimming`): how many records, how many bytes.
+    """A block passed over (:meth:`CaptureReader.iter_skimming`): how many records, how many bytes.
 
-    Its header was read and checked, its body was not (its checksum neither): a reading that
-    relies on it must check later that a full reading placed the same blocks (:class:`WatchPoint`).
+    Its header and checksum were checked, its records not unpacked (nor their times checked): a
+    reading that relies on it checks later that a full reading placed the same blocks
+    (:class:`WatchPoint`).
     """
 
     records: int
-    payload: int
+    payload_bytes: int
     lengths: np.ndarray | None = None  #: each record's length, read only for a block of many records
 
     def __len__(self) -> int:
@@ -521,7 +522,7 @@ class WatchPoint:
 
     part: int      #: which file of the set
     offset: int    #: the block's byte offset in that file
-    place: int     #: records x 12 + payload bytes of every block read or skimmed before it
+    place: int     #: records x 12 + payload bytes before it: of the records kept, or of a block skimmed
     report: ReadReport  #: a copy of the reader's report there
 
 
@@ -639,16 +640,19 @@ class CaptureReader:
                 f"the time they covered is a gap in every figure")
 
     def iter_batches(self) -> Iterator[RecordBatch]:
-        yield from self.iter_skimming(0)
+        yield from self.iter_skimming(0)  # type: ignore[misc]  # skims nothing: batches only
 
     def iter_skimming(self, skim_until: int, lengths_over: int = 0) -> Iterator[RecordBatch | SkimmedBlock]:
         """The batches, but the capture's start passed over: a block that ends at or before place
         ``skim_until`` (records x 12 + payload bytes from the start) is yielded as a
-        :class:`SkimmedBlock`, its body neither read nor checked (nor counted in ``report``), with
-        its records' lengths when it holds more than ``lengths_over`` records (0: never).
+        :class:`SkimmedBlock`, its body checked but not unpacked (and not counted in ``report``),
+        with its records' lengths when it holds more than ``lengths_over`` records (0: never).
 
         For a process that decodes a later part of a long capture and only needs to number what
-        comes before it; the first block is always read (it sets the capture's clock anchor).
+        comes before it. Blocks are read in full until one has set the capture's clock anchor, and
+        so is a block not wholly in the file. A damaged block is skipped as a full reading skips
+        it; records a full reading would leave out for an impossible time are counted here, which
+        the readers' :class:`WatchPoint` shows.
         """
         self._place, self._skim_until, self._lengths_over = 0, skim_until, lengths_over
         for k, p in enumerate(self.paths):
@@ -713,12 +717,16 @@ class CaptureReader:
                 self._take_watch(part, pos, self._place + body_len)
             if (self._skim_until and self._place + body_len <= self._skim_until and self._anchor_ns is not None
                     and pos + _BLOCK_HEAD.size + body_len + 4 <= size):
+                # the body is read for its checksum only: a damaged block is passed over as a full
+                # reading passes over it, so damage before a segment's warm-up moves no step
+                body = f.read(body_len)
+                if zlib.crc32(body) != _U32.unpack(f.read(4))[0]:
+                    continue
                 lengths = None
                 if self._lengths_over and n > self._lengths_over:
-                    lengths = np.frombuffer(f.read(n * INDEX_DTYPE.itemsize), INDEX_DTYPE)["length"].astype(np.int64)
-                    f.seek(plen + 4, os.SEEK_CUR)
-                else:
-                    f.seek(body_len + 4, os.SEEK_CUR)
+                    lengths = np.frombuffer(body, INDEX_DTYPE, count=n)["length"].astype(np.int64)
+                    if int(lengths.sum()) != plen:  # inconsistent: a full reading skips it too
+                        continue
                 self._place += body_len
                 yield SkimmedBlock(n, plen, lengths)
                 continue

@@ -78,9 +78,11 @@ class PickedRaws(Sequence):
         return iter(take(self.raws, self.index))
 
     def take(self, index: np.ndarray) -> list[bytes]:
+        """The picked entries at ``index``, in that order."""
         return take(self.raws, self.index[np.asarray(index, dtype=np.int64)])
 
     def joined(self) -> tuple[np.ndarray, bytes]:
+        """Every picked entry's length, and their bytes end to end (as :meth:`RawSlices.joined`)."""
         return joined(take(self.raws, self.index))
 
     def __repr__(self) -> str:

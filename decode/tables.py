@@ -330,7 +330,8 @@ class Columns:
         return name in self.data
 
     def take(self, index: np.ndarray) -> Columns:
-        """The rows at ``index``, in that order (a bytes column's rows picked, made into ``bytes`` when read)."""
+        """The rows at ``index``, in that order (a column that is not an array, the bytes columns,
+        picked as :class:`PickedRaws`: its entries made only when read)."""
         return Columns({k: v[index] if isinstance(v, np.ndarray) else PickedRaws(v, index)
                         for k, v in self.data.items()})
 
