@@ -389,27 +389,26 @@ class Accumulator:
         oc = col_of_outcome[outcome]
         counts = (np.bincount(key, minlength=size) + np.bincount(key[oc >= 0] + oc[oc >= 0], minlength=size)
                   + np.bincount(key[retry] + 6, minlength=size)).reshape(len(stations), n_rel, n_col)
-        # the timed answers' coarse histogram per (station, minute) in one count, and their slowest
-        # per (station, minute) as the largest of each run: a station's rows are in minute order
-        t_compact, t_rel, t_rt = compact[timed], rel[timed], rt[timed]
-        rt_hist = np.bincount((t_compact * n_rel + t_rel) * COARSE.count + COARSE.index(t_rt),
-                              minlength=len(stations) * n_rel * COARSE.count).reshape(len(stations), n_rel,
-                                                                                     COARSE.count)
+        # the timed answers by station (a stable sort: each station's rows stay in minute order),
+        # so a station's rows are one slice, and its slowest per minute the largest of each run
+        t_compact = compact[timed]
         t_order = np.argsort(t_compact.astype(np.uint8), kind="stable")
-        t_key = (t_compact * n_rel + t_rel)[t_order]
-        runs = np.flatnonzero(np.r_[True, t_key[1:] != t_key[:-1]]) if t_key.size else np.zeros(0, np.int64)
-        run_max = np.fmax.reduceat(t_rt[t_order], runs) if runs.size else np.zeros(0)
-        run_station, run_minute = np.divmod(t_key[runs], n_rel)
+        t_station, t_rel, t_rt = t_compact[t_order], rel[timed][t_order], rt[timed][t_order]
+        t_bin = COARSE.index(t_rt)
+        bounds = np.searchsorted(t_station, np.arange(len(stations) + 1))
         for j, st in enumerate(stations.tolist()):
             data = self.station_minutes.setdefault(st, _Growing(n_col)).ensure(n_min)
             data[m0:n_min] += counts[j]
-            mine = run_station == j
-            if mine.any():
-                hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count, np.int32)).ensure(n_min)
-                hist[m0:n_min] += rt_hist[j]
-                mx = self.station_minute_max.setdefault(st, _Growing(1, np.float64, np.nan)).ensure(n_min)
-                at = m0 + run_minute[mine]
-                mx[at, 0] = np.fmax(mx[at, 0], run_max[mine])
+            a, b = int(bounds[j]), int(bounds[j + 1])
+            if a == b:
+                continue
+            hist = self.station_minute_rt.setdefault(st, _Growing(COARSE.count, np.int32)).ensure(n_min)
+            hist[m0:n_min] += np.bincount(t_rel[a:b] * COARSE.count + t_bin[a:b],
+                                          minlength=n_rel * COARSE.count).reshape(n_rel, COARSE.count)
+            runs = np.flatnonzero(np.r_[True, t_rel[a + 1:b] != t_rel[a:b - 1]]) + a
+            mx = self.station_minute_max.setdefault(st, _Growing(1, np.float64, np.nan)).ensure(n_min)
+            at = m0 + t_rel[runs]
+            mx[at, 0] = np.fmax(mx[at, 0], np.fmax.reduceat(t_rt[a:b], runs - a))
 
     def _examples(self, tx: pd.DataFrame, station: np.ndarray, outcome: np.ndarray, rt: np.ndarray,
                   timed: np.ndarray, t_req: np.ndarray) -> None:
@@ -445,6 +444,7 @@ class Accumulator:
             f_rt, f_t = heap[0][0], heap[0][1]
             return rows & ((rt > f_rt) | ((rt == f_rt) & (t_req > f_t)))
 
+
         for st in _present(station[timed]):
             heap = self.worst.setdefault(int(st), [])
             idx = np.flatnonzero(above(heap, WORST_PER_STATION, timed & (station == st)))
@@ -462,7 +462,12 @@ class Accumulator:
         in_time = timed & np.isin(outcome, [_OUTCOME_INDEX["ok"], _OUTCOME_INDEX["exception"]])
         for st in _present(station[in_time]):
             heap = self.slow.setdefault(int(st), [])
-            idx = np.flatnonzero(above(heap, SLOW_KEEP, in_time & (station == st)))
+            mine = in_time & (station == st)
+            candidates = above(heap, SLOW_KEEP, mine)
+            out = mine & ~candidates  # at or below the full list's least: left out at once, and noted as
+            if out.any():             # left out (judge() counts beyond the list by the slowest left out)
+                self.slow_dropped[st] = max(self.slow_dropped[st], float(np.max(rt, where=out, initial=-np.inf)))
+            idx = np.flatnonzero(candidates)
             if len(idx) > SLOW_KEEP:
                 ranked = idx[np.lexsort((t_req[idx], rt[idx]))]
                 self.slow_dropped[st] = max(self.slow_dropped[st], float(rt[ranked[:-SLOW_KEEP]].max()))

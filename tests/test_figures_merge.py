@@ -173,3 +173,34 @@ def _joined_columns(tables: list):
             out.setdefault(name, []).append(col)
     return Columns({k: np.concatenate(v) if isinstance(v[0], np.ndarray) else [b for c in v for b in c]
                     for k, v in out.items()})
+
+
+def test_answers_over_the_timeout_left_below_a_full_slow_list_still_count_as_late(monkeypatch):
+    """The slow list is full of a bad hour's answers; later answers over the timeout but faster
+    than all of those are left out of it at once. judge() must still count them late (from the
+    histogram, as for answers pushed out of the list), in one pass as in merged segments."""
+    from buswitness.analysis import figures as fig
+    from buswitness.decode.events import OUTCOMES
+    from buswitness.decode.tables import Columns
+    monkeypatch.setattr(fig, "SLOW_KEEP", 5)
+
+    def block(t0_s: float, times_ms: list) -> Columns:
+        n = len(times_ms)
+        t_req = (np.arange(n, dtype=np.int64) * 1_000_000_000 + int(t0_s * 1e9))
+        rt = np.array(times_ms, np.float64)
+        return Columns({"t_request_end_ns": t_req, "t_response_start_ns": t_req + (rt * 1e6).astype(np.int64),
+                        "station": np.full(n, 7, np.int64), "function": np.full(n, 3, np.int64),
+                        "outcome": np.full(n, OUTCOMES.index("ok"), np.int64),
+                        "exception_code": np.zeros(n, np.int64), "retry": np.zeros(n, bool),
+                        "response_ms": rt, "response_ms_low": rt, "response_ms_high": rt,
+                        "request_raw": [b"\x07\x03\x00\x00\x00\x01\x84\x6c"] * n,
+                        "response_raw": [b"\x07\x03\x02\x00\x00\x00\x00"] * n})
+
+    acc = fig.Accumulator(t0_ns=0, char_ns=1e6)
+    acc.add_transactions(block(0.0, [100.0] * 5))          # the bad hour fills the list
+    acc.add_transactions(block(10.0, [60.0] * 10 + [5.0]))  # over a 50 ms timeout, below the list
+    figures = acc.figures()
+    figures.judge(50.0)
+    late, ok = OUTCOMES.index("late"), OUTCOMES.index("ok")
+    assert int(figures.outcomes[7, late]) == 15
+    assert int(figures.outcomes[7, ok]) == 1
