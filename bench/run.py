@@ -424,7 +424,7 @@ def _disk_mb() -> float:
 
 def run_child(stage: str, *args: object) -> dict:
     for a in args:
-        if isinstance(a, Path) and a.is_file() and a.stat().st_size > (1 << 20):
+        if isinstance(a, Path) and a.suffix in (".bwcap", ".hex", ".bin") and a.is_file():  # inputs, not outputs
             warm_page_cache(a)
     cmd = [sys.executable, str(Path(__file__).resolve()), "--child", stage, *map(str, args)]
     out = subprocess.run(cmd, capture_output=True, text=True)
