@@ -95,6 +95,12 @@ def _add_hist(target: np.ndarray, station: np.ndarray, values_ms: np.ndarray | N
     target[stations] += counts
 
 
+def _stable_order(keys: np.ndarray) -> np.ndarray:
+    """The order that sorts ``keys`` (stations or their places among them, below 256) keeping rows of
+    one key in their order: a stable sort on one byte, which numpy does by radix."""
+    return np.argsort(keys.astype(np.uint8), kind="stable")
+
+
 def _minute_sum(minute: np.ndarray, n_min: int, weights: np.ndarray | None = None) -> np.ndarray:
     return np.bincount(minute, weights=weights, minlength=n_min)[:n_min]
 
@@ -317,8 +323,8 @@ class Accumulator:
 
     def _poll_cycle(self, station: np.ndarray, t_req: np.ndarray) -> None:
         # by station, then time: t_req is in time order (add_transactions sorts it), so a stable sort
-        # by station alone gives lexsort((t_req, station))'s order; on one byte, numpy sorts by radix
-        order = np.argsort(station.astype(np.uint8), kind="stable")
+        # by station alone gives lexsort((t_req, station))'s order
+        order = _stable_order(station)
         s, t = station[order], t_req[order]
         same = np.concatenate(([False], s[1:] == s[:-1]))
         prev = np.where(same, np.concatenate(([0], t[:-1])), self.last_request_ns[s])
@@ -392,7 +398,7 @@ class Accumulator:
         # the timed answers by station (a stable sort: each station's rows stay in minute order),
         # so a station's rows are one slice, and its slowest per minute the largest of each run
         t_compact = compact[timed]
-        t_order = np.argsort(t_compact.astype(np.uint8), kind="stable")
+        t_order = _stable_order(t_compact)
         t_station, t_rel, t_rt = t_compact[t_order], rel[timed][t_order], rt[timed][t_order]
         t_bin = COARSE.index(t_rt)
         bounds = np.searchsorted(t_station, np.arange(len(stations) + 1))
@@ -443,7 +449,6 @@ class Accumulator:
                 return rows
             f_rt, f_t = heap[0][0], heap[0][1]
             return rows & ((rt > f_rt) | ((rt == f_rt) & (t_req > f_t)))
-
 
         for st in _present(station[timed]):
             heap = self.worst.setdefault(int(st), [])

@@ -34,7 +34,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
 
 import numpy as np
-from buswitness.capture.fileformat import ReadReport, SkimmedBlock, WatchPoint
+from buswitness.capture.fileformat import INDEX_DTYPE, ReadReport, SkimmedBlock, WatchPoint
 from buswitness.decode.rawbytes import RawColumn
 from buswitness.records import RecordBatch
 
@@ -58,7 +58,7 @@ OVER_STEPS = 2
 PARALLEL_MIN_BYTES = 64 << 20
 #: At most this many segments, whatever the core count.
 MAX_JOBS = 8
-_RECORD_BYTES = 12  # one record's entry in a block's index (capture/fileformat.py INDEX_DTYPE)
+_RECORD_BYTES = INDEX_DTYPE.itemsize  # one record's entry in a block's index
 
 
 def output_digest(out, contradictions: tuple = ()) -> str:
